@@ -1,0 +1,1 @@
+"""demo_stream: a synthetic scanning-NV instrument that writes scan-line files."""
