@@ -59,6 +59,8 @@ class ScanLine:
         Auxiliary per-pixel channels, each shape (n_pixels,).
     aux_units : Mapping[str, str]
         Unit of each auxiliary channel.
+    sha256 : str or None
+        Hex SHA-256 of the file's bytes as read (None for a line not read from disk).
     """
 
     source: Path
@@ -80,6 +82,7 @@ class ScanLine:
     reference_counts: np.ndarray | None = None
     aux: Mapping[str, np.ndarray] = field(default_factory=dict)
     aux_units: Mapping[str, str] = field(default_factory=dict)
+    sha256: str | None = None
 
     @property
     def n_pixels(self) -> int:
