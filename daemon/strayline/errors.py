@@ -37,7 +37,7 @@ class LineFileError(StraylineError, ValueError):
 
     The message names the file, the field, what was expected and what was found::
 
-        line_00042.h5: dataset 'counts' must have shape (n_pixels, n_freq) = (256, 201);
+        line_00042.h5: dataset 'counts' must be of shape (n_pixels, n_freq) = (256, 201);
         found (256, 200)
     """
 
