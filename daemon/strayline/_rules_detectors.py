@@ -1,0 +1,435 @@
+"""Line detectors: one per rule kind, built once from its spec, evaluated on each line.
+
+A detector turns a line's metrics and the scan's baseline into an :class:`Observation`
+(raise condition, clear condition, what was seen, against what, where). Counting lines
+for persistence and hysteresis is the engine's job, not the detector's. Detectors keep
+any memory they need in the plain ``memo`` dict the engine stores (JSON-serialisable, so
+it survives restarts).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass
+from typing import Any, Protocol
+
+from strayline._rules_spec import (
+    ContrastCollapsedSpec,
+    FitFailuresRisingSpec,
+    FluorescenceLostSpec,
+    ResonanceJumpSpec,
+    RuleSpec,
+    ThresholdSpec,
+    ZfsDriftSpec,
+)
+from strayline.metrics import LineMetrics
+
+__all__ = ["DZFS_DT_HZ_PER_K", "BaselineView", "Observation", "build_detector"]
+
+#: dD/dT near room temperature, Hz/K: Acosta et al., PRL 104, 070801 (2010).
+DZFS_DT_HZ_PER_K = -74.2e3
+
+
+class BaselineView(Protocol):
+    """What a detector may ask of the baseline."""
+
+    def stats(self, name: str) -> tuple[float, float] | None: ...
+
+    def anchor(self, name: str) -> float | None: ...
+
+
+@dataclass(frozen=True)
+class Observation:
+    """One detector's reading of one line.
+
+    ``confidence_z`` is a robust z-score: (value − baseline median) / baseline spread.
+    """
+
+    raise_cond: bool
+    clear_cond: bool
+    seen_value: float
+    seen_unit: str
+    message: str
+    clear_now: bool = False
+    baseline_value: float | None = None
+    baseline_spread: float | None = None
+    confidence_z: float | None = None
+    pixel_range: tuple[int, int] | None = None
+    clear_message: str = ""
+
+
+Detector = Callable[[LineMetrics, BaselineView, dict[str, Any]], Observation | None]
+
+
+def _z(value: float, median: float, spread: float, floor: float) -> float:
+    return (value - median) / max(spread, floor, 1e-300)
+
+
+def _where(first_pixel: int, rng: tuple[int, int] | None, n_pixels: int) -> str:
+    if rng is None or rng[1] - rng[0] >= n_pixels:
+        return "over the whole line"
+    return f"from pixel {first_pixel} on (pixels {rng[0]}–{rng[1] - 1})"
+
+
+def _fluorescence_lost(spec: FluorescenceLostSpec) -> Detector:
+    below, clear_above = spec.pl_fraction_below, spec.pl_fraction_clear_above
+
+    def detect(m: LineMetrics, base: BaselineView, memo: dict[str, Any]) -> Observation | None:
+        st = base.stats("pl_median_per_s")
+        if st is None or not math.isfinite(m.pl_median_per_s) or st[0] <= 0:
+            return None
+        med, spread = st
+        level, rng, first = m.pl_median_per_s, None, -1
+        if m.pl_step < 0 and m.pl_step_range is not None and m.pl_step_level_per_s < level:
+            level, rng, first = m.pl_step_level_per_s, m.pl_step_range, m.pl_step_first_pixel
+        ratio = level / med
+        return Observation(
+            raise_cond=ratio < below,
+            clear_cond=m.pl_median_per_s / med > clear_above,
+            seen_value=level,
+            seen_unit="counts/s",
+            baseline_value=med,
+            baseline_spread=spread,
+            confidence_z=_z(level, med, spread, 1e-3 * med),
+            pixel_range=rng,
+            message=(
+                f"PL fell to {ratio:.0%} of the running median ({med:.3g} counts/s) "
+                f"{_where(first, rng, m.n_pixels)}"
+            ),
+            clear_message=(
+                f"PL is back to {m.pl_median_per_s / med:.0%} of the running median "
+                f"({med:.3g} counts/s)"
+            ),
+        )
+
+    return detect
+
+
+def _contrast_collapsed(spec: ContrastCollapsedSpec) -> Detector:
+    def detect(m: LineMetrics, base: BaselineView, memo: dict[str, Any]) -> Observation | None:
+        c_st, pl_st = base.stats("contrast_median"), base.stats("pl_median_per_s")
+        if c_st is None or pl_st is None or c_st[0] <= 0 or pl_st[0] <= 0:
+            return None
+        if not math.isfinite(m.contrast_median):
+            return None
+        c_ratio = m.contrast_median / c_st[0]
+        pl_ratio = m.pl_median_per_s / pl_st[0]
+        return Observation(
+            raise_cond=c_ratio < spec.contrast_fraction_below
+            and pl_ratio >= spec.pl_fraction_normal_above,
+            clear_cond=c_ratio > spec.contrast_fraction_clear_above,
+            seen_value=m.contrast_median,
+            seen_unit="fraction",
+            baseline_value=c_st[0],
+            baseline_spread=c_st[1],
+            confidence_z=_z(m.contrast_median, c_st[0], c_st[1], 1e-3 * c_st[0]),
+            message=(
+                f"ODMR contrast fell to {c_ratio:.0%} of the running median "
+                f"({c_st[0]:.1%}) while PL stayed at {pl_ratio:.0%}"
+            ),
+            clear_message=f"ODMR contrast is back to {c_ratio:.0%} of the running median",
+        )
+
+    return detect
+
+
+def _fit_failures_rising(spec: FitFailuresRisingSpec) -> Detector:
+    def detect(m: LineMetrics, base: BaselineView, memo: dict[str, Any]) -> Observation | None:
+        st = base.stats("fit_failure_fraction")
+        if st is None or not math.isfinite(m.fit_failure_fraction):
+            return None
+        v, (med, spread) = m.fit_failure_fraction, st
+        return Observation(
+            raise_cond=v >= spec.failure_fraction_above and v - med >= spec.rise_fraction_above,
+            clear_cond=v - med < spec.rise_fraction_clear_below,
+            seen_value=v,
+            seen_unit="fraction",
+            baseline_value=med,
+            baseline_spread=spread,
+            confidence_z=_z(v, med, spread, 0.01),
+            message=f"{v:.0%} of the line's fits failed (running median {med:.0%})",
+            clear_message=f"fit failures are back to {v:.0%} (running median {med:.0%})",
+        )
+
+    return detect
+
+
+def _zfs_drift(spec: ZfsDriftSpec) -> Detector:
+    def detect(m: LineMetrics, base: BaselineView, memo: dict[str, Any]) -> Observation | None:
+        ref = base.anchor("center_mean_median_hz")
+        v = m.center_mean_median_hz
+        if ref is None or not math.isfinite(v):
+            return None
+        st = base.stats("center_mean_median_hz")
+        spread = st[1] if st is not None else None
+        delta = v - ref
+        kelvin = delta / DZFS_DT_HZ_PER_K
+        return Observation(
+            raise_cond=abs(delta) > spec.drift_hz_above,
+            clear_cond=abs(delta) < spec.drift_hz_clear_below,
+            seen_value=delta,
+            seen_unit="Hz",
+            baseline_value=ref,
+            baseline_spread=spread,
+            confidence_z=None if spread is None else _z(v, ref, spread, 1e3),
+            message=(
+                f"the mean of the two resonances moved by {delta / 1e6:+.2f} MHz since the "
+                f"scan's first lines (≈ {kelvin:+.1f} K if it is temperature, at "
+                "−74.2 kHz/K; strain and the transverse field move it too)"
+            ),
+            clear_message=(
+                f"the mean of the two resonances is back within {abs(delta) / 1e6:.2f} MHz "
+                "of the scan's first lines"
+            ),
+        )
+
+    return detect
+
+
+def _threshold(spec: ThresholdSpec) -> Detector:
+    above = spec.above
+    below = spec.below
+    clear_above = spec.clear_above if spec.clear_above is not None else above
+    clear_below = spec.clear_below if spec.clear_below is not None else below
+    ref = spec.reference
+    unit = spec.unit if ref in ("absolute", "baseline_delta") else ref.removeprefix("baseline_")
+
+    def detect(m: LineMetrics, base: BaselineView, memo: dict[str, Any]) -> Observation | None:
+        try:
+            v = m.value(spec.metric)
+        except KeyError:
+            return None
+        if not math.isfinite(v):
+            return None
+        st = base.stats(spec.metric)
+        med: float | None = None
+        spread: float | None = None
+        z: float | None = None
+        x = v
+        if st is not None:
+            med, spread = st
+            z = _z(v, med, spread, 1e-12 * abs(med))
+        if ref != "absolute":
+            if med is None or z is None:
+                return None
+            if ref == "baseline_ratio":
+                if med == 0:
+                    return None
+                x = v / med
+            elif ref == "baseline_delta":
+                x = v - med
+            else:
+                x = z
+        hi = above is not None and x > above
+        lo = below is not None and x < below
+        ok_hi = clear_above is None or x < clear_above
+        ok_lo = clear_below is None or x > clear_below
+        return Observation(
+            raise_cond=hi or lo,
+            clear_cond=ok_hi and ok_lo,
+            seen_value=x,
+            seen_unit=unit,
+            baseline_value=med,
+            baseline_spread=spread,
+            confidence_z=z,
+            message=f"{spec.metric} = {x:.4g} {unit}".rstrip()
+            + (f" (above {above:g})" if hi else f" (below {below:g})" if lo else ""),
+            clear_message=f"{spec.metric} = {x:.4g} {unit} is back within limits".replace(
+                "  ", " "
+            ),
+        )
+
+    return detect
+
+
+_CHANNELS = (
+    # (metric prefix, unit, what it is)
+    ("pl", "fraction", "PL"),
+    ("center_mean", "Hz", "mean of the two resonances"),
+    ("field", "ln ratio", "field roughness"),
+)
+
+
+def _flagged(spec: ResonanceJumpSpec, m: LineMetrics, base: BaselineView) -> dict[str, Any]:
+    thresholds = {
+        "pl": spec.pl_step_fraction_above,
+        "center_mean": spec.center_mean_step_hz_above,
+        "field": spec.field_step_log_ratio_above,
+    }
+    out: dict[str, Any] = {}
+    for ch, _unit, _what in _CHANNELS:
+        v = float(getattr(m, f"{ch}_step"))
+        rng = getattr(m, f"{ch}_step_range")
+        st = base.stats(f"{ch}_step")
+        if not math.isfinite(v) or rng is None or st is None:
+            continue
+        thr = thresholds[ch]
+        z = _z(v, st[0], st[1], 0.1 * thr)
+        if abs(v) >= thr and abs(z) >= spec.z_above:
+            out[ch] = {
+                "value": v,
+                "range": [int(rng[0]), int(rng[1])],
+                "first": int(getattr(m, f"{ch}_step_first_pixel")),
+                "z": z,
+                "ratio": abs(v) / thr,
+                "median": st[0],
+                "spread": st[1],
+            }
+    return out
+
+
+def _overlap(a: list[int], b: list[int]) -> bool:
+    return a[0] < b[1] and b[0] < a[1]
+
+
+def _reverts(pending: Mapping[str, Any], flagged: Mapping[str, Any]) -> bool:
+    """A step of opposite sign, in a channel that stepped before, over the same pixels."""
+    for ch, cand in flagged.items():
+        old = pending["channels"].get(ch)
+        if old is None:
+            continue
+        if cand["value"] * old["value"] < 0 and _overlap(cand["range"], old["range"]):
+            return True
+    return False
+
+
+def _jump_verdict(
+    spec: ResonanceJumpSpec, pending: Mapping[str, Any], reverted_at: int | None
+) -> str:
+    chans = pending["channels"]
+    line = pending["line"]
+    if reverted_at is not None:
+        return f"sample touched (transient): the step at line {line} reverted at line {reverted_at}"
+    pl = chans.get("pl")
+    if pl is not None and pl["value"] <= -spec.pl_drop_fraction_for_crash:
+        return f"tip crash suspected: PL fell by {-pl['value']:.0%} with the step"
+    if "center_mean" in chans:
+        shift = chans["center_mean"]["value"]
+        return (
+            f"contact suspected: the mean of the two resonances shifted by "
+            f"{shift / 1e6:+.2f} MHz (strain or heating)"
+        )
+    field = chans.get("field", {"value": 0.0})
+    change = math.expm1(field["value"])
+    return f"stand-off change suspected: field roughness changed by {change:+.0%}"
+
+
+def _resonance_jump(spec: ResonanceJumpSpec) -> Detector:
+    def detect(m: LineMetrics, base: BaselineView, memo: dict[str, Any]) -> Observation | None:
+        flagged = _flagged(spec, m, base)
+        pending = memo.get("pending")
+        raised = memo.get("raised")
+        if raised is not None:  # the engine has raised: look for recovery or more steps
+            if flagged and _reverts(raised, flagged):
+                msg = (
+                    f"the step from line {raised['line']} reverted at line {m.line_index}: "
+                    "transient, consistent with the sample being touched"
+                )
+                return _jump_obs(
+                    raised,
+                    m,
+                    raise_cond=False,
+                    clear_cond=True,
+                    clear_now=True,
+                    text=msg,
+                    clear_message=msg,
+                )
+            if raised.get("reverted_at") is not None and not flagged:
+                msg = f"no new step since line {raised['reverted_at']}"
+                return _jump_obs(
+                    raised,
+                    m,
+                    raise_cond=False,
+                    clear_cond=True,
+                    clear_now=True,
+                    text=msg,
+                    clear_message=msg,
+                )
+            quiet = not flagged
+            msg = (
+                f"no new step for the last lines; the shift from line {raised['line']} "
+                "has persisted"
+            )
+            return _jump_obs(
+                raised,
+                m,
+                raise_cond=False,
+                clear_cond=quiet,
+                clear_now=False,
+                text=msg,
+                clear_message=msg,
+            )
+        if pending is None:
+            if not flagged:
+                return None
+            primary = max(flagged, key=lambda c: flagged[c]["ratio"])
+            pending = {"line": m.line_index, "channels": flagged, "primary": primary}
+            pending["verdict"] = _jump_verdict(spec, pending, None)
+            pending["reverted_at"] = None
+            memo["pending"] = pending
+            return _jump_obs(
+                pending,
+                m,
+                raise_cond=True,
+                clear_cond=False,
+                clear_now=False,
+                text=pending["verdict"],
+            )
+        reverted_at = m.line_index if flagged and _reverts(pending, flagged) else None
+        pending["verdict"] = _jump_verdict(spec, pending, reverted_at)
+        pending["reverted_at"] = reverted_at
+        return _jump_obs(
+            pending, m, raise_cond=True, clear_cond=False, clear_now=False, text=pending["verdict"]
+        )
+
+    return detect
+
+
+def _jump_obs(
+    event: Mapping[str, Any],
+    m: LineMetrics,
+    *,
+    raise_cond: bool,
+    clear_cond: bool,
+    clear_now: bool,
+    text: str,
+    clear_message: str = "",
+) -> Observation:
+    prim = event["channels"][event["primary"]]
+    unit = {c: u for c, u, _ in _CHANNELS}[event["primary"]]
+    what = {c: w for c, _, w in _CHANNELS}[event["primary"]]
+    rng = (int(prim["range"][0]), int(prim["range"][1]))
+    message = (
+        f"{text}; {what} stepped by {prim['value']:+.3g} {unit} at line {event['line']} "
+        f"{_where(int(prim['first']), rng, m.n_pixels)}"
+    )
+    return Observation(
+        raise_cond=raise_cond,
+        clear_cond=clear_cond,
+        clear_now=clear_now,
+        seen_value=float(prim["value"]),
+        seen_unit=unit,
+        baseline_value=float(prim["median"]),
+        baseline_spread=float(prim["spread"]),
+        confidence_z=float(prim["z"]),
+        pixel_range=rng,
+        message=message,
+        clear_message=clear_message,
+    )
+
+
+_BUILDERS: dict[str, Callable[[Any], Detector]] = {
+    "fluorescence_lost": _fluorescence_lost,
+    "contrast_collapsed": _contrast_collapsed,
+    "fit_failures_rising": _fit_failures_rising,
+    "zfs_drift": _zfs_drift,
+    "threshold": _threshold,
+    "resonance_jump": _resonance_jump,
+}
+
+
+def build_detector(spec: RuleSpec) -> Detector | None:
+    """The line detector for ``spec`` (None for tick-only kinds such as stalls)."""
+    builder = _BUILDERS.get(spec.kind)
+    return None if builder is None else builder(spec)

@@ -1,0 +1,439 @@
+"""Per-line numbers the rules look at: :class:`LineMetrics`.
+
+Pure functions over the stage records (:class:`~strayline.lines.ScanLine`,
+:class:`~strayline.fit.LineFit`, :class:`~strayline.field.LineField`); no I/O, no clock.
+
+Line-to-line comparisons are made at the same pixel against the previous line of the
+*same direction* (a backward trace is compared with the previous backward trace). The
+per-pixel rows needed for that are produced by :func:`line_rows`; they hold exactly the
+quantities the scan store keeps (field, PL rate, centre mean and their 1σ), so after a
+restart the caller can rebuild them from the store. :class:`MetricsTracker` does that
+bookkeeping for a running daemon.
+
+Step search (see :mod:`strayline._rules_steps`): three channels are searched, in
+acquisition order, for the pixel range that changed most against the previous line —
+
+- ``pl``: relative PL change, ``PL_now / PL_prev − 1``;
+- ``center_mean``: shift of (f₋ + f₊)/2, Hz (common mode: temperature, strain);
+- ``field``: log ratio of the field's fast-axis roughness, ``Σ (ΔₓB)²`` with the noise
+  floor removed. The stray field of a thin magnetic film is the source pattern low-pass
+  filtered by ``exp(−k d)`` (Beardsley 1989, eq. for the Fourier-space field; PHYSICS.md
+  §4), so raising the stand-off d by δ scales every Fourier component by ``exp(−k δ)`` and
+  the roughness falls from the pixel where it happened; a wall that moves carries its
+  roughness with it and leaves the sums unchanged.
+
+Acquisition order: forward lines are acquired toward increasing x, backward lines toward
+decreasing x, whatever order the arrays are stored in. Reported ranges are in storage
+indices, half-open, and ``*_step_first_pixel`` is the first pixel acquired in the range.
+
+References
+----------
+.. [1] J. A. Beardsley, "Reconstruction of the magnetization in a thin film by a
+   combination of Lorentz microscopy and external field measurements", IEEE Trans. Magn.
+   25, 671 (1989).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import dataclass, field, fields
+from types import MappingProxyType
+
+import numpy as np
+
+from strayline._rules_steps import (
+    Segment,
+    best_energy_segment,
+    best_level_segment,
+)
+from strayline.field import LineField
+from strayline.fit import FitStatus, LineFit
+from strayline.lines import ScanLine
+
+__all__ = [
+    "ROW_KEYS",
+    "LineMetrics",
+    "MetricsOptions",
+    "MetricsTracker",
+    "line_metrics",
+    "line_rows",
+    "metric_names",
+]
+
+_MAD_TO_SIGMA = 1.482602218505602  # MAD of a normal sample → σ [cp]
+
+#: Keys of the per-pixel rows kept from one line to compare the next (all shape (n_pixels,)).
+ROW_KEYS = (
+    "field_nv_t",
+    "field_nv_sigma_t",
+    "pl_per_s",
+    "pl_sigma_per_s",
+    "center_mean_hz",
+    "center_mean_sigma_hz",
+    "x_m",
+)
+
+_AUX_STATS = ("median", "p10", "p90", "min", "max", "spread")
+
+
+@dataclass(frozen=True)
+class MetricsOptions:
+    """How line metrics are computed; settled once, shared by every line.
+
+    Attributes
+    ----------
+    change_sigma : float
+        A pixel's field change counts as significant above this many 1σ of the difference.
+    min_step_pixels : int
+        Smallest pixel range (and remainder of the line) the step search considers.
+    """
+
+    change_sigma: float = 5.0
+    min_step_pixels: int = 16
+
+
+@dataclass(frozen=True)
+class LineMetrics:
+    """Numbers describing one processed line (NaN where a value cannot be computed).
+
+    Identity: ``scan_id``, ``line_index``, ``direction``, ``n_lines_planned``, ``n_pixels``,
+    ``end_time_s`` (line end, POSIX s, UTC).
+
+    Levels (over the line's pixels): ``pl_median_per_s`` and ``pl_p10_per_s`` (PL rate =
+    fitted baseline / dwell, counts/s), ``contrast_median`` (fraction; pixels whose fit
+    found no dip count as 0), ``fwhm_median_hz``, ``fit_failure_fraction`` (status != OK),
+    ``field_median_t`` and ``field_spread_t`` (1.4826·MAD), ``center_mean_median_hz``
+    ((f₋+f₊)/2), ``chi2_red_median``, ``field_sigma_median_t`` (fit-reported 1σ).
+
+    Against the previous line of the same direction, at the same pixel:
+    ``field_change_median_t`` (median |ΔB|), ``field_change_fraction`` (fraction of pixels
+    with |ΔB| above ``change_sigma`` σ of the difference), ``pl_change_median`` (signed
+    median of PL_now/PL_prev − 1), ``center_mean_change_median_hz`` (signed median).
+
+    Steps (see module notes): for channel in (``pl``, ``center_mean``, ``field``):
+    ``{ch}_step`` (value of the changed range: relative PL change; Hz; log roughness
+    ratio), ``{ch}_step_score``, ``{ch}_step_range`` (storage indices, half-open, or None),
+    ``{ch}_step_first_pixel`` (first acquired pixel of the range, -1 if none),
+    ``{ch}_step_to_end`` (1.0 if the range runs to the end of the acquisition, else 0.0).
+    ``pl_step_level_per_s``: median PL over the PL step range.
+
+    Timing: ``time_since_previous_s`` (end of this line − end of the line before, any
+    direction).
+
+    ``aux_stats``: per auxiliary channel, ``median``, ``p10``, ``p90``, ``min``, ``max``,
+    ``spread`` in the channel's unit (``aux_units``).
+    """
+
+    scan_id: str
+    line_index: int
+    direction: str
+    n_lines_planned: int
+    n_pixels: int
+    end_time_s: float
+    pl_median_per_s: float
+    pl_p10_per_s: float
+    contrast_median: float
+    fwhm_median_hz: float
+    fit_failure_fraction: float
+    field_median_t: float
+    field_spread_t: float
+    center_mean_median_hz: float
+    chi2_red_median: float
+    field_sigma_median_t: float
+    time_since_previous_s: float = float("nan")
+    field_change_median_t: float = float("nan")
+    field_change_fraction: float = float("nan")
+    pl_change_median: float = float("nan")
+    center_mean_change_median_hz: float = float("nan")
+    pl_step: float = float("nan")
+    pl_step_score: float = float("nan")
+    pl_step_range: tuple[int, int] | None = None
+    pl_step_first_pixel: int = -1
+    pl_step_to_end: float = float("nan")
+    pl_step_level_per_s: float = float("nan")
+    center_mean_step: float = float("nan")
+    center_mean_step_score: float = float("nan")
+    center_mean_step_range: tuple[int, int] | None = None
+    center_mean_step_first_pixel: int = -1
+    center_mean_step_to_end: float = float("nan")
+    field_step: float = float("nan")
+    field_step_score: float = float("nan")
+    field_step_range: tuple[int, int] | None = None
+    field_step_first_pixel: int = -1
+    field_step_to_end: float = float("nan")
+    aux_stats: Mapping[str, Mapping[str, float]] = field(
+        default_factory=lambda: MappingProxyType({})
+    )
+    aux_units: Mapping[str, str] = field(default_factory=lambda: MappingProxyType({}))
+
+    def value(self, name: str) -> float:
+        """Numeric value by name: a float field, or ``aux.<channel>.<stat>``.
+
+        Raises
+        ------
+        KeyError
+            If the name is not a numeric metric of this line.
+        """
+        if name.startswith("aux."):
+            _, channel, stat = name.split(".", 2)
+            return float(self.aux_stats[channel][stat])
+        if name not in _NUMERIC_FIELDS:
+            raise KeyError(name)
+        return float(getattr(self, name))
+
+    def numeric(self) -> dict[str, float]:
+        """All numeric metrics by name (float fields and ``aux.<channel>.<stat>``)."""
+        out = {name: float(getattr(self, name)) for name in _NUMERIC_FIELDS}
+        for channel, stats in self.aux_stats.items():
+            for stat, v in stats.items():
+                out[f"aux.{channel}.{stat}"] = float(v)
+        return out
+
+
+_NUMERIC_FIELDS = tuple(f.name for f in fields(LineMetrics) if f.type in ("float", "int"))
+
+
+def metric_names() -> tuple[str, ...]:
+    """Names of the numeric :class:`LineMetrics` fields a rule may refer to."""
+    return _NUMERIC_FIELDS
+
+
+def line_rows(line: ScanLine, fit: LineFit, field_: LineField) -> dict[str, np.ndarray]:
+    """Per-pixel rows of one line, kept to compare the next line of the same direction.
+
+    Returns
+    -------
+    dict
+        Keys :data:`ROW_KEYS`, each an ndarray of shape (n_pixels,): ``field_nv_t`` and
+        ``field_nv_sigma_t`` (T), ``pl_per_s`` and ``pl_sigma_per_s`` (counts/s),
+        ``center_mean_hz`` and ``center_mean_sigma_hz`` (Hz), ``x_m`` (m).
+    """
+    dwell_s = float(line.dwell_s)
+    return {
+        "field_nv_t": np.asarray(field_.field_nv_t, dtype=float).copy(),
+        "field_nv_sigma_t": np.asarray(field_.field_nv_sigma_t, dtype=float).copy(),
+        "pl_per_s": np.asarray(fit.baseline, dtype=float) / dwell_s,
+        "pl_sigma_per_s": np.asarray(fit.baseline_sigma, dtype=float) / dwell_s,
+        "center_mean_hz": np.asarray(field_.center_mean_hz, dtype=float).copy(),
+        "center_mean_sigma_hz": np.asarray(field_.center_mean_sigma_hz, dtype=float).copy(),
+        "x_m": np.asarray(line.x_m, dtype=float).copy(),
+    }
+
+
+def _nanmedian(a: np.ndarray) -> float:
+    a = a[np.isfinite(a)]
+    return float(np.median(a)) if a.size else float("nan")
+
+
+def _nanpercentile(a: np.ndarray, q: float) -> float:
+    a = a[np.isfinite(a)]
+    return float(np.percentile(a, q)) if a.size else float("nan")
+
+
+def _spread(a: np.ndarray) -> float:
+    a = a[np.isfinite(a)]
+    if a.size == 0:
+        return float("nan")
+    return float(_MAD_TO_SIGMA * np.median(np.abs(a - np.median(a))))
+
+
+def _acquisition_order(direction: str, x_m: np.ndarray) -> np.ndarray:
+    """Storage indices in the order the pixels were acquired."""
+    idx = np.arange(x_m.shape[0])
+    increasing = x_m.shape[0] < 2 or bool(x_m[-1] >= x_m[0])
+    forward = direction == "forward"
+    return idx if forward == increasing else idx[::-1]
+
+
+def _roughness(b_t: np.ndarray, sigma_t: np.ndarray) -> np.ndarray:
+    """Fast-axis roughness ``(B[p+1] − B[p])² − σ²_p − σ²_{p+1}``, floored at 0, T²."""
+    g = np.diff(b_t)
+    noise = sigma_t[1:] ** 2 + sigma_t[:-1] ** 2
+    noise = np.where(np.isfinite(noise), noise, 0.0)
+    return np.maximum(g * g - noise, 0.0)
+
+
+def _step_fields(
+    prefix: str, seg: Segment | None, order: np.ndarray, n_pixels: int
+) -> dict[str, object]:
+    if seg is None:
+        return {}
+    stop = min(seg.stop, n_pixels)
+    acq = order[seg.start : stop]
+    first = int(acq[0])
+    rng = (int(acq.min()), int(acq.max()) + 1)
+    return {
+        f"{prefix}_step": seg.value,
+        f"{prefix}_step_score": seg.score,
+        f"{prefix}_step_range": rng,
+        f"{prefix}_step_first_pixel": first,
+        f"{prefix}_step_to_end": 1.0 if stop >= n_pixels - 1 else 0.0,
+    }
+
+
+def _aux_stats(line: ScanLine) -> dict[str, Mapping[str, float]]:
+    out: dict[str, Mapping[str, float]] = {}
+    for name, values in line.aux.items():
+        v = np.asarray(values, dtype=float)
+        finite = v[np.isfinite(v)]
+        stats = dict.fromkeys(_AUX_STATS, float("nan"))
+        if finite.size:
+            stats.update(
+                median=float(np.median(finite)),
+                p10=float(np.percentile(finite, 10)),
+                p90=float(np.percentile(finite, 90)),
+                min=float(finite.min()),
+                max=float(finite.max()),
+                spread=_spread(finite),
+            )
+        out[name] = MappingProxyType(stats)
+    return out
+
+
+def _change_fields(
+    rows: Mapping[str, np.ndarray],
+    prev: Mapping[str, np.ndarray],
+    direction: str,
+    options: MetricsOptions,
+) -> dict[str, object]:
+    b, bp = rows["field_nv_t"], prev["field_nv_t"]
+    if bp.shape != b.shape:
+        return {}
+    n = b.shape[0]
+    out: dict[str, object] = {}
+    db = b - bp
+    sigma_d = np.hypot(rows["field_nv_sigma_t"], prev["field_nv_sigma_t"])
+    finite = np.isfinite(db) & np.isfinite(sigma_d)
+    out["field_change_median_t"] = _nanmedian(np.abs(db))
+    if finite.any():
+        big = np.abs(db[finite]) > options.change_sigma * sigma_d[finite]
+        out["field_change_fraction"] = float(np.mean(big))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        pl_ratio = rows["pl_per_s"] / prev["pl_per_s"] - 1.0
+    pl_ratio = np.where(np.isfinite(pl_ratio), np.clip(pl_ratio, -1.0, 1.0), np.nan)
+    d_cm = rows["center_mean_hz"] - prev["center_mean_hz"]
+    out["pl_change_median"] = _nanmedian(pl_ratio)
+    out["center_mean_change_median_hz"] = _nanmedian(d_cm)
+
+    order = _acquisition_order(direction, rows["x_m"])
+    k = options.min_step_pixels
+    pl_seg = best_level_segment(pl_ratio[order], k)
+    out.update(_step_fields("pl", pl_seg, order, n))
+    pl_range = out.get("pl_step_range")
+    if isinstance(pl_range, tuple):
+        out["pl_step_level_per_s"] = _nanmedian(rows["pl_per_s"][pl_range[0] : pl_range[1]])
+    out.update(_step_fields("center_mean", best_level_segment(d_cm[order], k), order, n))
+    e_now = _roughness(b[order], rows["field_nv_sigma_t"][order])
+    e_prev = _roughness(bp[order], prev["field_nv_sigma_t"][order])
+    out.update(_step_fields("field", best_energy_segment(e_now, e_prev, k), order, n))
+    return out
+
+
+def line_metrics(
+    line: ScanLine,
+    fit: LineFit,
+    field: LineField,
+    previous: LineMetrics | None = None,
+    previous_rows: Mapping[str, np.ndarray] | None = None,
+    *,
+    options: MetricsOptions | None = None,
+) -> LineMetrics:
+    """Compute the metrics of one line.
+
+    Parameters
+    ----------
+    line, fit, field
+        The line's records; arrays of shape (n_pixels,) or (n_pixels, 2).
+    previous : LineMetrics, optional
+        Metrics of the line processed just before (any direction): gives
+        ``time_since_previous_s``.
+    previous_rows : mapping, optional
+        :func:`line_rows` of the previous line of the *same direction*: gives the
+        line-to-line changes and steps. Ignored if its pixel count differs.
+    options : MetricsOptions, optional
+        Defaults to ``MetricsOptions()``.
+
+    Returns
+    -------
+    LineMetrics
+    """
+    opts = options or MetricsOptions()
+    rows = line_rows(line, fit, field)
+    status = np.asarray(fit.status)
+    ok = status == FitStatus.OK
+    pl = rows["pl_per_s"]
+    contrast = np.nanmean(np.where(np.isfinite(fit.contrast), fit.contrast, np.nan), axis=1)
+    contrast = np.where(status == FitStatus.NO_RESONANCE, 0.0, contrast)
+    fwhm = np.nanmean(np.where(np.isfinite(fit.fwhm_hz), fit.fwhm_hz, np.nan), axis=1)
+    b = np.where(ok, rows["field_nv_t"], np.nan)
+    end_time_s = line.end_time.timestamp()
+    values: dict[str, object] = {
+        "scan_id": line.scan_id,
+        "line_index": int(line.line_index),
+        "direction": line.direction,
+        "n_lines_planned": int(line.n_lines_planned),
+        "n_pixels": int(line.n_pixels),
+        "end_time_s": end_time_s,
+        "pl_median_per_s": _nanmedian(pl),
+        "pl_p10_per_s": _nanpercentile(pl, 10.0),
+        "contrast_median": _nanmedian(contrast),
+        "fwhm_median_hz": _nanmedian(np.where(ok, fwhm, np.nan)),
+        "fit_failure_fraction": float(np.mean(~ok)) if ok.size else float("nan"),
+        "field_median_t": _nanmedian(b),
+        "field_spread_t": _spread(b),
+        "center_mean_median_hz": _nanmedian(np.where(ok, rows["center_mean_hz"], np.nan)),
+        "chi2_red_median": _nanmedian(np.where(ok, fit.chi2_red, np.nan)),
+        "field_sigma_median_t": _nanmedian(np.where(ok, rows["field_nv_sigma_t"], np.nan)),
+        "aux_stats": MappingProxyType(_aux_stats(line)),
+        "aux_units": MappingProxyType(dict(line.aux_units)),
+    }
+    if previous is not None:
+        values["time_since_previous_s"] = end_time_s - previous.end_time_s
+    if previous_rows is not None:
+        masked = dict(rows)
+        for key in ("field_nv_t", "center_mean_hz"):
+            masked[key] = np.where(ok, rows[key], np.nan)
+        values.update(_change_fields(masked, previous_rows, line.direction, opts))
+    return LineMetrics(**values)  # type: ignore[arg-type]
+
+
+class MetricsTracker:
+    """Keeps the previous line's metrics and, per direction, its rows; not thread-safe.
+
+    ``update(line, fit, field)`` returns the line's metrics and remembers what the next
+    line needs. ``seed(...)`` restores the memory after a restart (rows from the store).
+    One tracker per scan.
+    """
+
+    def __init__(self, options: MetricsOptions | None = None) -> None:
+        self._options = options or MetricsOptions()
+        self._previous: LineMetrics | None = None
+        self._rows: dict[str, dict[str, np.ndarray]] = {}
+
+    def update(self, line: ScanLine, fit: LineFit, field: LineField) -> LineMetrics:
+        """Metrics of ``line`` against the remembered previous lines; then remember it."""
+        metrics = line_metrics(
+            line,
+            fit,
+            field,
+            self._previous,
+            self._rows.get(line.direction),
+            options=self._options,
+        )
+        self._previous = metrics
+        self._rows[line.direction] = line_rows(line, fit, field)
+        return metrics
+
+    def seed(
+        self,
+        direction: str,
+        rows: Mapping[str, np.ndarray],
+        previous: LineMetrics | None = None,
+    ) -> None:
+        """Remember ``rows`` (keys :data:`ROW_KEYS`) as the last line of ``direction``."""
+        missing = [k for k in ROW_KEYS if k not in rows]
+        if missing:
+            raise ValueError(f"rows for direction {direction!r} lack keys {missing}")
+        self._rows[direction] = {k: np.asarray(rows[k], dtype=float) for k in ROW_KEYS}
+        if previous is not None:
+            self._previous = previous

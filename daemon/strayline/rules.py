@@ -1,0 +1,799 @@
+"""Alert rules: data-driven detectors over line metrics, with persistence and hysteresis.
+
+Rules are data (``config/rules.yaml``, validated by :class:`RulesConfig`). Each line's
+:class:`~strayline.metrics.LineMetrics` is judged against a :class:`RollingBaseline` of the
+scan's previous *good* lines (a line is good when no rule is active on the scan and none
+of the rules' raise conditions held on it). :class:`RuleEngine` counts lines for each
+rule: it raises after ``persistence_lines`` lines in a row with the raise condition and
+clears after ``clear_lines`` lines in a row with the (separate, hysteretic) clear
+condition. A raise and a clear are each one :class:`AlertEvent`; a fault lasting a
+hundred lines gives exactly one of each. Stalls are judged on clock ticks
+(:meth:`RuleEngine.evaluate_tick`); the clock is injected. The engine's whole state is a
+plain JSON-serialisable dict (:meth:`RuleEngine.state_dict`), so a restart mid-alert
+neither raises the alert again nor forgets it.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import math
+import os
+import time
+from collections import deque
+from collections.abc import Callable, Iterable, Mapping
+from dataclasses import asdict, dataclass
+from datetime import UTC, datetime
+from os import PathLike
+from pathlib import Path
+from typing import Any, Literal, Protocol
+
+import numpy as np
+import structlog
+import yaml
+from pydantic import ValidationError
+
+from strayline._rules_detectors import Observation, build_detector
+from strayline._rules_spec import (
+    RULE_KINDS,
+    AcquisitionStalledSpec,
+    AnyRuleSpec,
+    BaselineSpec,
+    ContrastCollapsedSpec,
+    FitFailuresRisingSpec,
+    FluorescenceLostSpec,
+    ResonanceJumpSpec,
+    RulesConfig,
+    RuleSpec,
+    ThresholdSpec,
+    ZfsDriftSpec,
+)
+from strayline.errors import ConfigError, StoreError
+from strayline.metrics import LineMetrics
+
+__all__ = [
+    "RULE_KINDS",
+    "AcquisitionStalledSpec",
+    "AlertEvent",
+    "AnyRuleSpec",
+    "BaselineSpec",
+    "ContrastCollapsedSpec",
+    "FitFailuresRisingSpec",
+    "FluorescenceLostSpec",
+    "ResonanceJumpSpec",
+    "RollingBaseline",
+    "RuleEngine",
+    "RuleSpec",
+    "RulesConfig",
+    "ThresholdSpec",
+    "ZfsDriftSpec",
+    "default_rules",
+    "load_rules",
+    "rules_from_data",
+]
+
+_MAD_TO_SIGMA = 1.482602218505602  # MAD of a normal sample → σ [cp]
+_STATE_VERSION = 1
+_MAX_SCANS_KEPT = 8
+
+
+def _finite_or_none(v: float | None) -> float | None:
+    return None if v is None or not math.isfinite(v) else float(v)
+
+
+@dataclass(frozen=True)
+class AlertEvent:
+    """One alert raised or cleared.
+
+    Attributes
+    ----------
+    time : str
+        When it was decided, ISO 8601 UTC.
+    scan_id, rule, severity : str
+    state : {"raised", "cleared"}
+    line_index : int or None
+        The line that decided it (the last line seen, for a stall).
+    direction : str or None
+    pixel_range : (int, int) or None
+        Half-open pixel range concerned, storage indices.
+    seen_value : float or None
+        What was seen, in ``seen_unit``.
+    seen_unit : str
+    baseline_value, baseline_spread : float or None
+        The baseline it was judged against (median, and 1.4826·MAD) in the metric's unit.
+    confidence_z : float or None
+        Robust z-score of the seen metric against the baseline, (value − median) / spread.
+    message : str
+        One readable sentence: what was seen, where, against what.
+    advice : str
+        What to check.
+    """
+
+    time: str
+    scan_id: str
+    rule: str
+    severity: str
+    state: Literal["raised", "cleared"]
+    line_index: int | None
+    direction: str | None
+    pixel_range: tuple[int, int] | None
+    seen_value: float | None
+    seen_unit: str
+    baseline_value: float | None
+    baseline_spread: float | None
+    confidence_z: float | None
+    message: str
+    advice: str
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain JSON-ready dict (non-finite numbers become None)."""
+        d = asdict(self)
+        d["pixel_range"] = list(self.pixel_range) if self.pixel_range is not None else None
+        for key in ("seen_value", "baseline_value", "baseline_spread", "confidence_z"):
+            d[key] = _finite_or_none(d[key])
+        return d
+
+    def to_json(self) -> str:
+        """One line of JSON."""
+        return json.dumps(self.to_dict(), ensure_ascii=False, separators=(",", ":"))
+
+    @classmethod
+    def from_dict(cls, data: Mapping[str, Any]) -> AlertEvent:
+        """Inverse of :meth:`to_dict`; raises KeyError/TypeError/ValueError on bad input."""
+        rng = data["pixel_range"]
+        state = data["state"]
+        if state not in ("raised", "cleared"):
+            raise ValueError(f"state must be 'raised' or 'cleared'; found {state!r}")
+        return cls(
+            time=str(data["time"]),
+            scan_id=str(data["scan_id"]),
+            rule=str(data["rule"]),
+            severity=str(data["severity"]),
+            state=state,
+            line_index=None if data["line_index"] is None else int(data["line_index"]),
+            direction=data["direction"],
+            pixel_range=None if rng is None else (int(rng[0]), int(rng[1])),
+            seen_value=data["seen_value"],
+            seen_unit=str(data["seen_unit"]),
+            baseline_value=data["baseline_value"],
+            baseline_spread=data["baseline_spread"],
+            confidence_z=data["confidence_z"],
+            message=str(data["message"]),
+            advice=str(data["advice"]),
+        )
+
+    @classmethod
+    def from_json(cls, text: str) -> AlertEvent:
+        """Parse one line written by :meth:`to_json`."""
+        return cls.from_dict(json.loads(text))
+
+    @property
+    def datetime(self) -> datetime:
+        """:attr:`time` as an aware datetime."""
+        return datetime.fromisoformat(self.time)
+
+
+class RollingBaseline:
+    """Median and spread of each metric over the last good lines of one scan.
+
+    Also keeps an *anchor*: the median of the first ``anchor_lines`` good lines, a fixed
+    reference for slow drifts that a rolling window would follow.
+
+    Parameters
+    ----------
+    window_lines : int
+        Good lines kept.
+    min_lines : int
+        Good lines needed before :meth:`stats` answers.
+    anchor_lines : int
+        Good lines forming the anchor.
+    """
+
+    def __init__(self, window_lines: int = 30, min_lines: int = 5, anchor_lines: int = 10) -> None:
+        self.window_lines = int(window_lines)
+        self.min_lines = int(min_lines)
+        self.anchor_lines = int(anchor_lines)
+        self._values: dict[str, deque[float]] = {}
+        self._anchor: dict[str, list[float]] = {}
+        self._count = 0
+
+    @property
+    def count(self) -> int:
+        """Good lines added so far (not capped by the window)."""
+        return self._count
+
+    def add(self, values: Mapping[str, float]) -> None:
+        """Add one good line's metrics (name → value; NaN allowed)."""
+        self._count += 1
+        for name, v in values.items():
+            self._values.setdefault(name, deque(maxlen=self.window_lines)).append(float(v))
+            anchor = self._anchor.setdefault(name, [])
+            if len(anchor) < self.anchor_lines:
+                anchor.append(float(v))
+
+    def stats(self, name: str) -> tuple[float, float] | None:
+        """(median, 1.4826·MAD) over the window, or None with too few finite values."""
+        values = self._values.get(name)
+        if values is None:
+            return None
+        a = np.asarray(values, dtype=float)
+        a = a[np.isfinite(a)]
+        if a.size < self.min_lines:
+            return None
+        med = float(np.median(a))
+        return med, float(_MAD_TO_SIGMA * np.median(np.abs(a - med)))
+
+    def anchor(self, name: str) -> float | None:
+        """Median of the first ``anchor_lines`` good values, once that many exist."""
+        a = np.asarray(self._anchor.get(name, []), dtype=float)
+        a = a[np.isfinite(a)]
+        if a.size < self.anchor_lines:
+            return None
+        return float(np.median(a))
+
+    def state_dict(self) -> dict[str, Any]:
+        """JSON-serialisable state (NaN stored as None)."""
+
+        def clean(seq: Iterable[float]) -> list[float | None]:
+            return [_finite_or_none(v) for v in seq]
+
+        return {
+            "window_lines": self.window_lines,
+            "min_lines": self.min_lines,
+            "anchor_lines": self.anchor_lines,
+            "count": self._count,
+            "values": {k: clean(v) for k, v in self._values.items()},
+            "anchor": {k: clean(v) for k, v in self._anchor.items()},
+        }
+
+    @classmethod
+    def from_state(cls, state: Mapping[str, Any]) -> RollingBaseline:
+        """Rebuild from :meth:`state_dict`."""
+        out = cls(state["window_lines"], state["min_lines"], state["anchor_lines"])
+        out._count = int(state["count"])
+
+        def restore(seq: Iterable[float | None]) -> list[float]:
+            return [math.nan if v is None else float(v) for v in seq]
+
+        for k, v in state["values"].items():
+            out._values[k] = deque(restore(v), maxlen=out.window_lines)
+        out._anchor = {k: restore(v) for k, v in state["anchor"].items()}
+        return out
+
+
+@dataclass
+class _RuleState:
+    active: bool = False
+    true_count: int = 0
+    clear_count: int = 0
+    raised: dict[str, Any] | None = None
+    memo: dict[str, Any] | None = None
+
+
+def _iso(t_s: float) -> str:
+    return datetime.fromtimestamp(t_s, UTC).isoformat(timespec="milliseconds")
+
+
+class _ScanState:
+    def __init__(self, baseline: BaselineSpec, rule_names: Iterable[str]) -> None:
+        self.baseline = RollingBaseline(
+            baseline.window_lines, baseline.min_lines, baseline.anchor_lines
+        )
+        self.rules = {name: _RuleState(memo={}) for name in rule_names}
+        self.last_arrival_s: float | None = None
+        self.last_line_index: int | None = None
+        self.last_direction: str | None = None
+        self.n_lines_planned: int | None = None
+        self.lines_seen = 0
+        self.intervals_s: deque[float] = deque(maxlen=20)
+
+    def complete(self) -> bool:
+        return (
+            self.n_lines_planned is not None
+            and self.last_line_index is not None
+            and self.last_line_index >= self.n_lines_planned - 1
+        )
+
+    def state_dict(self) -> dict[str, Any]:
+        return {
+            "baseline": self.baseline.state_dict(),
+            "rules": {
+                name: {
+                    "active": st.active,
+                    "true_count": st.true_count,
+                    "clear_count": st.clear_count,
+                    "raised": st.raised,
+                    "memo": st.memo,
+                }
+                for name, st in self.rules.items()
+            },
+            "last_arrival_s": self.last_arrival_s,
+            "last_line_index": self.last_line_index,
+            "last_direction": self.last_direction,
+            "n_lines_planned": self.n_lines_planned,
+            "lines_seen": self.lines_seen,
+            "intervals_s": list(self.intervals_s),
+        }
+
+    @classmethod
+    def from_state(
+        cls, state: Mapping[str, Any], baseline: BaselineSpec, rule_names: Iterable[str]
+    ) -> _ScanState:
+        out = cls(baseline, rule_names)
+        out.baseline = RollingBaseline.from_state(state["baseline"])
+        for name, st in state["rules"].items():
+            if name in out.rules:  # rules removed from the config are forgotten
+                out.rules[name] = _RuleState(
+                    active=bool(st["active"]),
+                    true_count=int(st["true_count"]),
+                    clear_count=int(st["clear_count"]),
+                    raised=st["raised"],
+                    memo=dict(st["memo"] or {}),
+                )
+        out.last_arrival_s = state["last_arrival_s"]
+        out.last_line_index = state["last_line_index"]
+        out.last_direction = state["last_direction"]
+        out.n_lines_planned = state["n_lines_planned"]
+        out.lines_seen = int(state["lines_seen"])
+        out.intervals_s.extend(float(v) for v in state["intervals_s"])
+        return out
+
+
+class RuleEngine:
+    """Evaluates a rule set line by line and on clock ticks; one engine for all scans.
+
+    Parameters
+    ----------
+    rules : RulesConfig
+        The rule set (disabled rules are skipped).
+    clock : callable returning POSIX seconds
+        Time source for event times and stall detection (inject a fake one in tests).
+    """
+
+    def __init__(self, rules: RulesConfig, *, clock: Callable[[], float] = time.time) -> None:
+        self._config = rules
+        self._clock = clock
+        self._specs: dict[str, RuleSpec] = {r.name: r for r in rules.rules if r.enabled}
+        self._detectors = {
+            name: det
+            for name, spec in self._specs.items()
+            if (det := build_detector(spec)) is not None
+        }
+        self._stall_specs = [
+            s for s in self._specs.values() if isinstance(s, AcquisitionStalledSpec)
+        ]
+        self._scans: dict[str, _ScanState] = {}
+        self._latest: str | None = None
+
+    @property
+    def config(self) -> RulesConfig:
+        return self._config
+
+    # -- events -------------------------------------------------------------------------
+
+    def _event(
+        self,
+        scan_id: str,
+        spec: RuleSpec,
+        state: Literal["raised", "cleared"],
+        *,
+        obs: Observation | None,
+        line_index: int | None,
+        direction: str | None,
+        now_s: float,
+        message: str,
+    ) -> AlertEvent:
+        return AlertEvent(
+            time=_iso(now_s),
+            scan_id=scan_id,
+            rule=spec.name,
+            severity=spec.severity,
+            state=state,
+            line_index=line_index,
+            direction=direction,
+            pixel_range=None if obs is None else obs.pixel_range,
+            seen_value=None if obs is None else _finite_or_none(obs.seen_value),
+            seen_unit="" if obs is None else obs.seen_unit,
+            baseline_value=None if obs is None else _finite_or_none(obs.baseline_value),
+            baseline_spread=None if obs is None else _finite_or_none(obs.baseline_spread),
+            confidence_z=None if obs is None else _finite_or_none(obs.confidence_z),
+            message=message,
+            advice=spec.advice,
+        )
+
+    def _raise(self, st: _RuleState, event: AlertEvent) -> AlertEvent:
+        st.active, st.clear_count, st.true_count = True, 0, 0
+        st.raised = event.to_dict()
+        memo = st.memo if st.memo is not None else {}
+        if "pending" in memo:
+            memo["raised"] = memo.pop("pending")
+        st.memo = memo
+        return event
+
+    def _clear(self, st: _RuleState, event: AlertEvent) -> AlertEvent:
+        st.active, st.clear_count, st.true_count, st.raised = False, 0, 0, None
+        st.memo = {}
+        return event
+
+    # -- evaluation ---------------------------------------------------------------------
+
+    def _scan(self, scan_id: str) -> _ScanState:
+        scan = self._scans.get(scan_id)
+        if scan is None:
+            scan = _ScanState(self._config.baseline, self._specs)
+            self._scans[scan_id] = scan
+            while len(self._scans) > _MAX_SCANS_KEPT:
+                oldest = next(iter(self._scans))
+                if oldest == scan_id:
+                    break
+                del self._scans[oldest]
+        return scan
+
+    def _clear_stalls(
+        self, scan_id: str, scan: _ScanState, now_s: float, why: str
+    ) -> list[AlertEvent]:
+        out = []
+        for spec in self._stall_specs:
+            st = scan.rules[spec.name]
+            if st.active:
+                out.append(
+                    self._clear(
+                        st,
+                        self._event(
+                            scan_id,
+                            spec,
+                            "cleared",
+                            obs=None,
+                            line_index=scan.last_line_index,
+                            direction=scan.last_direction,
+                            now_s=now_s,
+                            message=why,
+                        ),
+                    )
+                )
+        return out
+
+    def evaluate_line(self, scan_id: str, metrics: LineMetrics) -> list[AlertEvent]:
+        """Judge one processed line; returns the raise/clear events it causes (often none)."""
+        now_s = float(self._clock())
+        events: list[AlertEvent] = []
+        if self._latest is not None and self._latest != scan_id and self._latest in self._scans:
+            events += self._clear_stalls(
+                self._latest,
+                self._scans[self._latest],
+                now_s,
+                f"a new scan {scan_id!r} started",
+            )
+        self._latest = scan_id
+        scan = self._scan(scan_id)
+        if scan.last_arrival_s is not None:
+            events += self._clear_stalls(scan_id, scan, now_s, f"line {metrics.line_index} arrived")
+        any_raise_cond = False
+        for name, detect in self._detectors.items():
+            spec, st = self._specs[name], scan.rules[name]
+            memo = st.memo if st.memo is not None else {}
+            st.memo = memo
+            obs = detect(metrics, scan.baseline, memo)
+            if obs is None:
+                continue
+            any_raise_cond |= obs.raise_cond
+            ev = self._step(scan_id, spec, st, obs, m=metrics, now_s=now_s)
+            if ev is not None:
+                events.append(ev)
+        if not any_raise_cond and not any(st.active for st in scan.rules.values()):
+            scan.baseline.add(metrics.numeric())
+        dt = metrics.time_since_previous_s
+        if math.isfinite(dt) and dt > 0:
+            scan.intervals_s.append(dt)
+        scan.last_arrival_s = now_s
+        scan.last_line_index = metrics.line_index
+        scan.last_direction = metrics.direction
+        scan.n_lines_planned = metrics.n_lines_planned
+        scan.lines_seen += 1
+        return events
+
+    def _step(
+        self,
+        scan_id: str,
+        spec: RuleSpec,
+        st: _RuleState,
+        obs: Observation,
+        *,
+        m: LineMetrics,
+        now_s: float,
+    ) -> AlertEvent | None:
+        if not st.active:
+            st.true_count = st.true_count + 1 if obs.raise_cond else 0
+            if st.true_count >= spec.persistence_lines:
+                ev = self._event(
+                    scan_id,
+                    spec,
+                    "raised",
+                    obs=obs,
+                    line_index=m.line_index,
+                    direction=m.direction,
+                    now_s=now_s,
+                    message=obs.message,
+                )
+                return self._raise(st, ev)
+            if not obs.raise_cond and st.memo:
+                st.memo.pop("pending", None)
+            return None
+        if obs.clear_now:
+            st.clear_count = spec.clear_lines
+        elif obs.clear_cond:
+            st.clear_count += 1
+        else:
+            st.clear_count = 0
+        if st.clear_count >= spec.clear_lines:
+            text = obs.clear_message or obs.message
+            ev = self._event(
+                scan_id,
+                spec,
+                "cleared",
+                obs=obs,
+                line_index=m.line_index,
+                direction=m.direction,
+                now_s=now_s,
+                message=text,
+            )
+            return self._clear(st, ev)
+        return None
+
+    def evaluate_tick(self, now: float | None = None) -> list[AlertEvent]:
+        """Stall check for the most recent scan at time ``now`` (default: the clock)."""
+        now_s = float(self._clock() if now is None else now)
+        if self._latest is None or self._latest not in self._scans:
+            return []
+        scan = self._scans[self._latest]
+        if scan.last_arrival_s is None or scan.complete():
+            return []
+        events = []
+        waited = now_s - scan.last_arrival_s
+        usual = float(np.median(scan.intervals_s)) if scan.intervals_s else None
+        for spec in self._stall_specs:
+            st = scan.rules[spec.name]
+            interval = usual if usual is not None else spec.fallback_interval_s
+            if st.active or interval is None:
+                continue
+            limit = max(spec.interval_factor * interval, spec.min_stall_s)
+            if waited > limit:
+                obs = Observation(
+                    raise_cond=True,
+                    clear_cond=False,
+                    seen_value=waited,
+                    seen_unit="s",
+                    baseline_value=interval,
+                    message="",
+                    confidence_z=None,
+                )
+                message = (
+                    f"no new line for {waited:.0f} s (lines usually every {interval:.0f} s; "
+                    f"last was line {scan.last_line_index} at {_iso(scan.last_arrival_s)})"
+                )
+                ev = self._event(
+                    self._latest,
+                    spec,
+                    "raised",
+                    obs=obs,
+                    line_index=scan.last_line_index,
+                    direction=scan.last_direction,
+                    now_s=now_s,
+                    message=message,
+                )
+                events.append(self._raise(st, ev))
+        return events
+
+    # -- inspection and persistence -----------------------------------------------------
+
+    def active(self) -> list[AlertEvent]:
+        """The raise events of every alert still active, oldest scan first."""
+        out = []
+        for scan in self._scans.values():
+            for st in scan.rules.values():
+                if st.active and st.raised is not None:
+                    out.append(AlertEvent.from_dict(st.raised))
+        return out
+
+    def baseline(self, scan_id: str) -> RollingBaseline | None:
+        """The rolling baseline of a scan (None if the scan is unknown)."""
+        scan = self._scans.get(scan_id)
+        return None if scan is None else scan.baseline
+
+    def state_dict(self) -> dict[str, Any]:
+        """The whole state as plain JSON-serialisable data."""
+        return {
+            "version": _STATE_VERSION,
+            "latest_scan": self._latest,
+            "scans": {sid: scan.state_dict() for sid, scan in self._scans.items()},
+        }
+
+    def save(self, path: str | PathLike[str]) -> None:
+        """Write :meth:`state_dict` as JSON atomically (temporary file, fsync, rename).
+
+        Raises
+        ------
+        StoreError
+            If the state cannot be written (disk full, folder not writable).
+        """
+        p = Path(path)
+        text = json.dumps(self.state_dict(), separators=(",", ":"))
+        tmp = p.with_name(f".{p.name}.{os.getpid()}.tmp")
+        try:
+            p.parent.mkdir(parents=True, exist_ok=True)
+            with open(tmp, "w", encoding="utf-8") as fh:
+                fh.write(text)
+                fh.flush()
+                os.fsync(fh.fileno())
+            os.replace(tmp, p)
+        except OSError as exc:
+            tmp.unlink(missing_ok=True)
+            raise StoreError(f"{p}: rule state could not be written: {exc.strerror}") from exc
+
+    @classmethod
+    def restore(
+        cls,
+        rules: RulesConfig,
+        path: str | PathLike[str],
+        *,
+        clock: Callable[[], float] = time.time,
+    ) -> RuleEngine:
+        """An engine continuing from the state saved at ``path`` (fresh if there is none).
+
+        A state file that cannot be parsed or belongs to another state version is moved
+        aside to ``<name>.unreadable`` (never deleted), logged, and a fresh engine starts.
+        """
+        p = Path(path)
+        try:
+            state = json.loads(p.read_text(encoding="utf-8"))
+        except FileNotFoundError:
+            return cls(rules, clock=clock)
+        except (OSError, ValueError) as exc:
+            return cls._fresh_after(p, rules, clock, f"{type(exc).__name__}: {exc}")
+        try:
+            return cls.from_state(rules, state, clock=clock)
+        except (KeyError, TypeError, ValueError, AttributeError) as exc:
+            return cls._fresh_after(p, rules, clock, f"{type(exc).__name__}: {exc}")
+
+    @classmethod
+    def _fresh_after(
+        cls, p: Path, rules: RulesConfig, clock: Callable[[], float], why: str
+    ) -> RuleEngine:
+        aside = p.with_name(p.name + ".unreadable")
+        with contextlib.suppress(OSError):
+            os.replace(p, aside)
+        structlog.get_logger("strayline.rules").warning(
+            "rule_state_unreadable", path=str(p), moved_to=str(aside), problem=why
+        )
+        return cls(rules, clock=clock)
+
+    @classmethod
+    def from_state(
+        cls,
+        rules: RulesConfig,
+        state: Mapping[str, Any],
+        *,
+        clock: Callable[[], float] = time.time,
+    ) -> RuleEngine:
+        """An engine for ``rules`` that continues from a :meth:`state_dict`.
+
+        Raises
+        ------
+        ValueError
+            If the state was written by an incompatible version.
+        """
+        version = state.get("version")
+        if version != _STATE_VERSION:
+            raise ValueError(
+                f"rule engine state must have version {_STATE_VERSION}; found {version!r}"
+            )
+        engine = cls(rules, clock=clock)
+        for sid, scan_state in state["scans"].items():
+            engine._scans[sid] = _ScanState.from_state(scan_state, rules.baseline, engine._specs)
+        engine._latest = state["latest_scan"]
+        return engine
+
+
+def default_rules() -> RulesConfig:
+    """The built-in rule set (the same as ``config/rules.yaml``)."""
+    return RulesConfig(
+        rules=[
+            FluorescenceLostSpec(),
+            ContrastCollapsedSpec(),
+            ResonanceJumpSpec(),
+            FitFailuresRisingSpec(),
+            AcquisitionStalledSpec(),
+            ZfsDriftSpec(),
+        ]
+    )
+
+
+def _key_path(loc: tuple[int | str, ...]) -> str:
+    parts: list[str] = []
+    prev_index = False
+    for item in loc:
+        if isinstance(item, int):
+            parts.append(f"[{item}]")
+            prev_index = True
+            continue
+        if prev_index and item in RULE_KINDS:  # the discriminator's own level
+            prev_index = False
+            continue
+        prev_index = False
+        parts.append(("." if parts else "") + str(item))
+    return "".join(parts) or "<root>"
+
+
+def rules_from_data(
+    data: Mapping[str, Any] | list[Any] | None, path: str | PathLike[str] | None = None
+) -> RulesConfig:
+    """Validate a rule set given as data (a mapping, or a bare list of rules).
+
+    Raises
+    ------
+    ConfigError
+        Naming the file, the dotted key path of the first problem and what was found;
+        further problems are counted in the message.
+    """
+    if data is None:
+        data = {}
+    if isinstance(data, list):
+        data = {"rules": data}
+    try:
+        return RulesConfig.model_validate(data)
+    except ValidationError as exc:
+        errors = exc.errors()
+        first = errors[0]
+        problem = str(first["msg"]).removeprefix("Value error, ")
+        if first["type"] == "extra_forbidden":
+            problem = "unknown key"
+        elif first["type"] == "union_tag_invalid":
+            problem = f"kind must be one of {', '.join(RULE_KINDS)}; found {first['input']!r}"
+        elif "input" in first and first["type"] not in ("missing",):
+            problem += f"; found {first['input']!r}"
+        if len(errors) > 1:
+            problem += f" (and {len(errors) - 1} more problem(s))"
+        raise ConfigError(path, _key_path(tuple(first["loc"])), problem) from None
+
+
+class _HasRules(Protocol):
+    @property
+    def rules(self) -> Any: ...
+
+
+def load_rules(source: str | PathLike[str] | _HasRules) -> RulesConfig:
+    """Read and validate a rule set from a YAML file or from a daemon config.
+
+    Parameters
+    ----------
+    source : path or config
+        A rules YAML file (like ``config/rules.yaml``), or an object with a ``rules``
+        attribute holding the rules as data (the daemon's ``Config``: a list of rule
+        mappings, or a mapping with ``baseline`` and ``rules``); its ``source`` attribute,
+        if any, names the file in errors. Empty or missing rules mean the built-in set,
+        :func:`default_rules` (to run without a rule, list it with ``enabled: false``).
+
+    Raises
+    ------
+    ConfigError
+        If the file cannot be read, is not YAML, or does not validate.
+    """
+    if not isinstance(source, str | PathLike):
+        data = source.rules
+        if not data:
+            return default_rules()
+        return rules_from_data(data, getattr(source, "source", None))
+    p = Path(source)
+    try:
+        text = p.read_text(encoding="utf-8")
+    except OSError as exc:
+        raise ConfigError(p, "<file>", f"cannot be read: {exc.strerror}") from None
+    try:
+        data = yaml.safe_load(text)
+    except yaml.YAMLError as exc:
+        mark = getattr(exc, "problem_mark", None)
+        where = f"line {mark.line + 1}" if mark is not None else "unknown line"
+        raise ConfigError(p, "<yaml>", f"is not valid YAML at {where}") from None
+    if data is not None and not isinstance(data, Mapping | list):
+        raise ConfigError(p, "<root>", f"must be a mapping; found {type(data).__name__}")
+    return rules_from_data(data, p)

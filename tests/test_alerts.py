@@ -1,0 +1,309 @@
+"""Tests for strayline.alerts: alert log, hooks without a shell, stop-request file."""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+import os
+import sys
+import time
+from datetime import datetime
+from pathlib import Path
+
+import pytest
+from structlog.testing import capture_logs
+
+from strayline import alerts
+from strayline.alerts import AlertSink, format_alert, read_alert_log
+from strayline.rules import AlertEvent
+
+EVENT = AlertEvent(
+    time="2026-03-01T23:14:05.120+00:00",
+    scan_id="night-run",
+    rule="fluorescence_lost",
+    severity="critical",
+    state="raised",
+    line_index=42,
+    direction="forward",
+    pixel_range=(131, 256),
+    seen_value=8.4e4,
+    seen_unit="counts/s",
+    baseline_value=2.0e5,
+    baseline_spread=2.1e3,
+    confidence_z=-55.2,
+    message="PL fell to 42% of the running median (2e+05 counts/s) from pixel 131 on",
+    advice="check the tip and the optics; consider stopping the scan",
+)
+PY = sys.executable
+
+
+def _wait_for(predicate, timeout_s: float = 10.0) -> bool:
+    end = time.monotonic() + timeout_s
+    while time.monotonic() < end:
+        if predicate():
+            return True
+        time.sleep(0.02)
+    return False
+
+
+def test_alert_log_is_one_json_object_per_line_and_reads_back(tmp_path: Path) -> None:
+    """Each delivered event is one JSON line; read_alert_log returns them in order and
+    filters by scan and by time."""
+    log = tmp_path / "state" / "alerts.jsonl"
+    sink = AlertSink(log)
+    second = dataclasses.replace(
+        EVENT, time="2026-03-02T01:00:00.000+00:00", scan_id="other", state="cleared"
+    )
+    sink.deliver(EVENT)
+    sink.deliver(second)
+    lines = log.read_text(encoding="utf-8").splitlines()
+    assert len(lines) == 2
+    assert [json.loads(t)["scan_id"] for t in lines] == ["night-run", "other"]
+    assert read_alert_log(log) == [EVENT, second]
+    assert read_alert_log(log, scan_id="other") == [second]
+    assert read_alert_log(log, since=datetime.fromisoformat("2026-03-02T00:00:00+00:00")) == [
+        second
+    ]
+    assert sink.statistics().delivered == 2
+
+
+def test_reader_skips_a_partial_last_line_and_names_a_bad_one(tmp_path: Path) -> None:
+    """A last line still being written is skipped; a bad line in the middle raises an
+    error naming the file and the line number."""
+    log = tmp_path / "alerts.jsonl"
+    log.write_text(EVENT.to_json() + "\n" + EVENT.to_json()[:40], encoding="utf-8")
+    assert read_alert_log(log) == [EVENT]
+    log.write_text("not json\n" + EVENT.to_json() + "\n", encoding="utf-8")
+    with pytest.raises(ValueError, match=r"alerts.jsonl: line 1 must be one alert event"):
+        read_alert_log(log)
+    assert read_alert_log(tmp_path / "missing.jsonl") == []
+
+
+def test_event_is_logged_through_structlog(tmp_path: Path) -> None:
+    """Delivery logs 'alert_raised' at error level for a critical raise, with the fields."""
+    with capture_logs() as logs:
+        AlertSink(None).deliver(EVENT)
+    assert logs[0]["event"] == "alert_raised"
+    assert logs[0]["log_level"] == "error"
+    assert logs[0]["rule"] == "fluorescence_lost"
+    assert logs[0]["line_index"] == 42
+
+
+def test_hook_runs_without_a_shell_with_placeholders(tmp_path: Path) -> None:
+    """The hook's argument list gets its placeholders filled per argument and is run
+    without a shell: shell syntax in the message stays literal."""
+    out = tmp_path / "argv.json"
+    script = "import json,sys; json.dump(sys.argv[1:], open(sys.argv[1], 'w'))"
+    sink = AlertSink(
+        None,
+        hook={
+            "critical": [
+                PY,
+                "-c",
+                script,
+                str(out),
+                "{scan_id}",
+                "{rule}",
+                "{severity}",
+                "{state}",
+                "{line}",
+                "{message}",
+            ]
+        },
+        hook_timeout_s=20,
+    )
+    event = dataclasses.replace(EVENT, message="PL lost; $(touch pwned) && echo `id`")
+    sink.deliver(event)
+    assert sink.wait_hooks(30)
+    sink.close(5)
+    assert json.loads(out.read_text()) == [
+        str(out),
+        "night-run",
+        "fluorescence_lost",
+        "critical",
+        "raised",
+        "42",
+        "PL lost; $(touch pwned) && echo `id`",
+    ]
+    assert not (tmp_path / "pwned").exists()
+    assert not Path("pwned").exists()
+
+
+def test_failing_hook_is_logged_and_not_fatal(tmp_path: Path) -> None:
+    """A hook exiting with status 1 is logged as 'alert_hook_failed' and delivery goes on."""
+    log = tmp_path / "alerts.jsonl"
+    with capture_logs() as logs:
+        sink = AlertSink(log, hook={"critical": [PY, "-c", "import sys; sys.exit(1)"]})
+        sink.deliver(EVENT)
+        assert sink.wait_hooks(30)
+        sink.deliver(EVENT)
+        assert sink.wait_hooks(30)
+        sink.close(5)
+    failures = [e for e in logs if e["event"] == "alert_hook_failed"]
+    assert len(failures) == 2
+    assert failures[0]["returncode"] == 1
+    assert len(read_alert_log(log)) == 2
+    assert sink.statistics().hooks_failed == 2
+
+
+def test_hanging_hook_times_out_without_blocking_delivery(tmp_path: Path) -> None:
+    """A hook that hangs is killed at its timeout and logged; deliver() returns at once."""
+    with capture_logs() as logs:
+        sink = AlertSink(
+            None,
+            hook={"critical": [PY, "-c", "import time; time.sleep(60)"]},
+            hook_timeout_s=0.5,
+        )
+        start = time.monotonic()
+        sink.deliver(EVENT)
+        elapsed = time.monotonic() - start
+        assert _wait_for(lambda: any(e["event"] == "alert_hook_timeout" for e in logs), 20)
+        sink.close(5)
+    assert elapsed < 0.25
+    timeout = next(e for e in logs if e["event"] == "alert_hook_timeout")
+    assert timeout["timeout_s"] == 0.5
+
+
+def test_missing_hook_program_is_logged(tmp_path: Path) -> None:
+    """A hook whose program does not exist is logged as failed, never raised."""
+    with capture_logs() as logs:
+        sink = AlertSink(None, hook={"critical": [str(tmp_path / "no-such-program")]})
+        sink.deliver(EVENT)
+        assert sink.wait_hooks(30)
+        sink.close(5)
+    assert [e["event"] for e in logs].count("alert_hook_failed") == 1
+
+
+def test_full_hook_queue_drops_and_logs_instead_of_blocking(tmp_path: Path) -> None:
+    """With the hook queue full, further hook runs are dropped and logged; deliver() never
+    waits."""
+    with capture_logs() as logs:
+        sink = AlertSink(
+            None,
+            hook={"critical": [PY, "-c", "import time; time.sleep(60)"]},
+            hook_timeout_s=0.3,
+            hook_queue_size=1,
+        )
+        start = time.monotonic()
+        for _ in range(5):
+            sink.deliver(EVENT)
+        elapsed = time.monotonic() - start
+        sink.close(10)  # the running and the queued hook time out, then the thread ends
+    assert elapsed < 0.5
+    assert [e["event"] for e in logs].count("alert_hook_dropped") >= 3
+    assert sink.statistics().hooks_dropped >= 3
+
+
+def test_critical_raise_writes_the_stop_request_atomically(tmp_path: Path) -> None:
+    """A critical raised event writes valid JSON with time, scan, rule, line, message and
+    requested_by 'strayline', leaving no temporary file; warnings and clears write none."""
+    stop = tmp_path / "ctl" / "STOP_REQUEST.json"
+    sink = AlertSink(None, stop_request_file=stop)
+    sink.deliver(dataclasses.replace(EVENT, severity="warning"))
+    sink.deliver(dataclasses.replace(EVENT, state="cleared"))
+    assert not stop.exists()
+    sink.deliver(EVENT)
+    assert json.loads(stop.read_text(encoding="utf-8")) == {
+        "time": EVENT.time,
+        "scan_id": "night-run",
+        "rule": "fluorescence_lost",
+        "line": 42,
+        "message": EVENT.message,
+        "requested_by": "strayline",
+    }
+    assert sorted(p.name for p in stop.parent.iterdir()) == ["STOP_REQUEST.json"]
+    assert sink.statistics().stop_requests_written == 1
+
+
+def test_failed_stop_request_leaves_the_old_file_and_no_temp(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """If the rename fails, the previous stop request is intact, no temporary file is
+    left, and the failure is logged rather than raised."""
+    stop = tmp_path / "STOP_REQUEST.json"
+    stop.write_text('{"old": true}\n', encoding="utf-8")
+
+    def broken_replace(src: str, dst: str) -> None:
+        raise OSError(28, "No space left on device")
+
+    monkeypatch.setattr(alerts.os, "replace", broken_replace)
+    with capture_logs() as logs:
+        AlertSink(None, stop_request_file=stop).deliver(EVENT)
+    assert json.loads(stop.read_text(encoding="utf-8")) == {"old": True}
+    assert sorted(os.listdir(tmp_path)) == ["STOP_REQUEST.json"]
+    assert [e["event"] for e in logs if e["event"].startswith("stop_")] == ["stop_request_failed"]
+
+
+def test_format_alert_is_one_readable_line() -> None:
+    """The formatter puts time, severity, state, scan, line, pixels, rule, message and
+    advice on one line."""
+    text = format_alert(EVENT)
+    assert "\n" not in text
+    assert text == (
+        "2026-03-01T23:14:05.120+00:00 CRITICAL RAISED  night-run line 42 (forward) "
+        "px 131–255 [fluorescence_lost] PL fell to 42% of the running median (2e+05 "
+        "counts/s) from pixel 131 on — check the tip and the optics; consider stopping "
+        "the scan"
+    )
+    cleared = format_alert(dataclasses.replace(EVENT, state="cleared", pixel_range=None))
+    assert " cleared night-run line 42 (forward) [fluorescence_lost]" in cleared
+    assert "—" not in cleared
+
+
+def test_sink_from_daemon_config(tmp_path: Path) -> None:
+    """AlertSink.from_config takes the alert log from paths and the rest from alerts."""
+    from types import SimpleNamespace
+
+    config = SimpleNamespace(
+        paths=SimpleNamespace(alert_log=tmp_path / "alerts.jsonl"),
+        alerts=SimpleNamespace(
+            console=False, hook={}, hook_timeout_s=5.0, stop_request_file=tmp_path / "STOP"
+        ),
+    )
+    sink = AlertSink.from_config(config)
+    sink.deliver(EVENT)
+    assert read_alert_log(tmp_path / "alerts.jsonl") == [EVENT]
+    assert (tmp_path / "STOP").exists()
+
+
+def test_follow_alerts_prints_the_tail_then_new_events(tmp_path: Path) -> None:
+    """follow_alerts prints the last N events, then events appended while following, and
+    refuses a malformed --since with exit code 2."""
+    import io
+    import threading
+
+    log = tmp_path / "alerts.jsonl"
+    sink = AlertSink(log)
+    for i in range(3):
+        sink.deliver(dataclasses.replace(EVENT, line_index=i))
+    out = io.StringIO()
+    assert alerts.follow_alerts(log, last=2, out=out) == 0
+    assert [line.split(" line ")[1].split()[0] for line in out.getvalue().splitlines()] == [
+        "1",
+        "2",
+    ]
+    assert alerts.follow_alerts(log, since="yesterday", out=io.StringIO()) == 2
+
+    out = io.StringIO()
+    stop = threading.Event()
+    worker = threading.Thread(
+        target=alerts.follow_alerts,
+        args=(log,),
+        kwargs={
+            "follow": True,
+            "last": 0,
+            "as_json": True,
+            "poll_s": 0.02,
+            "out": out,
+            "stop": stop,
+        },
+    )
+    worker.start()
+    try:
+        time.sleep(0.1)
+        sink.deliver(dataclasses.replace(EVENT, line_index=7))
+        assert _wait_for(lambda: '"line_index":7' in out.getvalue(), 10)
+    finally:
+        stop.set()
+        worker.join(5)
+    assert [json.loads(t)["line_index"] for t in out.getvalue().splitlines()] == [7]

@@ -1,0 +1,312 @@
+"""Tests for strayline.metrics: per-line levels, line-to-line changes and step location."""
+
+from __future__ import annotations
+
+import math
+from datetime import UTC, datetime, timedelta
+from pathlib import Path
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from scipy.stats import median_abs_deviation
+
+from strayline._rules_steps import best_level_segment
+from strayline.field import LineField
+from strayline.fit import FitStatus, LineFit
+from strayline.lines import ScanLine
+from strayline.metrics import (
+    ROW_KEYS,
+    LineMetrics,
+    MetricsOptions,
+    MetricsTracker,
+    line_metrics,
+    line_rows,
+)
+
+T0 = datetime(2026, 3, 2, 1, 0, tzinfo=UTC)
+N = 256
+
+
+def records(
+    *,
+    index: int = 0,
+    direction: str = "forward",
+    pl_per_s: np.ndarray | None = None,
+    field_t: np.ndarray | None = None,
+    center_mean_hz: np.ndarray | None = None,
+    status: np.ndarray | None = None,
+    contrast: np.ndarray | None = None,
+    x_m: np.ndarray | None = None,
+    aux: dict[str, np.ndarray] | None = None,
+    dwell_s: float = 2e-3,
+    seed: int = 0,
+) -> tuple[ScanLine, LineFit, LineField]:
+    """Records of one line from per-pixel truth (small noise from a fixed seed)."""
+    rng = np.random.default_rng(seed)
+    pl = np.full(N, 1.5e5) if pl_per_s is None else pl_per_s
+    b = np.full(N, 2e-3) + rng.normal(0, 2e-6, N) if field_t is None else field_t
+    cm = np.full(N, 2.8702e9) + rng.normal(0, 10e3, N) if center_mean_hz is None else center_mean_hz
+    stat = np.zeros(N, np.uint8) if status is None else status
+    c = np.full(N, 0.12) if contrast is None else contrast
+    x = np.arange(N) * 25e-9 if x_m is None else x_m
+    end = T0 + timedelta(seconds=30.0 * (index + 1))
+    line = ScanLine(
+        source=Path(f"/data/bench/line_{index:05d}.h5"),
+        scan_id="bench",
+        line_index=index,
+        n_lines_planned=64,
+        direction=direction,  # type: ignore[arg-type]
+        start_time=end - timedelta(seconds=25),
+        end_time=end,
+        dwell_s=dwell_s,
+        nv_theta_rad=0.9553,
+        nv_phi_rad=0.7854,
+        freq_hz=np.linspace(2.8e9, 2.95e9, 5),
+        counts=np.zeros((N, 5)),
+        x_m=x,
+        y_m=index * 25e-9,
+        aux=aux or {},
+        aux_units=dict.fromkeys(aux or {}, "m"),
+    )
+
+    def two(a: np.ndarray) -> np.ndarray:
+        return np.stack([a, a], axis=1)
+
+    fit = LineFit(
+        center_hz=np.stack([cm - 56e6, cm + 56e6], 1),
+        center_sigma_hz=two(np.full(N, 10e3)),
+        contrast=two(c),
+        contrast_sigma=two(np.full(N, 0.004)),
+        fwhm_hz=np.stack([np.full(N, 7e6), np.full(N, 9e6)], 1),
+        fwhm_sigma_hz=two(np.full(N, 0.1e6)),
+        baseline=pl * dwell_s,
+        baseline_sigma=np.sqrt(pl * dwell_s),
+        slope=np.zeros(N),
+        chi2_red=np.full(N, 1.1),
+        status=stat,
+        n_iter=np.full(N, 6, np.int32),
+    )
+    field = LineField(
+        field_nv_t=b,
+        field_nv_sigma_t=np.full(N, 2e-6),
+        field_abs_t=np.abs(b),
+        field_abs_sigma_t=np.full(N, 2e-6),
+        angle_rad=np.zeros(N),
+        angle_sigma_rad=np.zeros(N),
+        center_mean_hz=cm,
+        center_mean_sigma_hz=np.full(N, 10e3),
+        status=stat,
+    )
+    return line, fit, field
+
+
+def test_levels_are_medians_over_the_line() -> None:
+    """PL rate is baseline/dwell; levels are medians; FWHM averages the two dips."""
+    pl = np.linspace(1e5, 2e5, N)
+    m = line_metrics(*records(pl_per_s=pl))
+    assert m.pl_median_per_s == pytest.approx(np.median(pl))
+    assert m.pl_p10_per_s == pytest.approx(np.percentile(pl, 10))
+    assert m.contrast_median == pytest.approx(0.12)
+    assert m.fwhm_median_hz == pytest.approx(8e6)
+    assert m.chi2_red_median == pytest.approx(1.1)
+    assert m.fit_failure_fraction == 0.0
+    assert math.isnan(m.time_since_previous_s)
+    assert math.isnan(m.pl_step)
+
+
+def test_failed_fits_are_counted_and_left_out_of_field_levels() -> None:
+    """Failures are status != OK; failed pixels leave the field median and spread, and a
+    fit that found no dip counts as contrast 0."""
+    status = np.zeros(N, np.uint8)
+    status[:64] = FitStatus.NO_RESONANCE
+    status[64:96] = FitStatus.NOT_CONVERGED
+    field = np.full(N, 1e-3)
+    field[:96] = 9.0  # garbage where the fits failed
+    field[96:] += np.random.default_rng(5).normal(0, 1e-5, N - 96)
+    m = line_metrics(*records(field_t=field, status=status))
+    assert m.fit_failure_fraction == pytest.approx(96 / N)
+    assert m.field_median_t == pytest.approx(np.median(field[96:]))
+    # spread = normal-consistent MAD, as scipy.stats.median_abs_deviation(scale="normal")
+    assert m.field_spread_t == pytest.approx(median_abs_deviation(field[96:], scale="normal"))
+    assert m.contrast_median == pytest.approx(0.12)  # 160 of 256 pixels at 0.12, 64 at 0
+
+
+def test_pl_drop_from_pixel_128_is_located() -> None:
+    """A 30 % PL drop from pixel 128 to the end of a forward line is found at 128 with
+    value −0.30 and marked as running to the end of the acquisition."""
+    before = records(seed=1)
+    pl = np.full(N, 1.5e5) * (1 + np.random.default_rng(2).normal(0, 0.01, N))
+    pl[128:] *= 0.7
+    m = line_metrics(*records(pl_per_s=pl, seed=2), previous_rows=line_rows(*before))
+    assert m.pl_step_range == (128, N)
+    assert m.pl_step_first_pixel == 128
+    assert m.pl_step == pytest.approx(-0.30, abs=0.01)
+    assert m.pl_step_to_end == 1.0
+    assert m.pl_step_level_per_s == pytest.approx(0.7 * 1.5e5, rel=0.01)
+    assert m.pl_change_median == pytest.approx(-0.15, abs=0.16)  # half the pixels changed
+
+
+def test_backward_line_steps_run_toward_lower_x() -> None:
+    """On a backward trace stored with increasing x, a change from pixel 100 on in
+    acquisition order covers storage pixels 0–100 and starts at pixel 100."""
+    before = records(direction="backward", seed=1)
+    pl = np.full(N, 1.5e5)
+    pl[:101] *= 0.5
+    m = line_metrics(
+        *records(direction="backward", pl_per_s=pl, seed=2), previous_rows=line_rows(*before)
+    )
+    assert m.pl_step_range == (0, 101)
+    assert m.pl_step_first_pixel == 100
+    assert m.pl_step_to_end == 1.0
+
+
+def test_bounded_common_mode_shift_is_found_inside_the_line() -> None:
+    """A +3 MHz shift of (f₋+f₊)/2 over pixels 60–119 only is found there, not to the end."""
+    before = records(seed=1)
+    cm = np.full(N, 2.8702e9) + np.random.default_rng(3).normal(0, 10e3, N)
+    cm[60:120] += 3e6
+    m = line_metrics(*records(center_mean_hz=cm, seed=3), previous_rows=line_rows(*before))
+    assert m.center_mean_step_range == (60, 120)
+    assert m.center_mean_step == pytest.approx(3e6, rel=0.01)
+    assert m.center_mean_step_to_end == 0.0
+
+
+def test_field_roughness_falls_as_exp_minus_2k_delta_with_standoff() -> None:
+    """For a sinusoidal field pattern the stray field at stand-off d scales as exp(−k d)
+    (Beardsley, IEEE Trans. Magn. 25, 671 (1989); PHYSICS.md §4), so raising d by δ from
+    pixel 128 on scales the roughness there by r = exp(−2kδ); the step value equals
+    ln((r·E + ε)/(E + ε)), ε being the search's regulariser (min_step_pixels × mean
+    previous roughness per pixel)."""
+    pixel_m, period_m, d_m, delta_m = 25e-9, 400e-9, 50e-9, 10e-9
+    k = 2 * np.pi / period_m
+    x = np.arange(N) * pixel_m
+    amp = np.full(N, 1e-3 * np.exp(-k * d_m))
+    prev_b = 2e-3 + amp * np.sin(k * x)
+    amp[128:] *= np.exp(-k * delta_m)
+    now_b = 2e-3 + amp * np.sin(k * x)
+    opts = MetricsOptions(min_step_pixels=16)
+    m = line_metrics(
+        *records(field_t=now_b, x_m=x),
+        previous_rows=line_rows(*records(field_t=prev_b, x_m=x)),
+        options=opts,
+    )
+    g_prev = np.diff(prev_b) ** 2 - 2 * (2e-6) ** 2
+    e_prev_post = g_prev[127:].sum()
+    eps = opts.min_step_pixels * g_prev.mean()
+    r = np.exp(-2 * k * delta_m)
+    assert m.field_step_range is not None
+    assert abs(m.field_step_range[0] - 128) <= 1
+    assert m.field_step == pytest.approx(
+        np.log((r * e_prev_post + eps) / (e_prev_post + eps)), rel=0.03
+    )
+    assert m.field_step < 0
+
+
+def test_change_fraction_uses_the_difference_sigma() -> None:
+    """A pixel counts as changed when |ΔB| exceeds change_sigma × √(σ_now² + σ_prev²)."""
+    prev = records(field_t=np.full(N, 1e-3))
+    now_b = np.full(N, 1e-3)
+    now_b[:32] += 5.5 * np.sqrt(2) * 2e-6  # just above 5 σ of the difference
+    now_b[32:64] += 4.5 * np.sqrt(2) * 2e-6  # just below
+    m = line_metrics(*records(field_t=now_b), previous_rows=line_rows(*prev))
+    assert m.field_change_fraction == pytest.approx(32 / N)
+
+
+def test_rows_with_another_pixel_count_are_ignored() -> None:
+    """Rows of a line with a different number of pixels give no line-to-line numbers."""
+    rows = {k: v[:100] for k, v in line_rows(*records()).items()}
+    m = line_metrics(*records(), previous_rows=rows)
+    assert math.isnan(m.field_change_median_t)
+    assert m.pl_step_range is None
+
+
+def test_tracker_compares_each_direction_with_its_own_last_line() -> None:
+    """A backward trace is compared with the previous backward trace: a constant
+    forward/backward PL offset gives no step, and the interval is between consecutive
+    lines."""
+    tracker = MetricsTracker()
+    steps = []
+    for i in range(6):
+        direction = "forward" if i % 2 == 0 else "backward"
+        pl = np.full(N, 1.5e5 if direction == "forward" else 0.9e5)
+        pl = pl * (1 + np.random.default_rng(i).normal(0, 0.01, N))
+        m = tracker.update(*records(index=i, direction=direction, pl_per_s=pl, seed=i))
+        steps.append(m.pl_step)
+        if i > 0:
+            assert m.time_since_previous_s == pytest.approx(30.0)
+    assert math.isnan(steps[0])
+    assert math.isnan(steps[1])
+    # noise only (1 % per pixel): far below the 40 % forward/backward offset
+    assert max(abs(s) for s in steps[2:]) < 0.03
+
+
+def test_tracker_seed_restores_rows_and_checks_keys() -> None:
+    """Seeding rows (as rebuilt from a store) makes the next line compare against them;
+    rows lacking a key are refused with the key named."""
+    tracker = MetricsTracker()
+    tracker.seed("forward", line_rows(*records(seed=1)))
+    pl = np.full(N, 1.5e5)
+    pl[200:] *= 0.5
+    assert tracker.update(*records(pl_per_s=pl)).pl_step_range == (200, N)
+    with pytest.raises(ValueError, match="lack keys \\['x_m'\\]"):
+        tracker.seed("forward", {k: np.zeros(3) for k in ROW_KEYS if k != "x_m"})
+
+
+def test_aux_statistics_and_value_lookup() -> None:
+    """Auxiliary channels get median/p10/p90/min/max/spread, reachable by name."""
+    top = np.linspace(0.0, 100e-9, N)
+    m = line_metrics(*records(aux={"topography": top}))
+    assert m.value("aux.topography.median") == pytest.approx(50e-9)
+    assert m.value("aux.topography.p90") == pytest.approx(np.percentile(top, 90))
+    assert m.value("aux.topography.max") == pytest.approx(100e-9)
+    assert m.aux_units["topography"] == "m"
+    assert m.value("pl_median_per_s") == m.pl_median_per_s
+    assert "aux.topography.spread" in m.numeric()
+    with pytest.raises(KeyError):
+        m.value("scan_id")
+
+
+def test_metrics_are_frozen() -> None:
+    """LineMetrics is a frozen record."""
+    m: LineMetrics = line_metrics(*records())
+    with pytest.raises(AttributeError):
+        m.pl_median_per_s = 0.0  # type: ignore[misc]
+
+
+@settings(max_examples=40, deadline=None, derandomize=True)
+@given(
+    start=st.integers(min_value=16, max_value=N - 16),
+    size=st.floats(min_value=0.05, max_value=0.8),
+    sign=st.sampled_from([-1.0, 1.0]),
+)
+def test_step_start_is_recovered_for_any_position(start: int, size: float, sign: float) -> None:
+    """A level step ≥ 5 σ of the pixel noise starting anywhere is located to ±1 pixel with
+    its size within 3 σ/√n."""
+    rng = np.random.default_rng(start)
+    c = rng.normal(0, 0.01, N)
+    c[start:] += sign * size
+    seg = best_level_segment(c, 16)
+    assert seg is not None
+    assert abs(seg.start - start) <= 1
+    assert seg.stop == N
+    assert seg.value == pytest.approx(sign * size, abs=3 * 0.01 / np.sqrt(16) + 0.01)
+
+
+@pytest.mark.parametrize("n", [300, 1024, 2000])
+def test_long_lines_are_searched_coarse_then_fine_without_losing_the_pixel(n: int) -> None:
+    """On lines longer than the exhaustive grid, a PL drop from a pixel between grid
+    boundaries and a bounded shift are still located to the pixel."""
+    rng = np.random.default_rng(n)
+    c = rng.normal(0, 0.01, n)
+    start = n // 2 + 3
+    c[start:] -= 0.3
+    seg = best_level_segment(c, 16)
+    assert seg is not None
+    assert (seg.start, seg.stop) == (start, n)
+    d = rng.normal(0, 0.01, n)
+    d[101:177] += 0.2
+    seg = best_level_segment(d, 16)
+    assert seg is not None
+    assert (seg.start, seg.stop) == (101, 177)

@@ -1,0 +1,635 @@
+"""Tests for strayline.rules: built-in detectors, persistence, hysteresis, restarts, stalls.
+
+Synthetic scans are built from per-pixel rows: a film with parallel stripe domains whose
+walls cross each line obliquely, so every wall moves along the fast axis from one line to
+the next (the sharp features a clean scan is full of). The field of a wall is twice the
+field of a film edge (PHYSICS.md §5): for a +z film in x < 0, a line current I_s along +y,
+Bx = (μ0 I_s / 2π) d / (x² + d²), Bz = −(μ0 I_s / 2π) x / (x² + d²) (Hingant et al., Phys.
+Rev. Applied 4, 014003 (2015); wall = two edges, Tetienne et al., Nat. Commun. 6, 6733
+(2015)). The NV axis is the (100)-tip orientation θ = 54.7356° (PHYSICS.md §6).
+(f₋ + f₊)/2 = D + 3(γB⊥)²/(2D) to lowest order (PHYSICS.md §2, [num]).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from datetime import UTC, datetime, timedelta
+from pathlib import Path
+
+import numpy as np
+import pytest
+from scipy.constants import mu_0, physical_constants
+
+from strayline.errors import ConfigError
+from strayline.field import LineField
+from strayline.fit import FitStatus, LineFit
+from strayline.lines import ScanLine
+from strayline.metrics import LineMetrics, MetricsTracker
+from strayline.rules import (
+    AcquisitionStalledSpec,
+    AlertEvent,
+    FluorescenceLostSpec,
+    RollingBaseline,
+    RuleEngine,
+    RulesConfig,
+    ThresholdSpec,
+    default_rules,
+    load_rules,
+    rules_from_data,
+)
+
+REPO = Path(__file__).resolve().parents[1]
+# γ_NV = g μB / h with g = 2.0028 (Loubser & van Wyk 1978, from memory; PHYSICS.md §1)
+GAMMA_HZ_PER_T = 2.0028 / 2 * physical_constants["Bohr magneton in Hz/T"][0] * 2
+D_HZ = 2.870e9  # room-temperature zero-field splitting, PHYSICS.md §1 [mem]
+THETA_RAD = np.arccos(1 / np.sqrt(3))  # (100) tip, PHYSICS.md §6
+LINE_PERIOD_S = 60.0
+T0 = datetime(2026, 3, 1, 22, 0, tzinfo=UTC)
+
+Fault = Callable[[int, dict[str, np.ndarray]], None]
+
+
+@dataclass
+class Scene:
+    """A night scan of stripe domains; faults edit the per-pixel truth of a line."""
+
+    n_lines: int = 24
+    n_pixels: int = 256
+    pixel_m: float = 20e-9
+    standoff_m: float = 50e-9
+    sheet_moment_a: float = 0.5e-3
+    wall_speed_px: float = 1.0
+    bias_t: float = 3e-3
+    pl_per_s: float = 2e5
+    dwell_s: float = 1e-3
+    seed: int = 7
+    direction: str = "forward"
+    faults: list[Fault] = field(default_factory=list)
+
+
+def _wall_field_t(
+    x_m: np.ndarray, walls_m: np.ndarray, standoff_m: np.ndarray, moment_a: float
+) -> tuple[np.ndarray, np.ndarray]:
+    bx = np.zeros_like(x_m)
+    bz = np.zeros_like(x_m)
+    for i, xw in enumerate(walls_m):
+        k = (1.0 if i % 2 == 0 else -1.0) * 2 * mu_0 * moment_a / (2 * np.pi)
+        u = x_m - xw
+        bx += k * standoff_m / (u**2 + standoff_m**2)
+        bz -= k * u / (u**2 + standoff_m**2)
+    return bx, bz
+
+
+def scan_lines(scene: Scene) -> list[tuple[ScanLine, LineFit, LineField]]:
+    """Render the scene's lines as the records the pipeline passes to the rules."""
+    rng = np.random.default_rng(scene.seed)
+    n = scene.n_pixels
+    x = np.arange(n) * scene.pixel_m
+    walls0 = (np.cumsum(rng.uniform(4, 12, 400)) - 600) * scene.pixel_m
+    out = []
+    for k in range(scene.n_lines):
+        truth = {
+            "standoff_m": np.full(n, scene.standoff_m),
+            "pl_per_s": np.full(n, scene.pl_per_s),
+            "contrast": np.full(n, 0.15),
+            "center_shift_hz": np.zeros(n),
+            "status": np.zeros(n, np.uint8),
+        }
+        for fault in scene.faults:
+            fault(k, truth)
+        walls = walls0 + scene.wall_speed_px * k * scene.pixel_m
+        bx, bz = _wall_field_t(x, walls, truth["standoff_m"], scene.sheet_moment_a)
+        b_nv = np.sin(THETA_RAD) * bx + np.cos(THETA_RAD) * bz + scene.bias_t
+        b_perp = np.abs(np.cos(THETA_RAD) * bx - np.sin(THETA_RAD) * bz)
+        cm = D_HZ + 3 * (GAMMA_HZ_PER_T * b_perp) ** 2 / (2 * D_HZ) + truth["center_shift_hz"]
+        b_meas = b_nv + rng.normal(0, 5e-6, n)
+        cm_meas = cm + rng.normal(0, 20e3, n)
+        pl = truth["pl_per_s"] * (1 + rng.normal(0, 0.01, n))
+        end = T0 + timedelta(seconds=LINE_PERIOD_S * (k + 1))
+        line = ScanLine(
+            source=Path(f"/data/night/line_{k:05d}.h5"),
+            scan_id="night-run",
+            line_index=k,
+            n_lines_planned=scene.n_lines,
+            direction=scene.direction,  # type: ignore[arg-type]
+            start_time=end - timedelta(seconds=0.9 * LINE_PERIOD_S),
+            end_time=end,
+            dwell_s=scene.dwell_s,
+            nv_theta_rad=float(THETA_RAD),
+            nv_phi_rad=0.0,
+            freq_hz=np.linspace(2.75e9, 2.99e9, 3),
+            counts=np.zeros((n, 3)),
+            x_m=x,
+            y_m=k * scene.pixel_m,
+        )
+
+        def two(a: np.ndarray) -> np.ndarray:
+            return np.stack([a, a], axis=1)
+
+        status = truth["status"]
+        fit = LineFit(
+            center_hz=np.stack(
+                [cm_meas - GAMMA_HZ_PER_T * b_meas, cm_meas + GAMMA_HZ_PER_T * b_meas], 1
+            ),
+            center_sigma_hz=two(np.full(n, 20e3)),
+            contrast=two(truth["contrast"]),
+            contrast_sigma=two(np.full(n, 0.005)),
+            fwhm_hz=two(np.full(n, 8e6)),
+            fwhm_sigma_hz=two(np.full(n, 0.2e6)),
+            baseline=pl * scene.dwell_s,
+            baseline_sigma=np.sqrt(pl * scene.dwell_s),
+            slope=np.zeros(n),
+            chi2_red=np.ones(n),
+            status=status,
+            n_iter=np.full(n, 5, np.int32),
+        )
+        fld = LineField(
+            field_nv_t=b_meas,
+            field_nv_sigma_t=np.full(n, 5e-6),
+            field_abs_t=np.abs(b_meas),
+            field_abs_sigma_t=np.full(n, 5e-6),
+            angle_rad=np.zeros(n),
+            angle_sigma_rad=np.zeros(n),
+            center_mean_hz=cm_meas,
+            center_mean_sigma_hz=np.full(n, 20e3),
+            status=status,
+        )
+        out.append((line, fit, fld))
+    return out
+
+
+class FakeClock:
+    """A clock the test moves by hand."""
+
+    def __init__(self, t_s: float = T0.timestamp()) -> None:
+        self.t_s = t_s
+
+    def __call__(self) -> float:
+        return self.t_s
+
+
+def run(scene: Scene, rules: RulesConfig | None = None) -> list[AlertEvent]:
+    """Feed a scene line by line, one line period apart, and collect the events."""
+    clock = FakeClock()
+    engine = RuleEngine(rules or default_rules(), clock=clock)
+    tracker = MetricsTracker()
+    events = []
+    for records in scan_lines(scene):
+        clock.t_s += LINE_PERIOD_S
+        events += engine.evaluate_line("night-run", tracker.update(*records))
+    return events
+
+
+def tip_crash(line: int, pixel: int, *, extra_standoff_m: float, pl_factor: float = 1.0) -> Fault:
+    def apply(k: int, t: dict[str, np.ndarray]) -> None:
+        if k == line:
+            t["standoff_m"][pixel:] += extra_standoff_m
+            t["pl_per_s"][pixel:] *= pl_factor
+        elif k > line:
+            t["standoff_m"][:] += extra_standoff_m
+            t["pl_per_s"][:] *= pl_factor
+
+    return apply
+
+
+def _only(events: list[AlertEvent], rule: str) -> list[AlertEvent]:
+    return [e for e in events if e.rule == rule]
+
+
+# -- resonance jump vs sharp features ----------------------------------------------------
+
+
+@pytest.mark.parametrize("speed_px", [0.5, 1.0, 1.5])
+def test_moving_walls_raise_nothing(speed_px: float) -> None:
+    """A clean scan full of domain walls moving up to 1.5 pixels per line raises no alert
+    (sample features are continuous across lines: common practice, PHYSICS.md §7)."""
+    assert run(Scene(wall_speed_px=speed_px)) == []
+
+
+@pytest.mark.parametrize("speed_px", [0.5, 1.0, 1.5])
+def test_standoff_step_from_pixel_128_fires_within_two_lines(speed_px: float) -> None:
+    """A 10 nm stand-off increase from pixel 128 of line 12 onward, persisting, raises
+    resonance_jump by line 13, located at pixel 128 and called a stand-off change (the field
+    decays as exp(−k d): Beardsley, IEEE Trans. Magn. 25, 671 (1989); PHYSICS.md §4)."""
+    scene = Scene(wall_speed_px=speed_px, faults=[tip_crash(12, 128, extra_standoff_m=10e-9)])
+    jumps = _only(run(scene), "resonance_jump")
+    assert [e.state for e in jumps] == ["raised"]
+    ev = jumps[0]
+    assert ev.line_index is not None
+    assert 12 <= ev.line_index <= 13
+    assert ev.pixel_range is not None
+    assert abs(ev.pixel_range[0] - 128) <= 4
+    assert ev.pixel_range[1] >= 240  # the roughness range ends at the last wall crossed
+    assert ev.severity == "critical"
+    assert "stand-off change suspected" in ev.message
+    assert "at line 12 from pixel" in ev.message
+
+
+def test_tip_crash_with_pl_drop_is_called_a_tip_crash() -> None:
+    """A stand-off step with a 30 % PL drop from pixel 128 on is reported as a suspected
+    tip crash with the pixel range 128–255 (fault signature: PHYSICS.md §7, common
+    practice)."""
+    scene = Scene(faults=[tip_crash(12, 128, extra_standoff_m=10e-9, pl_factor=0.7)])
+    events = run(scene)
+    jumps = _only(events, "resonance_jump")
+    assert len(jumps) == 1
+    assert jumps[0].line_index == 13
+    assert jumps[0].pixel_range == (128, 256)
+    assert jumps[0].message.startswith("tip crash suspected: PL fell by 30% with the step")
+    assert "from pixel 128 on" in jumps[0].message
+    assert not _only(events, "fluorescence_lost")  # 70 % of the median is above 60 %
+
+
+def test_touched_sample_is_raised_then_cleared_when_it_reverts() -> None:
+    """A 3 MHz common-mode shift over pixels 60–119 for lines 12–15 is raised as a contact
+    within two lines and cleared, once, when it reverts (strain shifts D: Doherty et al.,
+    PRL 112, 047601 (2014), PHYSICS.md §7)."""
+
+    def touch(k: int, t: dict[str, np.ndarray]) -> None:
+        if 12 <= k < 16:
+            t["center_shift_hz"][60:120] += 3e6
+
+    jumps = _only(run(Scene(faults=[touch])), "resonance_jump")
+    assert [(e.state, e.line_index) for e in jumps] == [("raised", 13), ("cleared", 16)]
+    assert jumps[0].message.startswith("contact suspected")
+    assert jumps[0].pixel_range is not None
+    assert abs(jumps[0].pixel_range[0] - 60) <= 2
+    assert "reverted at line 16" in jumps[1].message
+
+
+# -- the other built-in rules ------------------------------------------------------------
+
+
+def test_fluorescence_lost_mid_line_fires_on_that_line_with_the_pixel() -> None:
+    """PL falling to 5 % from pixel 131 of line 10 raises fluorescence_lost on line 10
+    naming pixel 131 (rule of thumb: below 50–70 % of a running median, PHYSICS.md §7)."""
+
+    def lost(k: int, t: dict[str, np.ndarray]) -> None:
+        if k == 10:
+            t["pl_per_s"][131:] *= 0.05
+        elif k > 10:
+            t["pl_per_s"][:] *= 0.05
+
+    scene = Scene(n_lines=14, faults=[lost])
+    raised = [e for e in run(scene) if e.rule == "fluorescence_lost"]
+    assert len(raised) == 1
+    assert raised[0].line_index == 10
+    assert raised[0].state == "raised"
+    assert raised[0].severity == "critical"
+    assert "PL fell to 5% of the running median" in raised[0].message
+    assert "from pixel 131 on" in raised[0].message
+    assert raised[0].pixel_range == (131, 256)
+
+
+def test_contrast_collapse_with_normal_pl_fires_after_two_lines() -> None:
+    """Contrast at 1 % with no dips found and PL normal (microwave off) raises
+    contrast_collapsed after its two lines of persistence (PHYSICS.md §7, common practice)."""
+
+    def microwave_off(k: int, t: dict[str, np.ndarray]) -> None:
+        if k >= 10:
+            t["contrast"][:] = 0.01
+            t["status"][:] = FitStatus.NO_RESONANCE
+
+    events = run(Scene(n_lines=14, faults=[microwave_off]))
+    collapsed = _only(events, "contrast_collapsed")
+    assert [(e.state, e.line_index) for e in collapsed] == [("raised", 11)]
+    assert "while PL stayed at" in collapsed[0].message
+    assert not _only(events, "fluorescence_lost")
+    assert [e.line_index for e in _only(events, "fit_failures_rising")] == [11]
+
+
+def test_zfs_drift_reports_the_temperature_equivalent() -> None:
+    """A common-mode drift of 50 kHz per line raises zfs_drift once past 0.37 MHz and
+    converts it with dD/dT = −74.2 kHz/K (Acosta et al., PRL 104, 070801 (2010))."""
+
+    def warm_up(k: int, t: dict[str, np.ndarray]) -> None:
+        if k >= 12:
+            t["center_shift_hz"][:] -= 50e3 * (k - 11)
+
+    drift = _only(run(Scene(n_lines=24, faults=[warm_up])), "zfs_drift")
+    assert [e.state for e in drift] == ["raised"]
+    ev = drift[0]
+    assert ev.seen_value is not None
+    assert ev.seen_value < -0.37e6
+    kelvin = ev.seen_value / -74.2e3
+    assert f"≈ {kelvin:+.1f} K" in ev.message
+    # line 19 is the first beyond 0.37 MHz (−0.40 MHz); 3 lines of persistence: 19, 20, 21
+    assert ev.line_index == 21
+
+
+# -- engine mechanics on metric sequences ------------------------------------------------
+
+
+def _metrics(i: int, **values: float) -> LineMetrics:
+    base = {
+        "scan_id": "s1",
+        "line_index": i,
+        "direction": "forward",
+        "n_lines_planned": 1000,
+        "n_pixels": 64,
+        "end_time_s": T0.timestamp() + LINE_PERIOD_S * i,
+        "pl_median_per_s": 2e5,
+        "pl_p10_per_s": 1.9e5,
+        "contrast_median": 0.15,
+        "fwhm_median_hz": 8e6,
+        "fit_failure_fraction": 0.0,
+        "field_median_t": 1e-3,
+        "field_spread_t": 1e-4,
+        "center_mean_median_hz": 2.87e9,
+        "chi2_red_median": 1.0,
+        "field_sigma_median_t": 5e-6,
+        "time_since_previous_s": LINE_PERIOD_S,
+    }
+    base.update(values)
+    return LineMetrics(**base)  # type: ignore[arg-type]
+
+
+def _pl_sequence(values: list[float], rules: RulesConfig, clock: FakeClock | None = None):
+    clock = clock or FakeClock()
+    engine = RuleEngine(rules, clock=clock)
+    events = []
+    for i, v in enumerate(values):
+        clock.t_s += LINE_PERIOD_S
+        rng = np.random.default_rng(i)  # small scatter, fixed seed
+        events += engine.evaluate_line(
+            "s1", _metrics(i, pl_median_per_s=v * (1 + 0.01 * rng.normal()))
+        )
+    return engine, events
+
+
+def _pl_rules(**kw: int) -> RulesConfig:
+    return RulesConfig(rules=[FluorescenceLostSpec(**kw)])
+
+
+def test_a_fault_lasting_100_lines_gives_one_raise_and_one_clear() -> None:
+    """PL at 30 % for 100 lines then back gives exactly one raised and one cleared event
+    (no flood)."""
+    pl = [2e5] * 10 + [0.6e5] * 100 + [2e5] * 10
+    _, events = _pl_sequence(pl, _pl_rules(clear_lines=2))
+    assert [(e.state, e.line_index) for e in events] == [("raised", 10), ("cleared", 111)]
+
+
+def test_persistence_needs_consecutive_lines() -> None:
+    """With persistence 3, two low lines then a normal one raise nothing; three in a row
+    raise on the third."""
+    pl = [2e5] * 10 + [0.5e5, 0.5e5, 2e5] + [0.5e5] * 3 + [2e5] * 4
+    _, events = _pl_sequence(pl, _pl_rules(persistence_lines=3, clear_lines=1))
+    assert [(e.state, e.line_index) for e in events] == [("raised", 15), ("cleared", 16)]
+
+
+def test_hysteresis_keeps_the_alert_between_the_two_thresholds() -> None:
+    """PL back at 70 % (above the 60 % raise level, below the 80 % clear level) keeps the
+    alert; only PL above 80 % for clear_lines lines clears it."""
+    pl = [2e5] * 10 + [0.5e5] * 2 + [1.4e5] * 10 + [1.9e5] * 3
+    _, events = _pl_sequence(pl, _pl_rules(clear_lines=3))
+    assert [(e.state, e.line_index) for e in events] == [("raised", 10), ("cleared", 24)]
+
+
+def test_restart_mid_alert_neither_reraises_nor_forgets() -> None:
+    """An engine rebuilt from a JSON round trip of its state in the middle of a fault
+    lists the alert as active, raises nothing more and clears it once."""
+    clock = FakeClock()
+    engine, events = _pl_sequence([2e5] * 10 + [0.5e5] * 5, _pl_rules(clear_lines=2), clock)
+    assert [e.state for e in events] == ["raised"]
+    state = json.loads(json.dumps(engine.state_dict()))
+    restored = RuleEngine.from_state(_pl_rules(clear_lines=2), state, clock=clock)
+    assert [e.rule for e in restored.active()] == ["fluorescence_lost"]
+    assert restored.active()[0] == events[0]
+    later = []
+    for i, v in enumerate([0.5e5] * 20 + [2e5] * 3, start=15):
+        clock.t_s += LINE_PERIOD_S
+        later += restored.evaluate_line("s1", _metrics(i, pl_median_per_s=v))
+    assert [(e.state, e.line_index) for e in later] == [("cleared", 36)]
+    assert restored.active() == []
+
+
+def test_baseline_learns_only_from_good_lines() -> None:
+    """Lines during an active alert do not enter the rolling baseline."""
+    engine, _ = _pl_sequence([2e5] * 10 + [0.5e5] * 20, _pl_rules())
+    baseline = engine.baseline("s1")
+    assert baseline is not None
+    assert baseline.count == 10
+    stats = baseline.stats("pl_median_per_s")
+    assert stats is not None
+    assert stats[0] == pytest.approx(2e5, rel=0.02)
+
+
+def test_rolling_baseline_median_and_mad_match_scipy() -> None:
+    """The baseline spread is the normal-consistent MAD of the window, as computed by
+    scipy.stats.median_abs_deviation(scale='normal')."""
+    from scipy.stats import median_abs_deviation
+
+    rng = np.random.default_rng(3)
+    values = rng.normal(10.0, 2.0, 50)
+    b = RollingBaseline(window_lines=30, min_lines=5, anchor_lines=10)
+    for v in values:
+        b.add({"x": float(v)})
+    med, spread = b.stats("x")  # type: ignore[misc]
+    assert med == pytest.approx(np.median(values[-30:]))
+    assert spread == pytest.approx(median_abs_deviation(values[-30:], scale="normal"))
+    assert b.anchor("x") == pytest.approx(np.median(values[:10]))
+    again = RollingBaseline.from_state(json.loads(json.dumps(b.state_dict())))
+    assert again.stats("x") == b.stats("x")
+    assert again.anchor("x") == b.anchor("x")
+
+
+def test_user_threshold_rule_on_an_aux_channel() -> None:
+    """A threshold rule on aux.topography.max with a robust-z reference raises and clears
+    once around a spike."""
+    rules = rules_from_data(
+        [
+            {
+                "name": "topography_spike",
+                "kind": "threshold",
+                "metric": "aux.topography.max",
+                "reference": "baseline_z",
+                "above": 8.0,
+                "clear_above": 4.0,
+                "clear_lines": 1,
+            }
+        ]
+    )
+    engine = RuleEngine(rules, clock=FakeClock())
+    rng = np.random.default_rng(11)
+    events = []
+    for i in range(30):
+        top = 20e-9 + 1e-9 * rng.normal() + (200e-9 if i in (20, 21) else 0.0)
+        stats = {
+            "topography": {
+                "median": 0.0,
+                "p10": 0.0,
+                "p90": 0.0,
+                "min": 0.0,
+                "max": top,
+                "spread": 0.0,
+            }
+        }
+        events += engine.evaluate_line("s1", _metrics(i, aux_stats=stats))  # type: ignore[arg-type]
+    assert [(e.state, e.line_index) for e in events] == [("raised", 20), ("cleared", 22)]
+    assert events[0].seen_unit == "z"
+    assert events[0].seen_value is not None
+    assert events[0].seen_value > 8
+
+
+# -- stalls ------------------------------------------------------------------------------
+
+
+def test_stall_is_raised_on_a_tick_and_cleared_by_the_next_line() -> None:
+    """With lines every 60 s, a tick 200 s after the last line is quiet, one at 400 s
+    (beyond 5 × 60 s) raises one stall, a later tick adds nothing, the next line clears."""
+    clock = FakeClock()
+    engine = RuleEngine(RulesConfig(rules=[AcquisitionStalledSpec()]), clock=clock)
+    for i in range(5):
+        clock.t_s += LINE_PERIOD_S
+        assert engine.evaluate_line("s1", _metrics(i)) == []
+    last = clock.t_s
+    assert engine.evaluate_tick(last + 200) == []
+    stall = engine.evaluate_tick(last + 400)
+    assert [(e.rule, e.state, e.line_index) for e in stall] == [
+        ("acquisition_stalled", "raised", 4)
+    ]
+    assert stall[0].message.startswith("no new line for 400 s (lines usually every 60 s")
+    assert engine.evaluate_tick(last + 900) == []
+    clock.t_s = last + 1000
+    cleared = engine.evaluate_line("s1", _metrics(5))
+    assert [(e.rule, e.state) for e in cleared] == [("acquisition_stalled", "cleared")]
+    assert "line 5 arrived" in cleared[0].message
+
+
+def test_no_stall_after_the_last_planned_line_and_new_scan_supersedes() -> None:
+    """A finished scan never stalls; a stalled scan is cleared when a new scan starts."""
+    clock = FakeClock()
+    engine = RuleEngine(RulesConfig(rules=[AcquisitionStalledSpec()]), clock=clock)
+    for i in range(3):
+        clock.t_s += LINE_PERIOD_S
+        engine.evaluate_line("done", _metrics(i, n_lines_planned=3))
+    assert engine.evaluate_tick(clock.t_s + 1e5) == []
+    for i in range(3):
+        clock.t_s += LINE_PERIOD_S
+        engine.evaluate_line("next", _metrics(i))
+    assert [e.scan_id for e in engine.evaluate_tick(clock.t_s + 1000)] == ["next"]
+    clock.t_s += 2000
+    events = engine.evaluate_line("third", _metrics(0))
+    assert [(e.scan_id, e.state) for e in events] == [("next", "cleared")]
+    assert "a new scan 'third' started" in events[0].message
+
+
+# -- configuration and events ------------------------------------------------------------
+
+
+def test_config_file_matches_the_built_in_rules() -> None:
+    """config/rules.yaml holds the built-in rule set (plus a disabled example)."""
+    loaded = load_rules(REPO / "config" / "rules.yaml")
+    builtin = default_rules()
+    assert loaded.baseline == builtin.baseline
+    assert loaded.rules[: len(builtin.rules)] == builtin.rules
+    assert [r.enabled for r in loaded.rules[len(builtin.rules) :]] == [False]
+
+
+def test_unknown_key_is_a_config_error_with_its_key_path(tmp_path: Path) -> None:
+    """A misspelt threshold is rejected with the file, the key path and 'unknown key'."""
+    path = tmp_path / "rules.yaml"
+    path.write_text("rules:\n  - kind: fluorescence_lost\n    pl_fraction_belo: 0.5\n")
+    with pytest.raises(ConfigError) as info:
+        load_rules(path)
+    assert str(info.value) == f"{path}: rules[0].pl_fraction_belo: unknown key"
+
+
+def test_unknown_metric_suggests_the_nearest_name() -> None:
+    """A threshold rule on a misspelt metric names it and suggests the nearest metric."""
+    with pytest.raises(ConfigError) as info:
+        rules_from_data(
+            [{"name": "x", "kind": "threshold", "metric": "pl_median_per_sec", "below": 1}]
+        )
+    assert str(info.value) == (
+        "rules[0].metric: unknown metric 'pl_median_per_sec'; did you mean "
+        "'pl_median_per_s'?; found 'pl_median_per_sec'"
+    )
+
+
+def test_unknown_kind_and_bad_hysteresis_are_rejected() -> None:
+    """An unknown kind lists the kinds; a clear level below the raise level is refused."""
+    with pytest.raises(ConfigError, match=r"rules\[0\]: kind must be one of fluorescence_lost"):
+        rules_from_data([{"name": "x", "kind": "tip_lost"}])
+    with pytest.raises(ConfigError, match="pl_fraction_clear_above must be greater"):
+        rules_from_data([{"kind": "fluorescence_lost", "pl_fraction_clear_above": 0.5}])
+
+
+def test_alert_event_json_is_one_line_and_round_trips() -> None:
+    """to_json gives one line of JSON that from_json turns back into the same event."""
+    ev = AlertEvent(
+        time="2026-03-01T23:14:05.120+00:00",
+        scan_id="night-run",
+        rule="fluorescence_lost",
+        severity="critical",
+        state="raised",
+        line_index=42,
+        direction="forward",
+        pixel_range=(131, 256),
+        seen_value=8.4e4,
+        seen_unit="counts/s",
+        baseline_value=2.0e5,
+        baseline_spread=2.1e3,
+        confidence_z=-55.2,
+        message="PL fell to 42% of the running median\nfrom pixel 131 on",
+        advice="check the tip",
+    )
+    text = ev.to_json()
+    assert "\n" not in text
+    assert AlertEvent.from_json(text) == ev
+    nan_event = dataclasses.replace(ev, confidence_z=float("nan"))
+    assert json.loads(nan_event.to_json())["confidence_z"] is None
+
+
+def test_threshold_spec_needs_a_limit() -> None:
+    """A threshold rule without 'above' or 'below' is refused with that message."""
+    with pytest.raises(ValueError, match="needs 'above' or 'below'"):
+        ThresholdSpec(name="x", metric="pl_median_per_s")
+
+
+def test_save_and_restore_through_a_file(tmp_path: Path) -> None:
+    """save() writes the state atomically (no temporary file left) and restore() continues
+    from it; a missing file gives a fresh engine."""
+    clock = FakeClock()
+    engine, events = _pl_sequence([2e5] * 10 + [0.5e5] * 3, _pl_rules(), clock)
+    path = tmp_path / "state" / "rules_state.json"
+    engine.save(path)
+    assert sorted(p.name for p in path.parent.iterdir()) == ["rules_state.json"]
+    restored = RuleEngine.restore(_pl_rules(), path, clock=clock)
+    assert restored.active() == events
+    assert RuleEngine.restore(_pl_rules(), tmp_path / "none.json", clock=clock).active() == []
+
+
+def test_unreadable_state_is_moved_aside_and_logged(tmp_path: Path) -> None:
+    """A corrupt state file is kept as '<name>.unreadable', logged, and a fresh engine
+    starts."""
+    from structlog.testing import capture_logs
+
+    path = tmp_path / "rules_state.json"
+    path.write_text('{"version": 1, "scans": {', encoding="utf-8")
+    with capture_logs() as logs:
+        engine = RuleEngine.restore(default_rules(), path)
+    assert engine.active() == []
+    assert not path.exists()
+    assert (tmp_path / "rules_state.json.unreadable").exists()
+    assert [e["event"] for e in logs] == ["rule_state_unreadable"]
+
+
+def test_rules_from_a_daemon_config_object() -> None:
+    """load_rules accepts an object with a 'rules' list (the daemon config): empty means
+    the built-in set; errors name its source file and the key path."""
+
+    @dataclass
+    class Cfg:
+        rules: list[dict[str, object]]
+        source: Path | None = None
+
+    assert load_rules(Cfg(rules=[])) == default_rules()
+    custom = load_rules(Cfg(rules=[{"kind": "zfs_drift", "drift_hz_above": 1e6}]))
+    assert [r.name for r in custom.rules] == ["zfs_drift"]
+    with pytest.raises(ConfigError) as info:
+        load_rules(Cfg(rules=[{"kind": "zfs_drift", "drift_hz": 1e6}], source=Path("d.yaml")))
+    assert str(info.value) == "d.yaml: rules[0].drift_hz: unknown key"
