@@ -136,7 +136,9 @@ def build_parser() -> argparse.ArgumentParser:
     t.add_argument("--count-rate", type=float, default=2e5, help="PL count rate, counts/s")
     t.add_argument("--contrast", type=float, default=0.15, help="depth of each ODMR dip")
     t.add_argument("--linewidth-mhz", type=float, default=10.0, help="dip FWHM, MHz")
-    t.add_argument("--dwell-ms", type=float, default=1.0, help="dwell per pixel and frequency, ms")
+    t.add_argument(
+        "--dwell-ms", type=float, default=3.0, help="dwell per pixel and frequency, ms (default 3)"
+    )
     t.add_argument("--temperature-k", type=float, default=295.0, help="tip temperature, K")
     t.add_argument("--strain-mhz", type=float, default=0.0, help="transverse splitting E, MHz")
     t.add_argument(

@@ -109,7 +109,7 @@ class TipModel:
     count_rate_cps: float = 2e5
     contrast: float = 0.15
     fwhm_hz: float = 10e6
-    dwell_s: float = 1e-3
+    dwell_s: float = 3e-3
     temperature_k: float = 295.0
     strain_hz: float = 0.0
     bias_field_t: tuple[float, float, float] | None = None

@@ -41,9 +41,7 @@ class LineFileError(StraylineError, ValueError):
         found (256, 200)
     """
 
-    def __init__(
-        self, path: str | PathLike[str], field: str, expected: str, found: str
-    ) -> None:
+    def __init__(self, path: str | PathLike[str], field: str, expected: str, found: str) -> None:
         from pathlib import Path
 
         self.path = Path(path)

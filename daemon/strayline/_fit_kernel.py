@@ -1,0 +1,428 @@
+"""Compiled batched Levenberg–Marquardt kernel for ODMR spectra (numba).
+
+One call fits a whole batch of spectra on a shared frequency grid. Each spectrum runs
+its own damped Gauss–Newton iteration inside a ``prange`` loop and leaves as soon as it
+has converged, so the batch costs the sum of the spectra's own iterations, not the
+slowest spectrum's count times the batch size.
+
+Model (in the scaled frequency ``x``; see :mod:`strayline.fit` for the Hz form)::
+
+    mu(x) = (b + s x) * (1 - sum_i C_i sum_m w_m L(x; c_i + o_m, G_i))
+    L(x; c, G) = (G/2)^2 / ((x - c)^2 + (G/2)^2)          (unit-height Lorentzian)
+
+Parameter layout of a row of ``p`` (``nd`` dips, ``nw`` widths, 1 or ``nd``)::
+
+    [c_0 .. c_{nd-1}, C_0 .. C_{nd-1}, G_0 .. G_{nw-1}, b, (s)]
+
+Objective. ``poisson=1``: the Poisson likelihood-ratio χ² of Baker & Cousins [1]_,
+``2 Σ [mu - y + y ln(y / mu)]`` per sample, continued below ``mu = 1`` by its second-order
+expansion with unit curvature, so that the Fisher-scoring weights are exactly
+``1 / max(mu, 1)`` and the objective stays finite for ``mu <= 0``. ``poisson=0``: plain
+least squares ``Σ (y - mu)^2``.
+
+Iteration. Gauss–Newton normal equations ``A = J^T W J``, ``g = J^T W (y - mu)`` with
+Marquardt's damping scaled by the diagonal, ``(A + λ D) δ = g`` ([2]_; ``D`` = running
+maximum of ``diag(A)``, Moré's variant [3]_). A step is accepted by the gain ratio
+``ρ = (F(p) - F(p + δ)) / (2 δ·g - δ·A·δ)`` and λ is updated by Nielsen's rule
+``λ ← λ max(1/3, 1 - (2ρ - 1)^3)``; a rejected step multiplies λ by ν = 2, 4, 8, ...
+([4]_, Sec. 3.2 and Algorithm 3.16; section and algorithm numbers from memory).
+Box bounds are honoured by projection: a parameter on a bound whose gradient points
+outward is held for that step, and the trial point is clipped to the box; the predicted
+decrease is evaluated for the clipped step. The fused pass is also "one loop" only in
+spirit: it runs a few unit-stride loops over the grid so that the compiler vectorises
+them.
+
+Each pass over the grid is fused: the model, the objective, ``A`` and ``g`` are
+accumulated together, so an accepted trial point already carries its normal
+equations and one iteration costs about one model+Jacobian pass.
+
+Convergence: the Newton decrement ``g·A⁻¹g`` (restricted to the free parameters) is the
+χ² decrease a full Gauss–Newton step would still give; the fit stops when it is below
+``xtol² s²`` (``s² = 1`` for Poisson weights, the residual variance otherwise), i.e. when
+the remaining distance to the minimum is below ``xtol`` standard deviations. If λ grows
+past 1e14 no representable descent remains (precision floor) and the fit also stops.
+
+References
+----------
+.. [1] S. Baker and R. D. Cousins, "Clarification of the use of chi-square and likelihood
+   functions in fits to histograms", Nucl. Instrum. Methods 221, 437-442 (1984).
+.. [2] D. W. Marquardt, "An algorithm for least-squares estimation of nonlinear
+   parameters", J. Soc. Ind. Appl. Math. 11, 431-441 (1963).
+.. [3] J. J. Moré, "The Levenberg-Marquardt algorithm: implementation and theory",
+   in Numerical Analysis, Lecture Notes in Mathematics 630, 105-116 (1978).
+.. [4] K. Madsen, H. B. Nielsen and O. Tingleff, "Methods for non-linear least squares
+   problems", 2nd ed., IMM, Technical University of Denmark (2004).
+"""
+
+# Compiled kernels take their arrays positionally (numba calls them so from prange bodies).
+# ruff: noqa: PLR0917
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from numba import njit, prange
+
+__all__ = ["CONVERGED", "MAX_ITER", "STALLED", "fused_pass_batch", "lm_batch"]
+
+# fastmath without 'nnan'/'ninf': NaN and inf are meaningful values here.
+_FASTMATH = {"contract", "arcp", "reassoc", "nsz", "afn"}
+
+MAX_ITER = 0  # iteration limit reached
+CONVERGED = 1  # Newton decrement below tolerance
+STALLED = 2  # no representable descent left (λ > 1e14): at the precision floor
+
+_LAMBDA0 = 1e-3
+_LAMBDA_MAX = 1e14
+_LAMBDA_MIN = 1e-15
+_DIAG_FLOOR = 1e-300
+_PIVOT_MIN = 1e-13  # on the unit-diagonal (scaled) matrix
+
+
+@njit(cache=True, error_model="numpy", fastmath=_FASTMATH)
+def _pass(x, y, p, n_dips, n_widths, hf_off, hf_w, has_slope, poisson, jc, work, a, g):
+    """One fused pass: objective, Pearson χ², A = JᵀWJ and g = JᵀW r at ``p``.
+
+    ``jc`` (n_par, n_freq) receives the Jacobian column by column and ``work``
+    (4, n_freq) holds per-sample scratch, so that every inner loop runs over the grid
+    with unit stride (vectorisable); A and g are then dot products over the grid.
+    """
+    n_par = p.shape[0]
+    n = x.shape[0]
+    ib = 2 * n_dips + n_widths
+    b = p[ib]
+    s = p[ib + 1] if has_slope else 0.0
+    base = work[0]
+    ssum = work[1]
+    wv = work[2]
+    rv = work[3]
+    for k in range(n):
+        base[k] = b + s * x[k]
+        ssum[k] = 0.0
+    for i in range(n_widths):
+        jw = jc[2 * n_dips + i]
+        for k in range(n):
+            jw[k] = 0.0
+    for i in range(n_dips):
+        c = p[i]
+        con = p[n_dips + i]
+        h = 0.5 * p[2 * n_dips + (i if n_widths > 1 else 0)]
+        h2 = h * h
+        jcen = jc[i]
+        jcon = jc[n_dips + i]
+        jw = jc[2 * n_dips + (i if n_widths > 1 else 0)]
+        for m in range(hf_off.shape[0]):
+            cm = c + hf_off[m]
+            wm = hf_w[m]
+            if m == 0:
+                for k in range(n):
+                    d = x[k] - cm
+                    inv = 1.0 / (d * d + h2)
+                    wl = wm * h2 * inv  # w_m L
+                    jcon[k] = wl
+                    jcen[k] = 2.0 * d * wl * inv  # dL/dc = 2 d h² / den²
+                    wv[k] = d * d * wl * inv / h  # dL/dG = h d² / den² = d² L / (h den)
+            else:
+                for k in range(n):
+                    d = x[k] - cm
+                    inv = 1.0 / (d * d + h2)
+                    wl = wm * h2 * inv
+                    jcon[k] += wl
+                    jcen[k] += 2.0 * d * wl * inv
+                    wv[k] += d * d * wl * inv / h
+        # Simple loops with few arrays each, so that the compiler vectorises them.
+        for k in range(n):
+            ssum[k] += con * jcon[k]
+        for k in range(n):
+            jcen[k] *= -con * base[k]
+        for k in range(n):
+            jw[k] -= con * base[k] * wv[k]
+        for k in range(n):
+            jcon[k] *= -base[k]
+    jb = jc[ib]
+    for k in range(n):
+        jb[k] = 1.0 - ssum[k]
+    if has_slope:
+        js = jc[ib + 1]
+        for k in range(n):
+            js[k] = x[k] * jb[k]
+    obj = 0.0
+    pearson = 0.0
+    for k in range(n):
+        mu = base[k] * jb[k]
+        yk = y[k]
+        r = yk - mu
+        if poisson:
+            if mu >= 1.0:
+                w = 1.0 / mu
+                dev = 2.0 * (mu - yk - yk * math.log(mu / yk)) if yk > 0.0 else 2.0 * mu
+            else:
+                w = 1.0
+                dev1 = 2.0 * (1.0 - yk + yk * math.log(yk)) if yk > 0.0 else 2.0
+                dev = dev1 + 2.0 * (1.0 - yk) * (mu - 1.0) + (mu - 1.0) * (mu - 1.0)
+        else:
+            w = 1.0
+            dev = r * r
+        obj += dev
+        pearson += r * r / max(mu, 1.0)
+        wv[k] = w
+        rv[k] = w * r
+    for i in range(n_par):
+        ji = jc[i]
+        acc = 0.0
+        for k in range(n):
+            acc += ji[k] * rv[k]
+        g[i] = acc
+        for k in range(n):
+            base[k] = wv[k] * ji[k]
+        for j in range(i, n_par):
+            jj = jc[j]
+            acc = 0.0
+            for k in range(n):
+                acc += base[k] * jj[k]
+            a[i, j] = acc
+            a[j, i] = acc
+    return obj, pearson
+
+
+@njit(cache=True, error_model="numpy", fastmath=_FASTMATH)
+def _solve(a, dmax, lam, g, free, m, delta):
+    """Solve (A + λ diag(dmax)) δ = g on the free parameters (held ones get δ = 0).
+
+    The system is scaled to a unit diagonal (Jacobi) before its Cholesky factorisation.
+    Returns False when the matrix is not numerically positive definite.
+    """
+    n = g.shape[0]
+    for i in range(n):
+        for j in range(n):
+            if free[i] and free[j]:
+                m[i, j] = a[i, j] / math.sqrt(dmax[i] * dmax[j])
+            else:
+                m[i, j] = 0.0
+        if free[i]:
+            m[i, i] += lam
+            delta[i] = g[i] / math.sqrt(dmax[i])
+        else:
+            m[i, i] = 1.0
+            delta[i] = 0.0
+    # Cholesky (lower), in place
+    for j in range(n):
+        sdiag = m[j, j]
+        for k in range(j):
+            sdiag -= m[j, k] * m[j, k]
+        if not sdiag > _PIVOT_MIN:
+            return False
+        ljj = math.sqrt(sdiag)
+        m[j, j] = ljj
+        for i in range(j + 1, n):
+            sv = m[i, j]
+            for k in range(j):
+                sv -= m[i, k] * m[j, k]
+            m[i, j] = sv / ljj
+    for i in range(n):
+        sv = delta[i]
+        for k in range(i):
+            sv -= m[i, k] * delta[k]
+        delta[i] = sv / m[i, i]
+    for i in range(n - 1, -1, -1):
+        sv = delta[i]
+        for k in range(i + 1, n):
+            sv -= m[k, i] * delta[k]
+        delta[i] = sv / m[i, i]
+    for i in range(n):
+        delta[i] = delta[i] / math.sqrt(dmax[i]) if free[i] else 0.0
+    return True
+
+
+@njit(cache=True, error_model="numpy", fastmath=_FASTMATH)
+def _free_set(p, g, a, dmax, lo, hi, free):
+    """Mark parameters free unless on a bound with an outward gradient or degenerate."""
+    for i in range(p.shape[0]):
+        held = (p[i] <= lo[i] and g[i] < 0.0) or (p[i] >= hi[i] and g[i] > 0.0)
+        degenerate = not a[i, i] > 1e-14 * dmax[i]
+        free[i] = not (held or degenerate)
+
+
+@njit(cache=True, error_model="numpy", fastmath=_FASTMATH)
+def _fit_one(
+    x, y, p, lo, hi, n_dips, n_widths, hf_off, hf_w, has_slope, poisson, max_iter, xtol, sigma
+):
+    """Fit one spectrum in place; returns (pearson χ², iterations, exit code)."""
+    n_par = p.shape[0]
+    n_free_dof = max(x.shape[0] - n_par, 1)
+    jc = np.empty((n_par, x.shape[0]))
+    work = np.empty((4, x.shape[0]))
+    a = np.empty((n_par, n_par))
+    at = np.empty((n_par, n_par))
+    g = np.empty(n_par)
+    gt = np.empty(n_par)
+    m = np.empty((n_par, n_par))
+    delta = np.empty(n_par)
+    pt = np.empty(n_par)
+    dmax = np.empty(n_par)
+    free = np.empty(n_par, dtype=np.bool_)
+    for i in range(n_par):
+        p[i] = min(max(p[i], lo[i]), hi[i])
+    obj, pear = _pass(x, y, p, n_dips, n_widths, hf_off, hf_w, has_slope, poisson, jc, work, a, g)
+    for i in range(n_par):
+        dmax[i] = max(a[i, i], _DIAG_FLOOR)
+    ybar = 0.0
+    for k in range(y.shape[0]):
+        ybar += abs(y[k])
+    ybar /= y.shape[0]
+    s2_floor = (1e-9 * ybar) ** 2 + _DIAG_FLOOR
+    lam = _LAMBDA0
+    nu = 2.0
+    code = MAX_ITER
+    it = 0
+    while it < max_iter:
+        it += 1
+        _free_set(p, g, a, dmax, lo, hi, free)
+        ok = _solve(a, dmax, lam, g, free, m, delta)
+        rho = -1.0
+        objt = 0.0
+        peart = 0.0
+        if ok:
+            pred = 0.0
+            for i in range(n_par):
+                pt[i] = min(max(p[i] + delta[i], lo[i]), hi[i])
+                delta[i] = pt[i] - p[i]
+            for i in range(n_par):
+                pred += 2.0 * delta[i] * g[i]
+                for j in range(n_par):
+                    pred -= delta[i] * a[i, j] * delta[j]
+            objt, peart = _pass(
+                x, y, pt, n_dips, n_widths, hf_off, hf_w, has_slope, poisson, jc, work, at, gt
+            )
+            if pred > 0.0 and math.isfinite(objt):
+                rho = (obj - objt) / pred
+        if rho > 1e-4:
+            for i in range(n_par):
+                p[i] = pt[i]
+            a, at = at, a
+            g, gt = gt, g
+            obj = objt
+            pear = peart
+            for i in range(n_par):
+                dmax[i] = max(dmax[i], a[i, i])
+            lam *= max(1.0 / 3.0, 1.0 - (2.0 * rho - 1.0) ** 3)
+            lam = max(lam, _LAMBDA_MIN)
+            nu = 2.0
+            # Newton decrement on the free set at the new point
+            _free_set(p, g, a, dmax, lo, hi, free)
+            s2 = 1.0 if poisson else max(obj / n_free_dof, s2_floor)
+            if _solve(a, dmax, 0.0, g, free, m, delta):
+                dec = 0.0
+                for i in range(n_par):
+                    dec += g[i] * delta[i]
+                if dec <= xtol * xtol * s2:
+                    code = CONVERGED
+                    break
+        else:
+            lam *= nu
+            nu *= 2.0
+            if lam > _LAMBDA_MAX:
+                code = STALLED
+                break
+    # 1σ from the inverse of A at the solution (scaled by s² when unweighted)
+    s2 = 1.0 if poisson else obj / n_free_dof
+    for i in range(n_par):
+        free[i] = a[i, i] > 1e-14 * dmax[i]
+    for i in range(n_par):
+        sigma[i] = np.nan
+    for col in range(n_par):
+        if not free[col]:
+            continue
+        for i in range(n_par):
+            gt[i] = 1.0 if i == col else 0.0
+        if not _solve(a, dmax, 0.0, gt, free, m, delta):
+            for i in range(n_par):
+                sigma[i] = np.inf
+            break
+        sigma[col] = math.sqrt(max(delta[col], 0.0) * s2)
+    return pear / n_free_dof, it, code
+
+
+@njit(cache=True, error_model="numpy", fastmath=_FASTMATH, parallel=True)
+def lm_batch(x, y, p, lo, hi, n_dips, n_widths, hf_off, hf_w, has_slope, poisson, max_iter, xtol):
+    """Fit every row of ``y`` in place of ``p``.
+
+    Parameters
+    ----------
+    x : ndarray, shape (n_freq,)
+        Scaled frequency grid (dimensionless), float64.
+    y : ndarray, shape (n_spec, n_freq)
+        Counts, float64, C-contiguous.
+    p : ndarray, shape (n_spec, n_par)
+        Initial parameters (scaled units); overwritten with the solution.
+    lo, hi : ndarray, shape (n_par,)
+        Box bounds (scaled units; ±inf allowed).
+    n_dips, n_widths : int
+        Number of dips and of width parameters (1 when shared).
+    hf_off, hf_w : ndarray, shape (n_hf,)
+        Offsets (scaled) and weights of each dip's hyperfine components.
+    has_slope, poisson : int
+        1 to fit the baseline slope / to use Poisson weights.
+    max_iter : int
+        Iteration limit per spectrum.
+    xtol : float
+        Convergence tolerance, in standard deviations of the parameters.
+
+    Returns
+    -------
+    sigma : ndarray, shape (n_spec, n_par)
+        1σ of each parameter (NaN where undetermined, inf for a singular matrix).
+    chi2_red : ndarray, shape (n_spec,)
+        Pearson χ² (weights 1/max(mu, 1)) per degree of freedom.
+    n_iter : ndarray of int32, shape (n_spec,)
+    code : ndarray of int8, shape (n_spec,)
+        :data:`CONVERGED`, :data:`STALLED` or :data:`MAX_ITER`.
+    """
+    n_spec, n_par = p.shape
+    sigma = np.empty((n_spec, n_par))
+    chi2 = np.empty(n_spec)
+    n_iter = np.empty(n_spec, dtype=np.int32)
+    code = np.empty(n_spec, dtype=np.int8)
+    for sidx in prange(n_spec):
+        c2, it, cd = _fit_one(
+            x,
+            y[sidx],
+            p[sidx],
+            lo,
+            hi,
+            n_dips,
+            n_widths,
+            hf_off,
+            hf_w,
+            has_slope,
+            poisson,
+            max_iter,
+            xtol,
+            sigma[sidx],
+        )
+        chi2[sidx] = c2
+        n_iter[sidx] = it
+        code[sidx] = cd
+    return sigma, chi2, n_iter, code
+
+
+@njit(cache=True, error_model="numpy", fastmath=_FASTMATH, parallel=True)
+def fused_pass_batch(x, y, p, n_dips, n_widths, hf_off, hf_w, has_slope, poisson):
+    """One fused model+Jacobian+normal-equation pass per spectrum (the cost floor).
+
+    Same arguments as :func:`lm_batch`; returns the objective per spectrum, shape
+    (n_spec,). Used by the throughput benchmark to express an iteration's cost.
+    """
+    n_spec, n_par = p.shape
+    out = np.empty(n_spec)
+    for sidx in prange(n_spec):
+        jc = np.empty((n_par, x.shape[0]))
+        work = np.empty((4, x.shape[0]))
+        a = np.empty((n_par, n_par))
+        g = np.empty(n_par)
+        obj, _ = _pass(
+            x, y[sidx], p[sidx], n_dips, n_widths, hf_off, hf_w, has_slope, poisson, jc, work, a, g
+        )
+        out[sidx] = obj
+    return out

@@ -1,0 +1,214 @@
+"""Command line: ``strayline run | process | status | alerts | check-config | demo``.
+
+Exit codes: 0 ok, 2 usage, 78 (EX_CONFIG) for a bad configuration, 1 for anything else
+that stopped a command.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import sys
+from collections.abc import Sequence
+from pathlib import Path
+
+from strayline import __version__
+from strayline.errors import EXIT_CONFIG, EXIT_OK, ConfigError
+
+__all__ = ["build_parser", "main"]
+
+_CONFIG_ENV = "STRAYLINE_CONFIG"
+
+
+def _config_arg(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument(
+        "-c",
+        "--config",
+        type=Path,
+        default=os.environ.get(_CONFIG_ENV),
+        help=f"YAML config file (default: ${_CONFIG_ENV})",
+    )
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The argument parser of the ``strayline`` command."""
+    parser = argparse.ArgumentParser(
+        prog="strayline",
+        description=(
+            "Live field maps and fault alerts for scanning NV magnetometry: watch scan-line "
+            "files, fit every ODMR spectrum, write the field into a zarr store, alert."
+        ),
+    )
+    parser.add_argument("--version", action="version", version=f"strayline {__version__}")
+    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    run = sub.add_parser("run", help="run the daemon in the foreground (systemd or by hand)")
+    _config_arg(run)
+
+    process = sub.add_parser(
+        "process", help="process every line file below DIR once with the daemon's pipeline"
+    )
+    process.add_argument("folder", type=Path, metavar="DIR")
+    _config_arg(process)
+
+    status = sub.add_parser("status", help="per scan: lines done/planned, rate, ETA, alerts")
+    _config_arg(status)
+    status.add_argument("--json", action="store_true", help="one JSON object per scan")
+
+    alerts = sub.add_parser("alerts", help="readable tail of the alert log")
+    _config_arg(alerts)
+    alerts.add_argument("--follow", "-f", action="store_true", help="keep printing new alerts")
+    alerts.add_argument("--scan", metavar="ID", help="only this scan")
+    alerts.add_argument("--since", metavar="TIME", help="only alerts at or after this ISO time")
+    alerts.add_argument("--json", action="store_true", help="print the JSON lines as stored")
+    alerts.add_argument("-n", "--lines", type=int, default=20, help="how many (default 20)")
+
+    check = sub.add_parser("check-config", help="validate a config file and its profiles")
+    check.add_argument("file", type=Path, metavar="FILE")
+
+    demo = sub.add_parser(
+        "demo", help="run the demo instrument and the daemon on a short scan with a fault"
+    )
+    demo.add_argument("--lines", type=int, default=48, help="scan lines (default 48)")
+    demo.add_argument("--pixels", type=int, default=128, help="pixels per line (default 128)")
+    demo.add_argument(
+        "--pace", type=float, default=0.25, help="seconds between lines (default 0.25)"
+    )
+    demo.add_argument(
+        "--fault",
+        default=None,
+        help="fault to inject, e.g. tip_crash@30:64 (default: a tip crash two thirds in)",
+    )
+    demo.add_argument("--folder", type=Path, default=None, help="work folder (default: a temp one)")
+    demo.add_argument("--seed", type=int, default=7, help="noise seed (default 7)")
+    return parser
+
+
+def _need_config(args: argparse.Namespace) -> Path:
+    if args.config is None:
+        raise ConfigError(
+            None, "--config", f"no config file given (use --config or ${_CONFIG_ENV})"
+        )
+    return Path(args.config)
+
+
+def _load(args: argparse.Namespace):  # type: ignore[no-untyped-def]
+    from strayline.config import load_config
+
+    return load_config(_need_config(args))
+
+
+def _configure_logs(config) -> None:  # type: ignore[no-untyped-def]
+    from strayline.logs import configure_logging
+
+    configure_logging(
+        level=config.logging.level,
+        console=config.logging.console,
+        json_file=config.logging.json_file,
+    )
+
+
+def _cmd_run(args: argparse.Namespace) -> int:
+    from strayline.service import Service
+
+    config = _load(args)
+    _configure_logs(config)
+    service = Service(config)
+    service.install_signal_handlers()
+    return service.run()
+
+
+def _cmd_process(args: argparse.Namespace) -> int:
+    from strayline.service import process_folder
+
+    config = _load(args)
+    _configure_logs(config)
+    summary = process_folder(config, args.folder)
+    print(
+        f"{summary.files} files: {summary.written} written, {summary.duplicates} already done, "
+        f"{summary.quarantined} quarantined, {summary.vanished} vanished; "
+        f"{summary.pixels_failed} pixel fits failed; {summary.alerts} alert events"
+    )
+    return EXIT_OK
+
+
+def _cmd_check_config(args: argparse.Namespace) -> int:
+    from strayline.config import config_digest, load_config
+
+    config = load_config(args.file)
+    profiles = ", ".join(config.available_profiles()) or "none"
+    print(f"{args.file}: ok (digest {config_digest(config)[:12]}; profiles: {profiles})")
+    return EXIT_OK
+
+
+def _cmd_status(args: argparse.Namespace) -> int:
+    from strayline.status import format_scan_status, scan_statuses
+
+    config = _load(args)
+    statuses = scan_statuses(config.paths.output_root, config.paths.alert_log)
+    if args.json:
+        for status in statuses:
+            print(json.dumps(status.as_json_dict()))
+    elif not statuses:
+        print(f"no scans in {config.paths.output_root}")
+    else:
+        for status in statuses:
+            print(format_scan_status(status))
+    return EXIT_OK
+
+
+def _cmd_alerts(args: argparse.Namespace) -> int:
+    from strayline.alerts import follow_alerts
+
+    config = _load(args)
+    return follow_alerts(
+        config.paths.alert_log,
+        scan_id=args.scan,
+        since=args.since,
+        as_json=args.json,
+        follow=args.follow,
+        last=args.lines,
+    )
+
+
+def _cmd_demo(args: argparse.Namespace) -> int:
+    from strayline.demo import run_demo
+
+    return run_demo(
+        lines=args.lines,
+        pixels=args.pixels,
+        pace_s=args.pace,
+        fault=args.fault,
+        folder=args.folder,
+        seed=args.seed,
+    )
+
+
+_COMMANDS = {
+    "run": _cmd_run,
+    "process": _cmd_process,
+    "check-config": _cmd_check_config,
+    "status": _cmd_status,
+    "alerts": _cmd_alerts,
+    "demo": _cmd_demo,
+}
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Entry point of the ``strayline`` console script; returns the exit code."""
+    args = build_parser().parse_args(argv)
+    try:
+        return _COMMANDS[args.command](args)
+    except ConfigError as error:
+        print(f"strayline: config error: {error}", file=sys.stderr)
+        return EXIT_CONFIG
+    except FileNotFoundError as error:
+        print(f"strayline: {error}", file=sys.stderr)
+        return 1
+    except KeyboardInterrupt:
+        return 130
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

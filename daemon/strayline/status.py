@@ -1,0 +1,163 @@
+"""``strayline status``: per scan, lines done of planned, rate, ETA, failures, last alerts.
+
+Reads the stores and the alert log only (never takes the ledger's lock), so it is safe to
+run while the daemon writes.
+"""
+
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass
+from datetime import UTC, datetime, timedelta
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import zarr
+
+from strayline._ledger import LedgerState, parse_records
+from strayline._store_layout import DIRECTIONS, LEDGER_FILE, STATUS_FILL
+from strayline.alerts import read_alert_log
+from strayline.errors import StoreError
+from strayline.fit import FitStatus
+
+__all__ = ["ScanStatus", "format_scan_status", "scan_status", "scan_statuses"]
+
+_RATE_WINDOW = 20  # commits used for the rate estimate (recent pace, not the average)
+
+
+@dataclass(frozen=True)
+class ScanStatus:
+    """One scan's progress as read from its store.
+
+    Attributes
+    ----------
+    scan_id : str
+    store : Path
+    n_lines_planned : int
+    lines_done : dict[str, int]
+        Committed lines per direction.
+    rate_lines_per_h : float or None
+        Recent commit rate of the busiest direction (None with fewer than two commits).
+    eta : datetime or None
+        When the busiest direction should be complete at that rate.
+    last_commit : datetime or None
+    pixels_failed : int
+        Pixels of committed lines whose fit status is not OK.
+    pixels_done : int
+    last_alerts : tuple of str
+        The scan's latest alert lines, readable.
+    """
+
+    scan_id: str
+    store: Path
+    n_lines_planned: int
+    lines_done: dict[str, int]
+    rate_lines_per_h: float | None
+    eta: datetime | None
+    last_commit: datetime | None
+    pixels_failed: int
+    pixels_done: int
+    last_alerts: tuple[str, ...]
+
+    def as_json_dict(self) -> dict[str, Any]:
+        data = asdict(self)
+        data["store"] = str(self.store)
+        for key in ("eta", "last_commit"):
+            value = data[key]
+            data[key] = value.isoformat() if value is not None else None
+        data["last_alerts"] = list(self.last_alerts)
+        return data
+
+
+def _commit_times(state: LedgerState, direction: str) -> list[datetime]:
+    return sorted(e.processed_time for e in state.committed.values() if e.direction == direction)
+
+
+def scan_status(
+    store_path: Path, alerts: list[Any] | None = None, now: datetime | None = None
+) -> ScanStatus:
+    """Read one store's progress (and the scan's last alerts from ``alerts``)."""
+    group = zarr.open_group(store_path, mode="r")
+    attrs = group.attrs.asdict()
+    scan_id = str(attrs["scan_id"])
+    n_planned = int(attrs["n_lines_planned"])  # type: ignore[arg-type]
+    ledger_file = store_path / LEDGER_FILE
+    try:
+        data = ledger_file.read_bytes()
+    except FileNotFoundError:
+        data = b""
+    except OSError as error:
+        raise StoreError(f"{ledger_file}: cannot read the ledger: {error}") from error
+    state = LedgerState()
+    for record in parse_records(data, ledger_file)[0]:
+        state.apply(record)
+    done = {d: sum(1 for (_, dd) in state.committed if dd == d) for d in DIRECTIONS}
+    busiest = max(DIRECTIONS, key=lambda d: done[d])
+    times = _commit_times(state, busiest)[-_RATE_WINDOW:]
+    rate = None
+    eta = None
+    if len(times) >= 2 and times[-1] > times[0]:
+        span_h = (times[-1] - times[0]).total_seconds() / 3600.0
+        rate = (len(times) - 1) / span_h
+        remaining = n_planned - done[busiest]
+        eta = times[-1] + timedelta(hours=remaining / rate)
+    failed = 0
+    pixels = 0
+    for direction in DIRECTIONS:
+        if done[direction] == 0:
+            continue
+        status = np.asarray(group[f"{direction}/status"][:])
+        written = status != STATUS_FILL
+        pixels += int(written.sum())
+        failed += int((written & (status != FitStatus.OK)).sum())
+    lines = tuple(_alert_line(e) for e in (alerts or []) if getattr(e, "scan_id", None) == scan_id)[
+        -3:
+    ]
+    return ScanStatus(
+        scan_id=scan_id,
+        store=store_path,
+        n_lines_planned=n_planned,
+        lines_done=done,
+        rate_lines_per_h=rate,
+        eta=eta,
+        last_commit=state.last_commit_time,
+        pixels_failed=failed,
+        pixels_done=pixels,
+        last_alerts=lines,
+    )
+
+
+def _alert_line(event: Any) -> str:
+    from strayline.alerts import format_alert
+
+    return format_alert(event)
+
+
+def scan_statuses(output_root: Path, alert_log: Path | None = None) -> list[ScanStatus]:
+    """Every store under ``output_root``, most recently active first."""
+    alerts = read_alert_log(alert_log) if alert_log is not None and alert_log.exists() else []
+    out = []
+    for path in sorted(Path(output_root).glob("*.zarr")):
+        if path.is_dir():
+            out.append(scan_status(path, alerts))
+    epoch = datetime.min.replace(tzinfo=UTC)
+    out.sort(key=lambda s: s.last_commit or epoch, reverse=True)
+    return out
+
+
+def format_scan_status(status: ScanStatus) -> str:
+    """A few readable lines for one scan."""
+    fwd, bwd = status.lines_done["forward"], status.lines_done["backward"]
+    traces = f"{fwd}/{status.n_lines_planned} lines" + (f" (+{bwd} backward)" if bwd else "")
+    rate = f"{status.rate_lines_per_h:.0f} lines/h" if status.rate_lines_per_h else "rate n/a"
+    eta = (
+        f"ETA {status.eta:%Y-%m-%d %H:%M} UTC"
+        if status.eta and fwd < status.n_lines_planned
+        else ("complete" if fwd >= status.n_lines_planned else "ETA n/a")
+    )
+    failed = (
+        f"{status.pixels_failed / status.pixels_done:.1%} fits failed" if status.pixels_done else ""
+    )
+    out = [f"{status.scan_id}: {traces}, {rate}, {eta}, {failed}".rstrip(", ")]
+    out.extend(f"  {line}" for line in status.last_alerts)
+    return "\n".join(out)
