@@ -31,6 +31,39 @@ def _config_arg(parser: argparse.ArgumentParser) -> None:
     )
 
 
+def _positive_int(text: str) -> int:
+    """An argument that must be a whole number >= 1."""
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"must be a whole number; found {text!r}") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"must be at least 1; found {value}")
+    return value
+
+
+def _seconds(text: str) -> float:
+    """An argument that must be a finite number of seconds >= 0."""
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"must be a number of seconds; found {text!r}") from None
+    if not 0.0 <= value < float("inf"):
+        raise argparse.ArgumentTypeError(f"must be a finite number >= 0; found {text}")
+    return value
+
+
+def _fault(text: str) -> str:
+    """A demo fault spec, checked by the demo instrument's own parser (imported lazily)."""
+    from demo_stream import parse_fault
+
+    try:
+        parse_fault(text)
+    except ValueError as error:
+        raise argparse.ArgumentTypeError(str(error)) from None
+    return text
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of the ``strayline`` command."""
     parser = argparse.ArgumentParser(
@@ -70,13 +103,16 @@ def build_parser() -> argparse.ArgumentParser:
     demo = sub.add_parser(
         "demo", help="run the demo instrument and the daemon on a short scan with a fault"
     )
-    demo.add_argument("--lines", type=int, default=48, help="scan lines (default 48)")
-    demo.add_argument("--pixels", type=int, default=128, help="pixels per line (default 128)")
+    demo.add_argument("--lines", type=_positive_int, default=48, help="scan lines (default 48)")
     demo.add_argument(
-        "--pace", type=float, default=0.25, help="seconds between lines (default 0.25)"
+        "--pixels", type=_positive_int, default=128, help="pixels per line (default 128)"
+    )
+    demo.add_argument(
+        "--pace", type=_seconds, default=0.25, help="seconds between lines (default 0.25)"
     )
     demo.add_argument(
         "--fault",
+        type=_fault,
         default=None,
         help="fault to inject, e.g. tip_crash@30:64 (default: a tip crash two thirds in)",
     )

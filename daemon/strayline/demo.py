@@ -4,24 +4,29 @@ The demo instrument (:mod:`demo_stream`, imported lazily: strayline never depend
 otherwise) writes a short labyrinth-domain scan with one injected fault into
 ``<folder>/incoming``; the daemon — the same :class:`~strayline.service.Service` that runs
 under systemd — watches that folder, writes ``<folder>/output/<scan>.zarr`` and the alert
-log, and stops once every line is committed. A summary compares the field map with the
-instrument's ground truth.
+log, and stops once every line is committed or quarantined (or a time limit passes). A
+summary compares the field map with the instrument's ground truth.
 """
 
 from __future__ import annotations
 
+import sys
 import tempfile
 import threading
 import time
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
+import zarr
 
 from strayline.config import Config, config_from_mapping
 from strayline.logs import configure_logging
 
-__all__ = ["demo_config", "run_demo", "truth_agreement"]
+if TYPE_CHECKING:
+    from strayline.pipeline import LinePipeline
+
+__all__ = ["default_fault", "demo_config", "run_demo", "truth_agreement"]
 
 _SCAN_ID = "demo-labyrinth"
 
@@ -53,6 +58,11 @@ def truth_agreement(
     return float(np.mean(np.abs(field_t[ok] - truth_t[ok]) <= k * sigma_t[ok]))
 
 
+def default_fault(lines: int, pixels: int) -> str:
+    """The demo's fault: a tip crash two thirds down the scan, from the middle pixel on."""
+    return f"tip_crash@{(2 * lines) // 3}:{pixels // 2}"
+
+
 def run_demo(
     *,
     lines: int = 48,
@@ -63,18 +73,37 @@ def run_demo(
     seed: int = 7,
     time_limit_s: float = 300.0,
 ) -> int:
-    """Run the demo; print where everything is and a short summary. Returns 0."""
+    """Run the demo; print where everything is and a short summary.
+
+    Parameters
+    ----------
+    lines, pixels : int
+        Scan size, >= 1 each.
+    pace_s : float
+        Seconds between lines written by the demo instrument (0: as fast as it can).
+    fault : str or None
+        Fault in the demo instrument's compact form; None for :func:`default_fault`.
+    folder : Path or None
+        Work folder (None: a new temporary one). It must not hold an earlier demo run.
+    seed : int
+        Photon-noise seed.
+    time_limit_s : float
+        The daemon stops after this long even if lines are missing (the summary says so).
+
+    Returns
+    -------
+    int
+        0 when every line was committed or quarantined, 1 when the time limit cut the run
+        short, 2 when ``folder`` already holds a demo run (nothing is done then).
+
+    Raises
+    ------
+    ValueError
+        If ``fault`` cannot be parsed or the scan size is invalid.
+    """
     import demo_stream as ds
 
-    folder = (
-        Path(folder) if folder is not None else Path(tempfile.mkdtemp(prefix="strayline-demo-"))
-    )
-    folder = folder.absolute()
-    (folder / "incoming").mkdir(parents=True, exist_ok=True)
-    truth_dir = folder / "truth"
-    config = demo_config(folder)
-    configure_logging(level="info", console="plain", json_file=config.logging.json_file)
-    spec = fault if fault is not None else f"tip_crash@{(2 * lines) // 3}:{pixels // 2}"
+    spec = fault if fault is not None else default_fault(lines, pixels)
     scan = ds.DemoConfig(
         scene=ds.labyrinth(),
         n_lines=lines,
@@ -83,6 +112,22 @@ def run_demo(
         seed=seed,
         scan_id=_SCAN_ID,
     )
+    folder = (
+        Path(folder) if folder is not None else Path(tempfile.mkdtemp(prefix="strayline-demo-"))
+    )
+    folder = folder.absolute()
+    config = demo_config(folder)
+    store_path = config.paths.output_root / f"{_SCAN_ID}.zarr"
+    if store_path.exists():
+        print(
+            f"strayline demo: {folder} already holds a demo run ({store_path}); "
+            "choose an empty folder or leave out --folder",
+            file=sys.stderr,
+        )
+        return 2
+    (folder / "incoming").mkdir(parents=True, exist_ok=True)
+    truth_dir = folder / "truth"
+    configure_logging(level="info", console="plain", json_file=config.logging.json_file)
     print(f"strayline demo: {lines} lines x {pixels} pixels, fault {spec}, in {folder}")
 
     from strayline.service import Service
@@ -99,15 +144,19 @@ def run_demo(
             writer_done.set()
 
     deadline = time.monotonic() + time_limit_s
+    timed_out = threading.Event()
     service: Service | None = None
 
     def finished() -> bool:
-        if time.monotonic() > deadline or failure:
+        if failure:
+            return True
+        if time.monotonic() > deadline:
+            timed_out.set()
             return True
         if not writer_done.is_set() or service is None:
             return False
-        progress = service.pipeline.scan_progress().get(_SCAN_ID)
-        return progress is not None and progress[0] >= lines
+        pipeline = service.pipeline
+        return pipeline is not None and _accounted(pipeline, lines)
 
     service = Service(config, stop_when=finished)
     thread = threading.Thread(target=write, name="demo-instrument", daemon=True)
@@ -117,37 +166,55 @@ def run_demo(
     thread.join(timeout=5.0)
     if failure:
         raise failure[0]
-    _print_summary(folder, config, truth_dir)
+    _print_summary(config, truth_dir)
+    if timed_out.is_set():
+        print(f"stopped      after the time limit of {time_limit_s:g} s with lines missing")
+        return 1
     return 0
 
 
-def _print_summary(folder: Path, config: Config, truth_dir: Path) -> None:
-    import zarr
+def _accounted(pipeline: LinePipeline, lines: int) -> bool:
+    """Every line of the demo scan committed or quarantined."""
+    done = pipeline.scan_progress().get(_SCAN_ID, (0, lines))[0]
+    return done + pipeline.statistics().quarantined >= lines
 
+
+def _read_map(group: Any, name: str) -> np.ndarray:
+    array = group[name]
+    if not isinstance(array, zarr.Array):
+        raise KeyError(f"{name} is not an array in {group.store}")
+    return np.asarray(array[:])
+
+
+def _print_summary(config: Config, truth_dir: Path) -> None:
     from demo_stream.truth import load_truth
     from strayline.alerts import read_alert_log
 
     store_path = config.paths.output_root / f"{_SCAN_ID}.zarr"
-    group = zarr.open_group(store_path, mode="r")
-    field_t = np.asarray(group["forward/field_nv_t"][:])
-    sigma_t = np.asarray(group["forward/field_nv_sigma_t"][:])
-    truth = load_truth(truth_dir, _SCAN_ID)
-    truth_t = truth.map("field_nv_t", "forward")
     events = read_alert_log(config.paths.alert_log, scan_id=_SCAN_ID)
     raised = [e for e in events if e.state == "raised"]
-    written = int(np.isfinite(field_t).any(axis=1).sum())
     print()
     print(f"store        {store_path}")
     print(f"log          {config.logging.json_file}")
     print(f"alert log    {config.paths.alert_log}")
-    print(f"lines        {written} written")
-    finite = field_t[np.isfinite(field_t)]
-    if finite.size:
-        print(
-            f"field        {finite.min() * 1e3:+.3f} to {finite.max() * 1e3:+.3f} mT along "
-            "the NV axis"
-        )
-    print(f"vs truth     {truth_agreement(field_t, sigma_t, truth_t):.1%} of pixels within 3 sigma")
+    if store_path.exists():
+        group = zarr.open_group(store_path, mode="r")
+        field_t = _read_map(group, "forward/field_nv_t")
+        sigma_t = _read_map(group, "forward/field_nv_sigma_t")
+        truth_t = load_truth(truth_dir, _SCAN_ID).map("field_nv_t", "forward")
+        written = int(np.isfinite(field_t).any(axis=1).sum())
+        print(f"lines        {written} written")
+        finite = field_t[np.isfinite(field_t)]
+        if finite.size:
+            print(
+                f"field        {finite.min() * 1e3:+.3f} to {finite.max() * 1e3:+.3f} mT along "
+                "the NV axis"
+            )
+            agreement = truth_agreement(field_t, sigma_t, truth_t)
+            print(f"vs truth     {agreement:.1%} of pixels within 3 sigma")
+    else:
+        print("lines        0 written (no store)")
     print(f"alerts       {len(raised)} raised")
     for event in raised:
-        print(f"  line {event.line_index:>4}  {event.severity:<8} {event.rule}: {event.message}")
+        where = "" if event.line_index is None else f"line {event.line_index:>4}  "
+        print(f"  {where}{event.severity:<8} {event.rule}: {event.message}")

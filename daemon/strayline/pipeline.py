@@ -4,16 +4,24 @@
 Everything it needs per scan — the profile-resolved config, the fit model, the store, the
 metrics memory — is settled once when the scan's first line arrives (:class:`_Scan`), so
 the per-line path never branches on configuration. Bad instrument files are quarantined
-with a sidecar and an alert; nothing is deleted and the pipeline carries on.
+with a sidecar and an alert; nothing is deleted and the pipeline carries on. A scan whose
+profile cannot be used runs with the base config and says so in a warning alert.
+
+A scan context is registered only once it is complete: if opening a scan fails half-way
+the store is closed again (releasing its writer's lock) and the next line starts afresh.
 """
 
 from __future__ import annotations
 
+import contextlib
+import json
+import math
 import os
 import time
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from datetime import UTC, datetime
+from functools import partial
 from pathlib import Path
 from typing import Any, Literal
 
@@ -23,17 +31,32 @@ import structlog
 from strayline import __version__
 from strayline.alerts import AlertSink
 from strayline.config import Config, config_digest, select_profile
-from strayline.errors import LineFileError
+from strayline.errors import ConfigError, LineFileError, StoreError
 from strayline.field import field_from_fit
 from strayline.fit import FitModel, FitStatus, fit_line
 from strayline.lines import LineLimits, ScanLine, read_line_file
 from strayline.metrics import ROW_KEYS, MetricsTracker
 from strayline.physics.constants import D_ROOM_HZ, zfs_hz
-from strayline.quarantine import quarantine_file
+from strayline.quarantine import bad_file_event, quarantine_file
 from strayline.rules import AlertEvent, RuleEngine, load_rules
 from strayline.store import ScanStore
 
-__all__ = ["LineOutcome", "LinePipeline", "PipelineStatistics", "fit_model_from_config"]
+__all__ = [
+    "PROFILE_RULE",
+    "LineOutcome",
+    "LinePipeline",
+    "PipelineStatistics",
+    "fit_model_from_config",
+    "profile_event",
+    "zfs_rule",
+]
+
+#: Rule name of the warning raised when a scan's profile cannot be used.
+PROFILE_RULE = "profile_unusable"
+
+#: File (in ``paths.state_dir``) keeping the alerts raised through
+#: :meth:`LinePipeline.deliver` that are still active, so a restart remembers them.
+_DELIVERED_STATE = "delivered_alerts.json"
 
 OutcomeKind = Literal["written", "duplicate", "quarantined", "vanished"]
 
@@ -83,12 +106,19 @@ class PipelineStatistics:
 
 
 def fit_model_from_config(config: Config) -> FitModel:
-    """The :class:`FitModel` that ``config.fit`` asks for (SI units)."""
+    """The :class:`FitModel` that ``config.fit`` asks for (SI units).
+
+    A one-sided centre window (only ``fit.center_min_mhz`` or only ``center_max_mhz``)
+    gets an infinite other side. :func:`~strayline.fit.fit_line` intersects the window with
+    each line's frequency grid, so the open side becomes that line's grid edge, line by
+    line, and the model stays one constant per scan (no per-line work, no branching).
+    """
     fit = config.fit
+    lo, hi = fit.center_min_hz, fit.center_max_hz
     centers = (
-        (fit.center_min_hz, fit.center_max_hz)
-        if fit.center_min_hz is not None and fit.center_max_hz is not None
-        else None
+        None
+        if lo is None and hi is None
+        else (-math.inf if lo is None else lo, math.inf if hi is None else hi)
     )
     return FitModel(
         n_dips=fit.n_dips,
@@ -112,24 +142,33 @@ class _Scan:
     profile: str | None
     config: Config
     fit_model: FitModel
-    zfs_fixed_hz: float | None
-    temperature_k: float | None
+    zfs_for: Callable[[ScanLine], float]
     sign: float
     branch: Literal["upper", "lower"]
     store: ScanStore
     tracker: MetricsTracker
+    reopen: Callable[[bool], ScanStore]
     lines_written: int = 0
 
-    def zfs_for(self, line: ScanLine) -> float:
-        """D for this line: fixed by config, else from temperature, else room value."""
-        if self.zfs_fixed_hz is not None:
-            return self.zfs_fixed_hz
-        temperature_k = (
-            self.temperature_k if self.temperature_k is not None else (line.temperature_k)
-        )
-        if temperature_k is None:
-            return D_ROOM_HZ
-        return float(zfs_hz(temperature_k))
+
+def zfs_rule(config: Config) -> Callable[[ScanLine], float]:
+    """How a scan gets D for each line, settled once from ``config.field``.
+
+    ``field.zfs_hz`` set: that value. Else ``field.temperature_k`` set: D(T) of that
+    temperature, computed once. Else D(T) of each line file's temperature, and the room
+    value :data:`~strayline.physics.constants.D_ROOM_HZ` for a file without one.
+    """
+    if config.field.zfs_hz is not None:
+        fixed = float(config.field.zfs_hz)
+    elif config.field.temperature_k is not None:
+        fixed = float(zfs_hz(config.field.temperature_k))
+    else:
+        return _zfs_of_line
+    return lambda _line: fixed
+
+
+def _zfs_of_line(line: ScanLine) -> float:
+    return D_ROOM_HZ if line.temperature_k is None else float(zfs_hz(line.temperature_k))
 
 
 @dataclass
@@ -141,7 +180,6 @@ class _Counters:
     last_scan_id: str | None = None
     last_line_index: int | None = None
     last_line_s: float | None = None
-    scan_lines: dict[str, int] = field(default_factory=dict)
 
 
 class LinePipeline:
@@ -171,11 +209,14 @@ class LinePipeline:
             max_freq=config.limits.max_freq,
             max_file_bytes=config.limits.max_file_bytes,
         )
-        self._watch_root = config.paths.watch_root
         self._output_root = config.paths.output_root
         self._state_path = config.paths.state_dir / "rules_state.json"
         self._sink = sink if sink is not None else AlertSink.from_config(config)
         self._engine = RuleEngine.restore(load_rules(config), self._state_path, clock=clock)
+        self._clock = clock
+        self._delivered_path = config.paths.state_dir / _DELIVERED_STATE
+        self._delivered = _load_delivered(self._delivered_path)
+        self._raw_spectra: bool | None = None  # None: as each scan's config says
         self._scans: dict[str, _Scan] = {}
         self._counters = _Counters()
 
@@ -186,7 +227,7 @@ class LinePipeline:
         path = Path(path)
         try:
             line = read_line_file(path, limits=self._limits)
-            scan = self._scan_for(line, path)
+            scan, opening_events = self._scan_for(line, path)
             decision = scan.store.decide(line)
             if decision == "duplicate":
                 self._counters.duplicates += 1
@@ -197,7 +238,14 @@ class LinePipeline:
                     direction=line.direction,
                     file=path.name,
                 )
-                return LineOutcome(path, "duplicate", line.scan_id, line.line_index, line.direction)
+                return LineOutcome(
+                    path,
+                    "duplicate",
+                    line.scan_id,
+                    line.line_index,
+                    line.direction,
+                    events=opening_events,
+                )
             t0 = time.perf_counter()
             fit = fit_line(line.freq_hz, line.counts, scan.fit_model)
             line_field = field_from_fit(
@@ -210,14 +258,16 @@ class LinePipeline:
             return LineOutcome(path, "vanished")
         except LineFileError as error:
             return self._quarantine(path, error)
-        metrics = scan.tracker.update(line, fit, line_field)
-        events = tuple(self._engine.evaluate_line(line.scan_id, metrics))
-        self._engine.save(self._state_path)
-        for event in events:
-            self._sink.deliver(event)
+        # The line is committed: count it before anything else can fail.
         failures = int(np.count_nonzero(fit.status != FitStatus.OK))
         self._note_written(line, failures)
         scan.lines_written += 1
+        metrics = scan.tracker.update(line, fit, line_field)
+        raised = tuple(self._engine.evaluate_line(line.scan_id, metrics))
+        for event in raised:  # delivered before the state is saved: never a lost alert
+            self._sink.deliver(event)
+        self._engine.save(self._state_path)
+        events = opening_events + raised
         self._log.info(
             "line_processed",
             scan=line.scan_id,
@@ -253,14 +303,74 @@ class LinePipeline:
         """Evaluate time-based rules (acquisition stalled) and deliver their events."""
         events = tuple(self._engine.evaluate_tick(now))
         if events:
-            self._engine.save(self._state_path)
             for event in events:
                 self._sink.deliver(event)
+            self._engine.save(self._state_path)
         return events
+
+    def deliver(self, event: AlertEvent) -> None:
+        """Send an event raised outside the rule engine (e.g. by the service) to the sink.
+
+        Such events are remembered while raised — keyed by (scan, rule), cleared by their
+        "cleared" event — and saved in ``paths.state_dir`` so a restarted daemon still
+        counts them in :meth:`statistics` and lists them in :meth:`active_alerts`. The
+        rule engine's own state is not touched (its events are delivered by
+        :meth:`process` and :meth:`tick`).
+
+        Raises
+        ------
+        StoreError
+            If the remembered state cannot be saved (the event was delivered).
+        """
+        self._sink.deliver(event)
+        key = f"{event.scan_id}\u0000{event.rule}"
+        if event.state == "raised":
+            changed = self._delivered.get(key) != event
+            self._delivered[key] = event
+        else:
+            changed = self._delivered.pop(key, None) is not None
+        if changed:
+            _save_delivered(self._delivered_path, self._delivered)
+
+    def active_alerts(self) -> tuple[AlertEvent, ...]:
+        """Raise events still active: the rule engine's, then those from :meth:`deliver`."""
+        return tuple(self._engine.active()) + tuple(self._delivered.values())
+
+    def set_raw_spectra(self, enabled: bool) -> None:
+        """Turn the writing of raw spectra off or on for every open and future scan.
+
+        Overrides ``store.raw_spectra`` of every config and profile until called again.
+        An open store whose setting differs is closed and reopened with the new setting
+        (between lines: its committed lines are all on disk).
+
+        Raises
+        ------
+        StoreError
+            The first store that could not be reopened (after trying every one); each such
+            scan is dropped and reopened, with the new setting, by its next line.
+        """
+        self._raw_spectra = bool(enabled)
+        failed: list[StoreError] = []
+        for scan_id, scan in list(self._scans.items()):
+            if scan.store.raw_spectra == self._raw_spectra:
+                continue
+            scan.store.close()
+            try:
+                scan.store = scan.reopen(self._raw_spectra)
+            except StoreError as error:
+                del self._scans[scan_id]  # its next line opens it afresh
+                failed.append(error)
+            except BaseException:
+                del self._scans[scan_id]
+                raise
+        self._log.info("raw_spectra_set", enabled=self._raw_spectra, scans=len(self._scans))
+        if failed:
+            raise failed[0]
 
     # -- bookkeeping --------------------------------------------------------------------
 
     def statistics(self) -> PipelineStatistics:
+        """A frozen snapshot of the work so far."""
         c = self._counters
         return PipelineStatistics(
             lines_written=c.lines_written,
@@ -271,7 +381,7 @@ class LinePipeline:
             last_scan_id=c.last_scan_id,
             last_line_index=c.last_line_index,
             last_line_s=c.last_line_s,
-            active_alerts=len(self._engine.active()),
+            active_alerts=len(self._engine.active()) + len(self._delivered),
         )
 
     def scan_progress(self) -> dict[str, tuple[int, int]]:
@@ -318,44 +428,56 @@ class LinePipeline:
             moved_to = ""
             self._log.error("quarantine_failed", file=str(path), error=str(os_error))
         self._log.warning("line_quarantined", file=str(path), moved_to=moved_to, problem=str(error))
-        event = AlertEvent(
-            time=datetime.now(UTC).isoformat(timespec="milliseconds"),
-            scan_id=self._scan_id_of(path),
-            rule="bad_file",
-            severity="warning",
-            state="raised",
-            line_index=None,
-            direction=None,
-            pixel_range=None,
-            seen_value=None,
-            seen_unit="",
-            baseline_value=None,
-            baseline_spread=None,
-            confidence_z=None,
-            message=f"line file quarantined: {error}",
-            advice=(
-                f"the file was moved to {moved_to or 'nowhere (it vanished)'} with a note; "
-                "check the acquisition software's writer; the line is missing from the map"
-            ),
-        )
+        event = bad_file_event(path, error, moved_to, self._now())
         self._sink.deliver(event)
-        return LineOutcome(path, "quarantined", events=(event,))
+        return LineOutcome(
+            path,
+            "quarantined",
+            scan_id=event.scan_id,
+            line_index=event.line_index,
+            direction=event.direction,
+            events=(event,),
+        )
 
-    def _scan_id_of(self, path: Path) -> str:
-        """Best guess of a bad file's scan: its folder's name below the watch root."""
-        return path.parent.name
+    def _now(self) -> datetime:
+        return datetime.fromtimestamp(self._clock(), UTC)
 
-    def _scan_for(self, line: ScanLine, path: Path) -> _Scan:
+    def _scan_for(self, line: ScanLine, path: Path) -> tuple[_Scan, tuple[AlertEvent, ...]]:
         scan = self._scans.get(line.scan_id)
-        if scan is None:
-            scan = self._open_scan(line, path)
-            self._scans[line.scan_id] = scan
-        return scan
+        if scan is not None:
+            return scan, ()
+        scan, events = self._open_scan(line, path)
+        self._scans[line.scan_id] = scan  # registered only once complete
+        return scan, events
 
-    def _open_scan(self, line: ScanLine, path: Path) -> _Scan:
+    def _scan_config(
+        self, line: ScanLine, path: Path
+    ) -> tuple[Config, str | None, tuple[AlertEvent, ...]]:
+        """The scan's config; an unusable profile falls back to the base config, alerting."""
         profile = select_profile(self.config, path.parent.name, line.profile)
-        config = self.config.with_profile(profile) if profile else self.config
-        store = ScanStore.open(
+        if profile is None:
+            return self.config, None, ()
+        try:
+            return self.config.with_profile(profile), profile, ()
+        except ConfigError as error:
+            available = self.config.available_profiles()
+            event = profile_event(line, profile, error, available, self._now())
+            self._log.warning(
+                "profile_unusable",
+                scan=line.scan_id,
+                profile=profile,
+                problem=str(error),
+                available=list(available),
+            )
+            self._sink.deliver(event)
+            return self.config, None, (event,)
+
+    def _open_scan(self, line: ScanLine, path: Path) -> tuple[_Scan, tuple[AlertEvent, ...]]:
+        config, profile, events = self._scan_config(line, path)
+        fit_model = fit_model_from_config(config)
+        raw_spectra = config.store.raw_spectra if self._raw_spectra is None else self._raw_spectra
+        opener = partial(
+            ScanStore.open,
             self._output_root,
             line.scan_id,
             n_lines_planned=line.n_lines_planned,
@@ -363,12 +485,32 @@ class LinePipeline:
             x_m=line.x_m,
             config_json=_store_config(config, profile),
             config_digest=config_digest(config),
-            raw_spectra=config.store.raw_spectra,
             compression_level=config.store.compression_level,
             chunk_lines=config.store.chunk_lines,
         )
-        tracker = MetricsTracker()
-        _seed_tracker(tracker, store, line)
+
+        def reopen(enabled: bool) -> ScanStore:
+            return opener(raw_spectra=enabled)
+
+        store = reopen(raw_spectra)
+        try:
+            tracker = MetricsTracker()
+            _seed_tracker(tracker, store, line)
+            scan = _Scan(
+                scan_id=line.scan_id,
+                profile=profile,
+                config=config,
+                fit_model=fit_model,
+                zfs_for=zfs_rule(config),
+                sign=float(config.field.sign),
+                branch=config.field.one_resonance_branch,
+                store=store,
+                tracker=tracker,
+                reopen=reopen,
+            )
+        except BaseException:
+            store.close()  # release the writer's lock: the next line opens it afresh
+            raise
         if store.recovered_lines:
             self._log.warning(
                 "store_recovered",
@@ -382,19 +524,57 @@ class LinePipeline:
             store=str(store.path),
             lines_planned=line.n_lines_planned,
             pixels=line.n_pixels,
+            raw_spectra=store.raw_spectra,
         )
-        return _Scan(
-            scan_id=line.scan_id,
-            profile=profile,
-            config=config,
-            fit_model=fit_model_from_config(config),
-            zfs_fixed_hz=config.field.zfs_hz,
-            temperature_k=config.field.temperature_k,
-            sign=float(config.field.sign),
-            branch=config.field.one_resonance_branch,
-            store=store,
-            tracker=tracker,
-        )
+        return scan, events
+
+
+def profile_event(
+    line: ScanLine,
+    profile: str,
+    error: ConfigError,
+    available: tuple[str, ...],
+    now: datetime,
+) -> AlertEvent:
+    """The warning alert for a scan whose profile cannot be used (base config instead).
+
+    Parameters
+    ----------
+    line : ScanLine
+        The scan's first line seen by this daemon.
+    profile : str
+        The profile the line file or the folder rules asked for.
+    error : ConfigError
+        Why it cannot be used (unknown, invalid overlay).
+    available : tuple of str
+        The profiles that exist.
+    now : datetime
+        Aware time of the decision.
+    """
+    listing = ", ".join(available) if available else "none"
+    return AlertEvent(
+        time=now.astimezone(UTC).isoformat(timespec="milliseconds"),
+        scan_id=line.scan_id,
+        rule=PROFILE_RULE,
+        severity="warning",
+        state="raised",
+        line_index=line.line_index,
+        direction=line.direction,
+        pixel_range=None,
+        seen_value=None,
+        seen_unit="",
+        baseline_value=None,
+        baseline_spread=None,
+        confidence_z=None,
+        message=(
+            f"profile {profile!r} cannot be used ({error}); the scan is processed with the "
+            f"base config; available profiles: {listing}"
+        ),
+        advice=(
+            "fix the profile name in the acquisition software or the profile file, then "
+            "reprocess the scan if its settings matter"
+        ),
+    )
 
 
 def _store_config(config: Config, profile: str | None) -> dict[str, Any]:
@@ -405,7 +585,7 @@ def _store_config(config: Config, profile: str | None) -> dict[str, Any]:
     return data
 
 
-#: Store map that holds each metrics row key (rows not stored are rebuilt as NaN).
+#: Store map that holds each metrics row key directly.
 _ROW_FROM_MAP = {
     "field_nv_t": "field_nv_t",
     "field_nv_sigma_t": "field_nv_sigma_t",
@@ -414,22 +594,93 @@ _ROW_FROM_MAP = {
 }
 
 
+def center_mean_sigma_from_maps(
+    center_mean_hz: np.ndarray,
+    freq_hi_hz: np.ndarray,
+    freq_lo_sigma_hz: np.ndarray,
+    freq_hi_sigma_hz: np.ndarray,
+) -> np.ndarray:
+    """1σ of the resonance-pair mean, rebuilt from the stored maps.
+
+    Where both resonances were fitted the mean is (f₋ + f₊)/2, so with independent errors
+    σ = ½·√(σ₋² + σ₊²) (Gaussian error propagation, common practice; the same expression
+    :func:`~strayline.field.field_from_fit` uses). Where the dips merged into one, the mean
+    *is* the one centre and σ = σ₋. Where no mean was computed the result is NaN.
+
+    Parameters
+    ----------
+    center_mean_hz, freq_hi_hz, freq_lo_sigma_hz, freq_hi_sigma_hz : ndarray, shape (n,)
+        Rows of the store's maps of the same names, Hz.
+
+    Returns
+    -------
+    ndarray, shape (n,)
+        σ of the centre mean, Hz.
+    """
+    mean = np.asarray(center_mean_hz, dtype=float)
+    hi = np.asarray(freq_hi_hz, dtype=float)
+    s_lo = np.asarray(freq_lo_sigma_hz, dtype=float)
+    s_hi = np.asarray(freq_hi_sigma_hz, dtype=float)
+    pair = 0.5 * np.hypot(s_lo, s_hi)
+    out = np.where(np.isfinite(hi), pair, s_lo)
+    return np.where(np.isfinite(mean), out, np.nan)
+
+
 def _seed_tracker(tracker: MetricsTracker, store: ScanStore, line: ScanLine) -> None:
-    """After a restart, remember the last committed line of each direction."""
+    """After a restart, remember the last committed line of each direction.
+
+    Every row is rebuilt from the store's maps except ``pl_sigma_per_s``: the store does
+    not keep the PL rate's 1σ, so that row is NaN (no metric uses it today).
+    """
     committed = store.committed()
     for direction in ("forward", "backward"):
         done = [i for (i, d) in committed if d == direction and i < line.line_index]
         if not done:
             continue
         last = max(done)
-        rows: dict[str, np.ndarray] = {}
-        for key in ROW_KEYS:
-            if key == "x_m":
-                rows[key] = np.asarray(line.x_m, dtype=float)
-            elif key in _ROW_FROM_MAP:
-                rows[key] = np.asarray(
-                    store.read_map(_ROW_FROM_MAP[key], direction)[last], dtype=float
-                )
-            else:
-                rows[key] = np.full(store.n_pixels, np.nan)
-        tracker.seed(direction, rows)
+
+        def row(name: str, direction: str = direction, last: int = last) -> np.ndarray:
+            return np.asarray(store.read_map(name, direction)[last], dtype=float)
+
+        rows = {key: row(name) for key, name in _ROW_FROM_MAP.items()}
+        rows["center_mean_sigma_hz"] = center_mean_sigma_from_maps(
+            rows["center_mean_hz"],
+            row("freq_hi_hz"),
+            row("freq_lo_sigma_hz"),
+            row("freq_hi_sigma_hz"),
+        )
+        rows["pl_sigma_per_s"] = np.full(store.n_pixels, np.nan)
+        rows["x_m"] = np.asarray(line.x_m, dtype=float)
+        tracker.seed(direction, {key: rows[key] for key in ROW_KEYS})
+
+
+def _load_delivered(path: Path) -> dict[str, AlertEvent]:
+    """Active delivered alerts saved by :func:`_save_delivered` (none if unreadable)."""
+    try:
+        data = json.loads(path.read_text(encoding="utf-8"))
+        events = [AlertEvent.from_dict(item) for item in data["active"]]
+    except FileNotFoundError:
+        return {}
+    except (OSError, ValueError, KeyError, TypeError) as error:
+        structlog.get_logger("strayline.pipeline").warning(
+            "delivered_alerts_unreadable", path=str(path), problem=str(error)
+        )
+        return {}
+    return {f"{e.scan_id}\u0000{e.rule}": e for e in events}
+
+
+def _save_delivered(path: Path, active: dict[str, AlertEvent]) -> None:
+    """Write the active delivered alerts atomically (temporary file, fsync, rename)."""
+    text = json.dumps({"active": [e.to_dict() for e in active.values()]})
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        with open(tmp, "w", encoding="utf-8") as fh:
+            fh.write(text)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except OSError as error:
+        with contextlib.suppress(OSError):
+            tmp.unlink()
+        raise StoreError(f"{path}: delivered alerts could not be saved: {error}") from error

@@ -2,20 +2,97 @@
 
 The file goes to ``<scan folder>/_quarantine/`` with a JSON sidecar that says exactly what
 was wrong (file, field, expected, found, when). Names never collide: a second file of the
-same name gets a numbered suffix, so nothing is overwritten.
+same name gets a numbered suffix, so nothing is overwritten. :func:`bad_file_event` is the
+alert that tells the operator about it.
 """
 
 from __future__ import annotations
 
 import json
 import os
+import re
 from dataclasses import asdict, dataclass
 from datetime import UTC, datetime
 from pathlib import Path
 
-__all__ = ["QUARANTINE_DIR", "QuarantineRecord", "quarantine_file"]
+from strayline.errors import LineFileError
+from strayline.rules import AlertEvent
+
+__all__ = [
+    "BAD_FILE_RULE",
+    "QUARANTINE_DIR",
+    "QuarantineRecord",
+    "bad_file_event",
+    "line_key_from_name",
+    "quarantine_file",
+]
 
 QUARANTINE_DIR = "_quarantine"
+
+#: Rule name of the alert raised for a quarantined file.
+BAD_FILE_RULE = "bad_file"
+
+#: The canonical line-file name (:func:`strayline.lines.line_file_name`), e.g.
+#: ``line_00042_fwd.h5``; the direction tag is optional here.
+_LINE_NAME = re.compile(r"line_(?P<index>\d{1,9})(?:_(?P<tag>fwd|bwd))?\.h5")
+_TAG_DIRECTION = {"fwd": "forward", "bwd": "backward"}
+
+
+def line_key_from_name(name: str) -> tuple[int | None, str | None]:
+    """The line index and direction a file name reveals, (None, None) if it reveals none.
+
+    ``line_00042_fwd.h5`` → ``(42, "forward")``; ``line_00042.h5`` → ``(42, None)``;
+    ``scan.h5`` → ``(None, None)``.
+    """
+    match = _LINE_NAME.fullmatch(name)
+    if match is None:
+        return None, None
+    tag = match.group("tag")
+    return int(match.group("index")), (_TAG_DIRECTION[tag] if tag else None)
+
+
+def bad_file_event(path: Path, error: LineFileError, moved_to: str, now: datetime) -> AlertEvent:
+    """The warning alert for a quarantined line file.
+
+    Parameters
+    ----------
+    path : Path
+        Where the file was (inside its scan folder, whose name is taken as the scan id).
+    error : LineFileError
+        Why it was rejected.
+    moved_to : str
+        Where it went; empty if it vanished before it could be moved.
+    now : datetime
+        Aware time of the decision.
+
+    Returns
+    -------
+    AlertEvent
+        Rule :data:`BAD_FILE_RULE`, state "raised" (a bad file is a one-off, never cleared),
+        with the line index and direction when the file name reveals them.
+    """
+    line_index, direction = line_key_from_name(path.name)
+    where = moved_to or "nowhere (it vanished before it could be moved)"
+    return AlertEvent(
+        time=now.astimezone(UTC).isoformat(timespec="milliseconds"),
+        scan_id=path.parent.name,
+        rule=BAD_FILE_RULE,
+        severity="warning",
+        state="raised",
+        line_index=line_index,
+        direction=direction,
+        pixel_range=None,
+        seen_value=None,
+        seen_unit="",
+        baseline_value=None,
+        baseline_spread=None,
+        confidence_z=None,
+        message=f"line file quarantined: {error}",
+        advice=(
+            f"the file was moved to {where} with a note beside it; check the acquisition "
+            "software's writer; the line is missing from the map until a good file arrives"
+        ),
+    )
 
 
 @dataclass(frozen=True)

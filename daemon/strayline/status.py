@@ -1,12 +1,14 @@
 """``strayline status``: per scan, lines done of planned, rate, ETA, failures, last alerts.
 
 Reads the stores and the alert log only (never takes the ledger's lock), so it is safe to
-run while the daemon writes.
+run while the daemon writes. A folder that is not (yet) a readable store is skipped, and an
+alert log that cannot be parsed is reported in place of the alerts, never fatal.
 """
 
 from __future__ import annotations
 
-from dataclasses import asdict, dataclass
+from collections.abc import Sequence
+from dataclasses import asdict, dataclass, replace
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
 from typing import Any
@@ -16,13 +18,15 @@ import zarr
 
 from strayline._ledger import LedgerState, parse_records
 from strayline._store_layout import DIRECTIONS, LEDGER_FILE, STATUS_FILL
-from strayline.alerts import read_alert_log
+from strayline.alerts import format_alert, read_alert_log
 from strayline.errors import StoreError
 from strayline.fit import FitStatus
+from strayline.rules import AlertEvent
 
 __all__ = ["ScanStatus", "format_scan_status", "scan_status", "scan_statuses"]
 
 _RATE_WINDOW = 20  # commits used for the rate estimate (recent pace, not the average)
+_ALERTS_SHOWN = 3  # latest alert lines per scan
 
 
 @dataclass(frozen=True)
@@ -60,6 +64,7 @@ class ScanStatus:
     last_alerts: tuple[str, ...]
 
     def as_json_dict(self) -> dict[str, Any]:
+        """Plain JSON-ready values (times as ISO 8601 strings, the store as a string)."""
         data = asdict(self)
         data["store"] = str(self.store)
         for key in ("eta", "last_commit"):
@@ -73,10 +78,22 @@ def _commit_times(state: LedgerState, direction: str) -> list[datetime]:
     return sorted(e.processed_time for e in state.committed.values() if e.direction == direction)
 
 
-def scan_status(
-    store_path: Path, alerts: list[Any] | None = None, now: datetime | None = None
-) -> ScanStatus:
-    """Read one store's progress (and the scan's last alerts from ``alerts``)."""
+def scan_status(store_path: Path, alerts: Sequence[AlertEvent] | None = None) -> ScanStatus:
+    """Read one store's progress (and the scan's last alerts from ``alerts``).
+
+    The rate counts the last :data:`_RATE_WINDOW` commits of the direction with the most
+    commits: (commits − 1) / (time from the first to the last of them). The ETA adds the
+    remaining lines of that direction at that rate to the last commit.
+
+    Raises
+    ------
+    FileNotFoundError
+        If ``store_path`` is not a zarr group (zarr's GroupNotFoundError).
+    KeyError
+        If the group lacks the store's attributes (not a scan store).
+    StoreError
+        If the ledger exists but cannot be read.
+    """
     group = zarr.open_group(store_path, mode="r")
     attrs = group.attrs.asdict()
     scan_id = str(attrs["scan_id"])
@@ -106,13 +123,14 @@ def scan_status(
     for direction in DIRECTIONS:
         if done[direction] == 0:
             continue
-        status = np.asarray(group[f"{direction}/status"][:])
+        array = group[f"{direction}/status"]
+        if not isinstance(array, zarr.Array):
+            raise KeyError(f"{direction}/status")
+        status = np.asarray(array[:])
         written = status != STATUS_FILL
         pixels += int(written.sum())
         failed += int((written & (status != FitStatus.OK)).sum())
-    lines = tuple(_alert_line(e) for e in (alerts or []) if getattr(e, "scan_id", None) == scan_id)[
-        -3:
-    ]
+    lines = tuple(format_alert(e) for e in (alerts or ()) if e.scan_id == scan_id)[-_ALERTS_SHOWN:]
     return ScanStatus(
         scan_id=scan_id,
         store=store_path,
@@ -127,19 +145,31 @@ def scan_status(
     )
 
 
-def _alert_line(event: Any) -> str:
-    from strayline.alerts import format_alert
-
-    return format_alert(event)
-
-
 def scan_statuses(output_root: Path, alert_log: Path | None = None) -> list[ScanStatus]:
-    """Every store under ``output_root``, most recently active first."""
-    alerts = read_alert_log(alert_log) if alert_log is not None and alert_log.exists() else []
+    """Every store under ``output_root``, most recently active first.
+
+    A ``*.zarr`` folder that is not a readable scan store (being created, or something
+    else) is skipped. An alert log that cannot be parsed gives every scan one line saying
+    so instead of its alerts.
+    """
+    problem: str | None = None
+    alerts: list[AlertEvent] = []
+    if alert_log is not None:
+        try:
+            alerts = read_alert_log(alert_log)
+        except ValueError as error:
+            problem = f"(alert log {alert_log} unreadable: {error})"
     out = []
     for path in sorted(Path(output_root).glob("*.zarr")):
-        if path.is_dir():
-            out.append(scan_status(path, alerts))
+        if not path.is_dir():
+            continue
+        try:
+            status = scan_status(path, alerts)
+        except (FileNotFoundError, KeyError):
+            continue
+        if problem is not None:
+            status = replace(status, last_alerts=(problem,))
+        out.append(status)
     epoch = datetime.min.replace(tzinfo=UTC)
     out.sort(key=lambda s: s.last_commit or epoch, reverse=True)
     return out
@@ -156,7 +186,10 @@ def format_scan_status(status: ScanStatus) -> str:
         else ("complete" if fwd >= status.n_lines_planned else "ETA n/a")
     )
     failed = (
-        f"{status.pixels_failed / status.pixels_done:.1%} fits failed" if status.pixels_done else ""
+        f"{status.pixels_failed} of {status.pixels_done} pixel fits failed "
+        f"({status.pixels_failed / status.pixels_done:.1%})"
+        if status.pixels_done
+        else ""
     )
     out = [f"{status.scan_id}: {traces}, {rate}, {eta}, {failed}".rstrip(", ")]
     out.extend(f"  {line}" for line in status.last_alerts)
