@@ -295,16 +295,19 @@ def test_reopening_with_another_config_keeps_both(tmp_path: Path) -> None:
 
 
 def test_reopen_with_other_pixel_count_is_refused(tmp_path: Path) -> None:
-    """Reopening a store for a different n_pixels raises StoreError naming path and values."""
+    """Reopening a store for a different n_pixels is a StoreMismatch naming store and values."""
     open_store(tmp_path).close()
-    with pytest.raises(StoreError, match=r"scan7\.zarr: attribute n_pixels must be 8 .*found 6"):
+    with pytest.raises(
+        StoreMismatch,
+        match=r"scan7\.zarr: attribute 'n_pixels' must be 6 \(as in the scan's store\); found 8",
+    ):
         open_store(tmp_path, n_pixels=8, x_m=np.zeros(8))
 
 
 def test_reopen_with_other_line_count_is_refused(tmp_path: Path) -> None:
-    """Reopening a store for a different n_lines_planned raises StoreError."""
+    """Reopening a store for a different n_lines_planned is a StoreMismatch."""
     open_store(tmp_path).close()
-    with pytest.raises(StoreError, match=r"attribute n_lines_planned must be 9 .*found 5"):
+    with pytest.raises(StoreMismatch, match=r"attribute 'n_lines_planned' must be 5 .*found 9"):
         open_store(tmp_path, n_lines_planned=9)
 
 

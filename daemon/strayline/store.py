@@ -703,8 +703,12 @@ def _open_root(path: Path, scan_id: str, n_lines_planned: int, n_pixels: int) ->
         ("n_pixels", n_pixels),
     ):
         if attrs.get(key) != wanted:
-            raise StoreError(
-                f"{path}: attribute {key} must be {wanted!r} to reopen the store for this "
-                f"scan; found {attrs.get(key)!r}"
+            # The incoming line disagrees with its scan's store: the line's file is the odd
+            # one out, so this is a StoreMismatch (the caller quarantines the file).
+            raise StoreMismatch(
+                path,
+                f"attribute '{key}'",
+                f"{attrs.get(key)!r} (as in the scan's store)",
+                repr(wanted),
             )
     return root
