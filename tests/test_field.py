@@ -81,19 +81,38 @@ def test_worked_examples(field_t, theta_deg, f_lo_hz, f_hi_hz):
 
 
 def test_one_resonance_branches():
-    """A lone resonance gives B∥ = ±(f − D)/γ (Rondin et al., Rep. Prog. Phys. 77, 056503
-    (2014), Sec. 2), exact for a field along the axis; upper/lower branch and the bias sign
-    set its sign, and |B|, θ and the line mean stay NaN."""
+    """A resonance of a one-dip fit gives B∥ = ±(f − D)/γ on the given branch (Rondin et
+    al., Rep. Prog. Phys. 77, 056503 (2014), Sec. 2), exact for a field along the axis,
+    and the bias sign sets its sign; |B|, θ and the line mean stay NaN."""
     f = _frequencies(np.array([3e-3]), np.array([0.0]))[0]
     centers = np.array([[f[1], np.nan], [f[0], np.nan]])
     sig = np.array([[2e5, np.nan], [2e5, np.nan]])
-    status = [FitStatus.ONE_RESONANCE, FitStatus.OK]
+    status = [FitStatus.OK, FitStatus.OK]
     up = field_from_fit(_line_fit(centers, sig, status), zfs_hz=D_HZ, branch="upper")
     low = field_from_fit(_line_fit(centers, sig, status), zfs_hz=D_HZ, branch="lower", sign=-1.0)
     np.testing.assert_allclose(up.field_nv_t, [3e-3, -3e-3], rtol=1e-9)
     np.testing.assert_allclose(low.field_nv_t, [3e-3, -3e-3], rtol=1e-9)
     np.testing.assert_allclose(up.field_nv_sigma_t, 2e5 / GAMMA_NV_HZ_PER_T)
     assert np.all(np.isnan(up.field_abs_t) & np.isnan(up.center_mean_hz))
+
+
+def test_lone_dip_of_a_pair_takes_the_branch_on_its_side_of_d():
+    """A lone dip of the two-dip model (ONE_RESONANCE) is f₊ above D and f₋ below it,
+    whatever branch is configured, so B∥ = sign · |f − D|/γ keeps the sign convention of
+    the pairs (B∥ = sign · |B| cos θ; Balasubramanian et al., Nature 455, 648 (2008),
+    Methods; one-resonance form from Rondin et al., Rep. Prog. Phys. 77, 056503 (2014),
+    Sec. 2)."""
+    f = _frequencies(np.array([3e-3]), np.array([0.0]))[0]
+    centers = np.array([[f[1], np.nan], [f[0], np.nan]])
+    sig = np.full((2, 2), 2e5)
+    status = [FitStatus.ONE_RESONANCE, FitStatus.ONE_RESONANCE]
+    for branch in ("upper", "lower"):
+        for sign in (1.0, -1.0):
+            out = field_from_fit(
+                _line_fit(centers, sig, status), zfs_hz=D_HZ, branch=branch, sign=sign
+            )
+            np.testing.assert_allclose(out.field_nv_t, [sign * 3e-3, sign * 3e-3], rtol=1e-9)
+            np.testing.assert_allclose(out.field_nv_sigma_t, 2e5 / GAMMA_NV_HZ_PER_T)
 
 
 def test_sigma_matches_monte_carlo():
