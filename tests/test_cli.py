@@ -23,7 +23,7 @@ from strayline.service import process_folder
 
 REPO = Path(__file__).resolve().parents[1]
 SCAN = "cli-scan"
-COMMANDS = ("run", "process", "status", "alerts", "check-config", "demo")
+COMMANDS = ("run", "process", "status", "alerts", "check-config", "demo", "products")
 
 
 def _write_config(tmp_path: Path, **sections: Any) -> Path:

@@ -60,6 +60,7 @@ def _config(tmp_path: Path, **sections: Any) -> Config:
         "paths": {"watch_root": "incoming", "output_root": "output"},
         "logging": {"console": "off"},
         "alerts": {"console": False},
+        "products": {"images": False},  # images cost seconds and are tested in test_products
     }
     for key, value in sections.items():
         if isinstance(value, dict):

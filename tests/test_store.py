@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import errno
 import json
 import os
@@ -695,3 +696,19 @@ def test_rewritten_line_without_raw_drops_stale_raw_spectra(tmp_path: Path) -> N
     with open_store(tmp_path, raw_spectra=False) as store:
         store.write_line(*make_records(0, sha256="2" * 64))
         assert store.read_raw(0, "forward") is None
+
+
+def test_a_backward_trace_is_stored_in_increasing_x(tmp_path: Path) -> None:
+    """A trace acquired in decreasing x (its x_m says so) lands in the maps in increasing
+    x, so both traces share the store's x coordinate (common practice for trace/retrace)."""
+    line, fit, field = make_records(0, "backward")
+    reversed_line = dataclasses.replace(line, x_m=line.x_m[::-1].copy())
+    with open_store(tmp_path, x_m=X_M[::-1].copy()) as store:
+        store.write_line(reversed_line, fit, field)
+        rows = line_rows(reversed_line, fit, field)
+        for name in MAP_NAMES:
+            np.testing.assert_array_equal(
+                store.read_map(name, "backward")[0], rows[name][::-1], err_msg=name
+            )
+    x = np.asarray(zarr.open_group(tmp_path / "scan7.zarr", mode="r")["backward/x"][:])
+    np.testing.assert_array_equal(x, np.sort(X_M))

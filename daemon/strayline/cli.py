@@ -1,4 +1,4 @@
-"""Command line: ``strayline run | process | status | alerts | check-config | demo``.
+"""Command line: ``strayline run | process | status | alerts | check-config | demo | products``.
 
 Exit codes: 0 ok, 2 usage, 78 (EX_CONFIG) for a bad configuration, 1 for anything else
 that stopped a command.
@@ -14,7 +14,7 @@ from collections.abc import Sequence
 from pathlib import Path
 
 from strayline import __version__
-from strayline.errors import EXIT_CONFIG, EXIT_OK, ConfigError
+from strayline.errors import EXIT_CONFIG, EXIT_OK, EXIT_USAGE, ConfigError
 
 __all__ = ["build_parser", "main"]
 
@@ -50,6 +50,28 @@ def _seconds(text: str) -> float:
         raise argparse.ArgumentTypeError(f"must be a number of seconds; found {text!r}") from None
     if not 0.0 <= value < float("inf"):
         raise argparse.ArgumentTypeError(f"must be a finite number >= 0; found {text}")
+    return value
+
+
+def _positive_number(text: str) -> float:
+    """An argument that must be a finite number > 0."""
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"must be a number; found {text!r}") from None
+    if not 0.0 < value < float("inf"):
+        raise argparse.ArgumentTypeError(f"must be a finite number > 0; found {text}")
+    return value
+
+
+def _degrees(text: str) -> float:
+    """An argument that must be a finite angle in degrees."""
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"must be an angle in degrees; found {text!r}") from None
+    if not abs(value) < float("inf"):
+        raise argparse.ArgumentTypeError(f"must be a finite angle; found {text}")
     return value
 
 
@@ -118,6 +140,42 @@ def build_parser() -> argparse.ArgumentParser:
     )
     demo.add_argument("--folder", type=Path, default=None, help="work folder (default: a temp one)")
     demo.add_argument("--seed", type=int, default=7, help="noise seed (default 7)")
+
+    products = sub.add_parser(
+        "products",
+        help="(re)make a scan's quick-look images, vector field, sheet moment and report",
+    )
+    products.add_argument("store", type=Path, metavar="STORE", help="the scan's <scan_id>.zarr")
+    products.add_argument(
+        "--standoff-nm",
+        type=_positive_number,
+        default=None,
+        metavar="NM",
+        help="NV-sample distance, nm, for the sheet moment (default: the scan's "
+        "products.standoff_nm; none: the sheet moment is skipped)",
+    )
+    products.add_argument(
+        "--out",
+        type=Path,
+        default=None,
+        metavar="DIR",
+        help="folder for the products (default: <scan_id>.products beside the store)",
+    )
+    products.add_argument(
+        "--nv-theta-deg",
+        type=_degrees,
+        default=None,
+        metavar="DEG",
+        help="NV axis polar angle, degrees (default: as recorded for the scan)",
+    )
+    products.add_argument(
+        "--nv-phi-deg",
+        type=_degrees,
+        default=None,
+        metavar="DEG",
+        help="NV axis azimuth, degrees (default: as recorded for the scan)",
+    )
+    products.add_argument("--no-images", action="store_true", help="skip the PNG images")
     return parser
 
 
@@ -221,6 +279,36 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     )
 
 
+def _cmd_products(args: argparse.Namespace) -> int:
+    import math
+
+    from strayline.errors import StoreError
+    from strayline.products import remake_products
+
+    given = (args.nv_theta_deg is not None, args.nv_phi_deg is not None)
+    if any(given) and not all(given):
+        print("strayline: give both --nv-theta-deg and --nv-phi-deg, or neither", file=sys.stderr)
+        return EXIT_USAGE
+    axis = (math.radians(args.nv_theta_deg), math.radians(args.nv_phi_deg)) if all(given) else None
+    try:
+        report = remake_products(
+            args.store,
+            standoff_m=None if args.standoff_nm is None else args.standoff_nm * 1e-9,
+            out_dir=args.out,
+            nv_axis_rad=axis,
+            images=False if args.no_images else None,
+        )
+    except (StoreError, ValueError) as error:
+        print(f"strayline: {error}", file=sys.stderr)
+        return 1
+    print(f"{report.scan_id}: {len(report.files)} products in {report.out_dir}")
+    for item in report.files:
+        print(f"  {item.path.name}: {item.description}")
+    for skipped in report.skipped:
+        print(f"  skipped {skipped.product}: {skipped.reason}")
+    return EXIT_OK
+
+
 _COMMANDS = {
     "run": _cmd_run,
     "process": _cmd_process,
@@ -228,6 +316,7 @@ _COMMANDS = {
     "status": _cmd_status,
     "alerts": _cmd_alerts,
     "demo": _cmd_demo,
+    "products": _cmd_products,
 }
 
 

@@ -64,6 +64,7 @@ __all__ = [
     "LimitsSection",
     "LoggingSection",
     "PathsSection",
+    "ProductsSection",
     "ProfileRule",
     "ServiceSection",
     "StoreSection",
@@ -85,6 +86,7 @@ PROFILE_SECTIONS: Mapping[str, frozenset[str] | None] = {
     "store": None,
     "rules": None,
     "alerts": None,
+    "products": frozenset({"enabled", "standoff_nm", "images"}),
 }
 
 _MHZ = 1e6
@@ -306,6 +308,20 @@ class StoreSection(_Section):
     chunk_lines: Annotated[int, Field(ge=1)] = 1
 
 
+class ProductsSection(_Section):
+    """What is made once a scan is complete (see :mod:`strayline.products`)."""
+
+    enabled: bool = True
+    standoff_nm: Annotated[float, Field(gt=0)] | None = None
+    images: bool = True
+    folder: ResolvedPath | None = None
+
+    @property
+    def standoff_m(self) -> float | None:
+        """NV–sample distance, m (None: unknown, the sheet moment is skipped)."""
+        return None if self.standoff_nm is None else self.standoff_nm * 1e-9
+
+
 class AlertsSection(_Section):
     """Where alert events go besides the alert log."""
 
@@ -362,6 +378,7 @@ class Config(_Section):
     store: StoreSection = Field(default_factory=StoreSection)
     rules: list[dict[str, Any]] = Field(default_factory=list)
     alerts: AlertsSection = Field(default_factory=AlertsSection)
+    products: ProductsSection = Field(default_factory=ProductsSection)
     logging: LoggingSection = Field(default_factory=LoggingSection)
     service: ServiceSection = Field(default_factory=ServiceSection)
     profiles_dir: ResolvedPath = Field(default=Path("profiles"), validate_default=True)

@@ -1,5 +1,8 @@
 """The line pipeline: one file in, validate → fit → field → store → rules → alerts.
 
+When a scan's last planned line is committed, the pipeline also makes the scan's products
+once (images, vector field, sheet moment, report; :mod:`strayline.products`).
+
 :class:`LinePipeline` wires the stages together for one daemon (or one ``process`` pass).
 Everything it needs per scan — the profile-resolved config, the fit model, the store, the
 metrics memory — is settled once when the scan's first line arrives (:class:`_Scan`), so
@@ -37,6 +40,7 @@ from strayline.fit import FitModel, FitStatus, fit_line
 from strayline.lines import LineLimits, ScanLine, read_line_file
 from strayline.metrics import ROW_KEYS, MetricsTracker
 from strayline.physics.constants import D_ROOM_HZ, zfs_hz
+from strayline.products import make_products, products_dir
 from strayline.quarantine import bad_file_event, quarantine_file
 from strayline.rules import AlertEvent, RuleEngine, load_rules
 from strayline.store import ScanStore
@@ -148,7 +152,9 @@ class _Scan:
     store: ScanStore
     tracker: MetricsTracker
     reopen: Callable[[bool], ScanStore]
+    after_commit: Callable[[_Scan, ScanLine], None]
     lines_written: int = 0
+    products_done: bool = False
 
 
 def zfs_rule(config: Config) -> Callable[[ScanLine], float]:
@@ -165,6 +171,10 @@ def zfs_rule(config: Config) -> Callable[[ScanLine], float]:
     else:
         return _zfs_of_line
     return lambda _line: fixed
+
+
+def _no_products(scan: _Scan, line: ScanLine) -> None:
+    """Products are turned off for this scan (``products.enabled: false``)."""
 
 
 def _zfs_of_line(line: ScanLine) -> float:
@@ -282,6 +292,7 @@ class LinePipeline:
             alerts=len(events),
             file=path.name,
         )
+        scan.after_commit(scan, line)
         return LineOutcome(
             path,
             "written",
@@ -439,6 +450,54 @@ class LinePipeline:
             events=(event,),
         )
 
+    def _products_when_complete(self, scan: _Scan, line: ScanLine) -> None:
+        """Make the scan's products once, when its last planned line is committed.
+
+        Complete means: the last planned forward line is committed and, if the scan has a
+        backward trace at all, its last planned line too (an instrument writing trace and
+        retrace finishes with the retrace of the last line). A failure is logged as an
+        error and never retried automatically (``strayline products`` remakes them).
+        """
+        if scan.products_done:
+            return
+        committed = scan.store.committed()
+        last = scan.store.n_lines_planned - 1
+        if (last, "forward") not in committed:
+            return
+        if (last, "backward") not in committed and any(d == "backward" for _, d in committed):
+            return
+        scan.products_done = True
+        section = scan.config.products
+        out_dir = products_dir(self._output_root, section.folder, scan.scan_id)
+        started = time.perf_counter()
+        try:
+            report = make_products(
+                scan.store.path,
+                standoff_m=section.standoff_m,
+                nv_theta_rad=line.nv_theta_rad,
+                nv_phi_rad=line.nv_phi_rad,
+                out_dir=out_dir,
+                alert_log=self.config.paths.alert_log,
+                images=section.images,
+            )
+        except Exception as error:  # products are a by-product: never stop the daemon
+            self._log.error(
+                "products_failed",
+                scan=scan.scan_id,
+                out_dir=str(out_dir),
+                error=f"{type(error).__name__}: {error}",
+                products_s=round(time.perf_counter() - started, 3),
+            )
+            return
+        self._log.info(
+            "products_written",
+            scan=scan.scan_id,
+            out_dir=str(out_dir),
+            paths=[str(item.path) for item in report.files],
+            skipped=[f"{item.product}: {item.reason}" for item in report.skipped],
+            products_s=round(time.perf_counter() - started, 3),
+        )
+
     def _now(self) -> datetime:
         return datetime.fromtimestamp(self._clock(), UTC)
 
@@ -507,6 +566,9 @@ class LinePipeline:
                 store=store,
                 tracker=tracker,
                 reopen=reopen,
+                after_commit=(
+                    self._products_when_complete if config.products.enabled else _no_products
+                ),
             )
         except BaseException:
             store.close()  # release the writer's lock: the next line opens it afresh

@@ -296,7 +296,7 @@ class ScanStore:
             )
         if not 0 <= compression_level <= 9:
             raise ValueError(f"compression_level must be in 0..9; found {compression_level}")
-        x_m = np.asarray(x_m, dtype=np.float64)
+        x_m = np.sort(np.asarray(x_m, dtype=np.float64))  # maps run in increasing x
         if x_m.shape != (n_pixels,):
             raise ValueError(f"x_m must have shape ({n_pixels},); found {x_m.shape}")
 
@@ -522,8 +522,11 @@ class ScanStore:
 
     def _write_rows(self, key: Key, rows: dict[str, np.ndarray], line: ScanLine) -> None:
         index, direction = key
+        # Maps are in increasing x, whatever order the pixels were acquired in (a backward
+        # trace is written in decreasing x; its x_m says where each pixel is).
+        order = np.argsort(np.asarray(line.x_m), kind="stable")
         for name in MAP_NAMES:
-            self._maps[direction][name][index, :] = rows[name]
+            self._maps[direction][name][index, :] = np.asarray(rows[name])[order]
         self._y[direction][index] = float(line.y_m)
         raw_line = self.path / "raw" / direction / str(index)
         if raw_line.exists():  # spectra of a superseded version
