@@ -76,7 +76,7 @@ def read(tmp_path: Path, scan_id: str, k: int, direction: str = "forward"):  # t
 def expected_counts(truth, direction: str = "forward") -> np.ndarray:  # type: ignore[no-untyped-def]
     """Two Lorentzian dips on the truth's baseline (the common-practice CW-ODMR model)."""
     f = truth.freq_hz
-    base = truth.map("pl_rate_cps", direction) * 1e-3  # dwell 1 ms
+    base = truth.map("pl_rate_cps", direction) * TipModel().dwell_s
     c = truth.map("contrast", direction)
     out = np.ones((*base.shape, f.size))
     for name in ("f_lo_hz", "f_hi_hz"):
@@ -253,7 +253,7 @@ def test_pl_drift_runs_on_the_instrument_clock(tmp_path: Path) -> None:
     """The true PL rate is R (1 + drift t/3600) with t counted in pixel sweeps of n_freq·dwell."""
     tip = TipModel(pl_drift_per_hour=0.5, count_rate_cps=1e5)
     record = run(small_config(tip=tip, n_lines=3, trace_retrace=True), tmp_path)
-    pixel_s = 51 * 1e-3
+    pixel_s = 51 * tip.dwell_s
     for k in range(3):
         t_fwd = (2 * k * 32 + np.arange(32) + 0.5) * pixel_s
         t_bwd = ((2 * k + 1) * 32 + np.arange(32)[::-1] + 0.5) * pixel_s
