@@ -44,6 +44,8 @@ def demo_config(folder: Path, *, settle_s: float = 0.2) -> Config:
         },
         "logging": {"console": "plain", "json_file": "output/strayline.log.jsonl"},
         "service": {"status_interval_s": 5.0},
+        # The demo tip's NV stand-off (demo_stream.TipModel), so the sheet moment is made.
+        "products": {"standoff_nm": 60.0},
     }
     return config_from_mapping(data, base_dir=folder)
 
@@ -189,6 +191,7 @@ def _read_map(group: Any, name: str) -> np.ndarray:
 def _print_summary(config: Config, truth_dir: Path) -> None:
     from demo_stream.truth import load_truth
     from strayline.alerts import read_alert_log
+    from strayline.products import products_dir
 
     store_path = config.paths.output_root / f"{_SCAN_ID}.zarr"
     events = read_alert_log(config.paths.alert_log, scan_id=_SCAN_ID)
@@ -197,6 +200,9 @@ def _print_summary(config: Config, truth_dir: Path) -> None:
     print(f"store        {store_path}")
     print(f"log          {config.logging.json_file}")
     print(f"alert log    {config.paths.alert_log}")
+    products = products_dir(config.paths.output_root, config.products.folder, _SCAN_ID)
+    if products.exists():
+        print(f"products     {products} (quick-look images, vector field, report)")
     if store_path.exists():
         group = zarr.open_group(store_path, mode="r")
         field_t = _read_map(group, "forward/field_nv_t")
