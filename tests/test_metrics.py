@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
@@ -310,3 +311,61 @@ def test_long_lines_are_searched_coarse_then_fine_without_losing_the_pixel(n: in
     seg = best_level_segment(d, 16)
     assert seg is not None
     assert (seg.start, seg.stop) == (101, 177)
+
+
+def test_rows_where_both_dips_are_nan_give_no_warning_and_count_as_no_contrast() -> None:
+    """A line whose failed fits have NaN in both dip columns is summarised without numpy's
+    "Mean of empty slice" warning (warnings are errors here), and a pixel whose fit found
+    no dip counts as contrast 0, as before."""
+    status = np.zeros(N, np.uint8)
+    status[:100] = FitStatus.NO_RESONANCE
+    line, fit, field = records(status=status)
+    contrast = np.array(fit.contrast, dtype=float)
+    fwhm = np.array(fit.fwhm_hz, dtype=float)
+    contrast[:100] = np.nan
+    fwhm[:100] = np.nan
+    fit = dataclasses.replace(fit, contrast=contrast, fwhm_hz=fwhm)
+    m = line_metrics(line, fit, field)
+    assert m.contrast_median == pytest.approx(np.median(np.r_[np.zeros(100), np.full(156, 0.12)]))
+    assert m.fwhm_median_hz == pytest.approx(8e6)
+
+
+def test_rows_kept_for_the_next_line_drop_failed_fits() -> None:
+    """Field and centre rows kept for the next line are NaN where the fit failed, so one
+    failed pixel's garbage cannot fake a roughness change on the next line."""
+    status = np.zeros(N, np.uint8)
+    status[40] = FitStatus.NOT_CONVERGED
+    field = np.full(N, 2e-3)
+    field[40] = 0.5
+    rows = line_rows(*records(field_t=field, status=status))
+    assert np.isnan(rows["field_nv_t"][40])
+    assert np.isnan(rows["center_mean_hz"][40])
+    assert np.isfinite(rows["pl_per_s"][40])
+    assert np.all(np.isfinite(np.delete(rows["field_nv_t"], 40)))
+
+
+def test_center_p10_follows_the_lowest_resonance_means() -> None:
+    """The centre-mean 10th percentile ignores pixels raised by a transverse field, which
+    only raises (f₋ + f₊)/2 by about 3(γB⊥)²/(2D) (PHYSICS.md §2, [num])."""
+    cm = np.full(N, 2.8702e9)
+    cm[::3] += 2e6  # a third of the pixels under a strong transverse field
+    m = line_metrics(*records(center_mean_hz=cm))
+    assert m.center_mean_p10_hz == pytest.approx(2.8702e9)
+    assert m.center_mean_median_hz == pytest.approx(2.8702e9)
+    cm[::2] += 2e6  # now most pixels: the median moves, the 10th percentile does not
+    m = line_metrics(*records(center_mean_hz=cm))
+    assert m.center_mean_median_hz > 2.8712e9
+    assert m.center_mean_p10_hz == pytest.approx(2.8702e9)
+
+
+def test_narrow_common_mode_shift_is_found_where_the_field_stayed_put() -> None:
+    """A 3 MHz shift of (f₋+f₊)/2 over 6 pixels with B∥ unchanged (contact strain moves D:
+    Doherty et al., PRL 112, 047601 (2014), PHYSICS.md §7) is found and placed by the
+    narrow common-mode search."""
+    prev = records(index=0, seed=1)
+    cm = np.full(N, 2.8702e9) + np.random.default_rng(2).normal(0, 10e3, N)
+    cm[100:106] += 3e6
+    now = records(index=1, center_mean_hz=cm, seed=2)
+    m = line_metrics(*now, previous_rows=line_rows(*prev))
+    assert m.center_mean_step == pytest.approx(3e6, rel=0.05)
+    assert m.center_mean_step_range == (100, 106)

@@ -31,11 +31,14 @@ from strayline.metrics import LineMetrics, MetricsTracker
 from strayline.rules import (
     AcquisitionStalledSpec,
     AlertEvent,
+    FitFailuresRisingSpec,
     FluorescenceLostSpec,
+    ResonanceJumpSpec,
     RollingBaseline,
     RuleEngine,
     RulesConfig,
     ThresholdSpec,
+    ZfsDriftSpec,
     default_rules,
     load_rules,
     rules_from_data,
@@ -211,11 +214,15 @@ def test_moving_walls_raise_nothing(speed_px: float) -> None:
 
 @pytest.mark.parametrize("speed_px", [0.5, 1.0, 1.5])
 def test_standoff_step_from_pixel_128_fires_within_two_lines(speed_px: float) -> None:
-    """A 10 nm stand-off increase from pixel 128 of line 12 onward, persisting, raises
+    """With the roughness threshold at 0.3 (a rule set for lines crossing many walls), a
+    10 nm stand-off increase from pixel 128 of line 12 onward, persisting, raises
     resonance_jump by line 13, located at pixel 128 and called a stand-off change (the field
     decays as exp(−k d): Beardsley, IEEE Trans. Magn. 25, 671 (1989); PHYSICS.md §4)."""
     scene = Scene(wall_speed_px=speed_px, faults=[tip_crash(12, 128, extra_standoff_m=10e-9)])
-    jumps = _only(run(scene), "resonance_jump")
+    # The built-in 1.0 is set for short lines over few walls, whose roughness varies
+    # that much from line to line on its own (benchmarks/alert_eval.py).
+    rules = RulesConfig(rules=[ResonanceJumpSpec(field_step_log_ratio_above=0.3)])
+    jumps = _only(run(scene, rules), "resonance_jump")
     assert [e.state for e in jumps] == ["raised"]
     ev = jumps[0]
     assert ev.line_index is not None
@@ -284,9 +291,10 @@ def test_fluorescence_lost_mid_line_fires_on_that_line_with_the_pixel() -> None:
     assert raised[0].pixel_range == (131, 256)
 
 
-def test_contrast_collapse_with_normal_pl_fires_after_two_lines() -> None:
+def test_contrast_collapse_with_normal_pl_fires_on_the_first_line() -> None:
     """Contrast at 1 % with no dips found and PL normal (microwave off) raises
-    contrast_collapsed after its two lines of persistence (PHYSICS.md §7, common practice)."""
+    contrast_collapsed on the first such line (persistence 1), and the fit failures it
+    causes raise nothing more (PHYSICS.md §7, common practice)."""
 
     def microwave_off(k: int, t: dict[str, np.ndarray]) -> None:
         if k >= 10:
@@ -295,10 +303,10 @@ def test_contrast_collapse_with_normal_pl_fires_after_two_lines() -> None:
 
     events = run(Scene(n_lines=14, faults=[microwave_off]))
     collapsed = _only(events, "contrast_collapsed")
-    assert [(e.state, e.line_index) for e in collapsed] == [("raised", 11)]
+    assert [(e.state, e.line_index) for e in collapsed] == [("raised", 10)]
     assert "while PL stayed at" in collapsed[0].message
     assert not _only(events, "fluorescence_lost")
-    assert [e.line_index for e in _only(events, "fit_failures_rising")] == [11]
+    assert not _only(events, "fit_failures_rising")
 
 
 def test_zfs_drift_reports_the_temperature_equivalent() -> None:
@@ -478,15 +486,15 @@ def test_user_threshold_rule_on_an_aux_channel() -> None:
 
 
 def test_stall_is_raised_on_a_tick_and_cleared_by_the_next_line() -> None:
-    """With lines every 60 s, a tick 200 s after the last line is quiet, one at 400 s
-    (beyond 5 × 60 s) raises one stall, a later tick adds nothing, the next line clears."""
+    """With lines every 60 s, a tick 140 s after the last line is quiet, one at 400 s
+    (beyond 2.5 × 60 s) raises one stall, a later tick adds nothing, the next line clears."""
     clock = FakeClock()
     engine = RuleEngine(RulesConfig(rules=[AcquisitionStalledSpec()]), clock=clock)
     for i in range(5):
         clock.t_s += LINE_PERIOD_S
         assert engine.evaluate_line("s1", _metrics(i)) == []
     last = clock.t_s
-    assert engine.evaluate_tick(last + 200) == []
+    assert engine.evaluate_tick(last + 140) == []
     stall = engine.evaluate_tick(last + 400)
     assert [(e.rule, e.state, e.line_index) for e in stall] == [
         ("acquisition_stalled", "raised", 4)
@@ -633,3 +641,72 @@ def test_rules_from_a_daemon_config_object() -> None:
     with pytest.raises(ConfigError) as info:
         load_rules(Cfg(rules=[{"kind": "zfs_drift", "drift_hz": 1e6}], source=Path("d.yaml")))
     assert str(info.value) == "d.yaml: rules[0].drift_hz: unknown key"
+
+
+# -- tuned behaviour: suppression, latched tip events, drift floor ------------------------
+
+
+def test_persistent_tip_crash_stays_raised_unless_clear_when_quiet() -> None:
+    """A tip crash that does not revert stays raised to the end of a 60-line scan (a
+    crashed tip does not mend itself: common practice); with clear_when_quiet it clears
+    after clear_lines quiet lines instead."""
+    scene = Scene(n_lines=60, faults=[tip_crash(12, 128, extra_standoff_m=10e-9, pl_factor=0.7)])
+    latched = _only(run(scene), "resonance_jump")
+    assert [e.state for e in latched] == ["raised"]
+    quiet = RulesConfig(rules=[ResonanceJumpSpec(clear_when_quiet=True, clear_lines=20)])
+    cleared = _only(run(scene, quiet), "resonance_jump")
+    assert [(e.state, e.line_index) for e in cleared] == [("raised", 13), ("cleared", 33)]
+
+
+def test_suppressed_by_must_name_rules_of_the_set_when_given() -> None:
+    """A hand-written suppressed_by naming an unknown rule, or the rule itself, is refused
+    with the key path and the name found; the built-in defaults may name absent rules."""
+    with pytest.raises(ConfigError) as info:
+        rules_from_data([{"kind": "zfs_drift", "suppressed_by": ["resonance_jmup"]}])
+    assert str(info.value) == (
+        "<root>: rule 'zfs_drift': suppressed_by must name rules of this set; "
+        "found 'resonance_jmup'"
+    )
+    with pytest.raises(ConfigError, match="found itself"):
+        rules_from_data([{"kind": "zfs_drift", "suppressed_by": ["zfs_drift"]}])
+    alone = rules_from_data([{"kind": "zfs_drift"}])
+    assert alone.rules[0].suppressed_by == (
+        "resonance_jump",
+        "fluorescence_lost",
+        "contrast_collapsed",
+    )
+
+
+def test_a_rule_explained_by_another_is_not_raised() -> None:
+    """While fluorescence_lost holds, the fit failures it causes raise nothing; without the
+    suppression they would (one fault, one alert: DESIGN.md, rules and alerts)."""
+
+    def lost(k: int, t: dict[str, np.ndarray]) -> None:
+        if k >= 10:
+            t["pl_per_s"][:] *= 0.05
+            t["status"][:] = FitStatus.NO_RESONANCE
+
+    scene = Scene(n_lines=16, faults=[lost])
+    both = RulesConfig(rules=[FluorescenceLostSpec(), FitFailuresRisingSpec()])
+    assert [e.rule for e in run(scene, both)] == ["fluorescence_lost"]
+    loose = RulesConfig(rules=[FluorescenceLostSpec(), FitFailuresRisingSpec(suppressed_by=())])
+    assert sorted({e.rule for e in run(scene, loose)}) == [
+        "fit_failures_rising",
+        "fluorescence_lost",
+    ]
+
+
+def test_zfs_drift_threshold_rises_with_what_the_sample_does_to_it() -> None:
+    """A 0.5 MHz common-mode drift raises zfs_drift on a calm scan, but not when the
+    statistic already scatters by 0.2 MHz over the anchor lines (5 × 0.2 MHz > 0.5 MHz)."""
+
+    def drift(k: int, t: dict[str, np.ndarray]) -> None:
+        if k >= 14:
+            t["center_shift_hz"][:] += 0.5e6
+
+    def scatter(k: int, t: dict[str, np.ndarray]) -> None:
+        t["center_shift_hz"][:] += 0.2e6 * (1 if k % 2 else -1) if k < 12 else 0.0
+
+    rules = RulesConfig(rules=[ZfsDriftSpec()])
+    assert [e.state for e in run(Scene(n_lines=20, faults=[drift]), rules)] == ["raised"]
+    assert run(Scene(n_lines=20, faults=[scatter, drift]), rules) == []

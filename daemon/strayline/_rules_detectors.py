@@ -38,6 +38,8 @@ class BaselineView(Protocol):
 
     def anchor(self, name: str) -> float | None: ...
 
+    def anchor_stats(self, name: str) -> tuple[float, float] | None: ...
+
 
 @dataclass(frozen=True)
 class Observation:
@@ -156,31 +158,38 @@ def _fit_failures_rising(spec: FitFailuresRisingSpec) -> Detector:
 
 
 def _zfs_drift(spec: ZfsDriftSpec) -> Detector:
+    metric = "center_mean_p10_hz"
+    factor = spec.anchor_spread_factor
+
     def detect(m: LineMetrics, base: BaselineView, memo: dict[str, Any]) -> Observation | None:
-        ref = base.anchor("center_mean_median_hz")
-        v = m.center_mean_median_hz
-        if ref is None or not math.isfinite(v):
+        anchor = base.anchor_stats(metric)
+        v = m.center_mean_p10_hz
+        if anchor is None or not math.isfinite(v):
             return None
-        st = base.stats("center_mean_median_hz")
-        spread = st[1] if st is not None else None
+        ref, anchor_spread = anchor
         delta = v - ref
         kelvin = delta / DZFS_DT_HZ_PER_K
+        # What the sample itself does to the statistic (scaled) sets a floor under both
+        # thresholds, keeping their ratio.
+        raise_hz = max(spec.drift_hz_above, factor * anchor_spread)
+        clear_hz = raise_hz * spec.drift_hz_clear_below / spec.drift_hz_above
         return Observation(
-            raise_cond=abs(delta) > spec.drift_hz_above,
-            clear_cond=abs(delta) < spec.drift_hz_clear_below,
+            raise_cond=abs(delta) > raise_hz,
+            clear_cond=abs(delta) < clear_hz,
             seen_value=delta,
             seen_unit="Hz",
             baseline_value=ref,
-            baseline_spread=spread,
-            confidence_z=None if spread is None else _z(v, ref, spread, 1e3),
+            baseline_spread=anchor_spread,
+            confidence_z=_z(v, ref, anchor_spread, 1e3),
             message=(
-                f"the mean of the two resonances moved by {delta / 1e6:+.2f} MHz since the "
-                f"scan's first lines (≈ {kelvin:+.1f} K if it is temperature, at "
-                "−74.2 kHz/K; strain and the transverse field move it too)"
+                f"the mean of the two resonances (10th percentile over the line) moved by "
+                f"{delta / 1e6:+.2f} MHz since the scan's first lines (≈ {kelvin:+.1f} K if "
+                "it is temperature, at −74.2 kHz/K; strain and the transverse field move it "
+                "too)"
             ),
             clear_message=(
-                f"the mean of the two resonances is back within {abs(delta) / 1e6:.2f} MHz "
-                "of the scan's first lines"
+                f"the mean of the two resonances (10th percentile over the line) is back "
+                f"within {abs(delta) / 1e6:.2f} MHz of the scan's first lines"
             ),
         )
 
@@ -266,7 +275,12 @@ def _flagged(spec: ResonanceJumpSpec, m: LineMetrics, base: BaselineView) -> dic
             continue
         thr = thresholds[ch]
         z = _z(v, st[0], st[1], 0.1 * thr)
-        if abs(v) >= thr and abs(z) >= spec.z_above:
+        if ch == "center_mean":
+            score = float(m.center_mean_step_score)
+            steps = abs(v) >= thr and score >= spec.center_mean_step_t_above
+        else:
+            steps = abs(v) >= thr and abs(z) >= spec.z_above
+        if steps:
             out[ch] = {
                 "value": v,
                 "range": [int(rng[0]), int(rng[1])],
@@ -283,13 +297,17 @@ def _overlap(a: list[int], b: list[int]) -> bool:
     return a[0] < b[1] and b[0] < a[1]
 
 
-def _reverts(pending: Mapping[str, Any], flagged: Mapping[str, Any]) -> bool:
-    """A step of opposite sign, in a channel that stepped before, over the same pixels."""
-    for ch, cand in flagged.items():
-        old = pending["channels"].get(ch)
-        if old is None:
+def _reverts(pending: Mapping[str, Any], m: LineMetrics) -> bool:
+    """A step of opposite sign and at least half the size, in a channel that stepped
+    before, over the same pixels (the way back needs no threshold of its own: it is
+    looked for only where a step was seen)."""
+    for ch, old in pending["channels"].items():
+        v = float(getattr(m, f"{ch}_step"))
+        rng = getattr(m, f"{ch}_step_range")
+        if not math.isfinite(v) or rng is None:
             continue
-        if cand["value"] * old["value"] < 0 and _overlap(cand["range"], old["range"]):
+        back = v * old["value"] < 0 and abs(v) >= 0.5 * abs(old["value"])
+        if back and _overlap([int(rng[0]), int(rng[1])], old["range"]):
             return True
     return False
 
@@ -316,12 +334,14 @@ def _jump_verdict(
 
 
 def _resonance_jump(spec: ResonanceJumpSpec) -> Detector:
+    clear_when_quiet = spec.clear_when_quiet
+
     def detect(m: LineMetrics, base: BaselineView, memo: dict[str, Any]) -> Observation | None:
         flagged = _flagged(spec, m, base)
         pending = memo.get("pending")
         raised = memo.get("raised")
         if raised is not None:  # the engine has raised: look for recovery or more steps
-            if flagged and _reverts(raised, flagged):
+            if _reverts(raised, m):
                 msg = (
                     f"the step from line {raised['line']} reverted at line {m.line_index}: "
                     "transient, consistent with the sample being touched"
@@ -355,7 +375,7 @@ def _resonance_jump(spec: ResonanceJumpSpec) -> Detector:
                 raised,
                 m,
                 raise_cond=False,
-                clear_cond=quiet,
+                clear_cond=quiet and clear_when_quiet,
                 clear_now=False,
                 text=msg,
                 clear_message=msg,
@@ -376,7 +396,7 @@ def _resonance_jump(spec: ResonanceJumpSpec) -> Detector:
                 clear_now=False,
                 text=pending["verdict"],
             )
-        reverted_at = m.line_index if flagged and _reverts(pending, flagged) else None
+        reverted_at = m.line_index if _reverts(pending, m) else None
         pending["verdict"] = _jump_verdict(spec, pending, reverted_at)
         pending["reverted_at"] = reverted_at
         return _jump_obs(

@@ -2,8 +2,12 @@
 
 Every rule has a name, a kind, a severity, a persistence (lines in a row with the raise
 condition before it fires) and a hysteresis (separate clear thresholds, and lines in a row
-with the clear condition before it clears). Thresholds are relative to the rolling baseline
-of the scan's previous good lines unless the name says otherwise; units are in the names.
+with the clear condition before it clears). ``suppressed_by`` names the rules that
+*explain* this one: while one of them holds (its raise condition on the line, or it is
+active) this rule is not raised, so one fault gives one alert (lost fluorescence also
+fails every fit and steps the PL, but only ``fluorescence_lost`` speaks). Thresholds are
+relative to the rolling baseline of the scan's previous good lines unless the name says
+otherwise; units are in the names.
 """
 
 from __future__ import annotations
@@ -48,6 +52,7 @@ class RuleSpec(_Model):
     enabled: bool = True
     persistence_lines: int = Field(default=1, ge=1, le=1000)
     clear_lines: int = Field(default=3, ge=1, le=10000)
+    suppressed_by: tuple[str, ...] = ()
     advice: str = ""
 
 
@@ -83,8 +88,9 @@ class ContrastCollapsedSpec(RuleSpec):
     name: str = Field(default="contrast_collapsed", pattern=r"^[a-z][a-z0-9_]*$")
     kind: Literal["contrast_collapsed"] = "contrast_collapsed"
     severity: Severity = "warning"
-    persistence_lines: int = Field(default=2, ge=1, le=1000)
+    persistence_lines: int = Field(default=1, ge=1, le=1000)
     clear_lines: int = Field(default=2, ge=1, le=10000)
+    suppressed_by: tuple[str, ...] = ("fluorescence_lost",)
     contrast_fraction_below: float = Field(default=0.5, gt=0.0, lt=1.0)
     contrast_fraction_clear_above: float = Field(default=0.75, gt=0.0, le=2.0)
     pl_fraction_normal_above: float = Field(default=0.8, gt=0.0, le=2.0)
@@ -108,10 +114,18 @@ class ResonanceJumpSpec(RuleSpec):
     """A step against the previous line over a pixel range, confirmed on the next line.
 
     A channel steps when its value passes the absolute threshold AND its robust z against
-    the baseline of clean lines passes ``z_above``. Verdicts: PL fell by at least
+    the baseline of clean lines passes ``z_above``; the common-mode channel, whose
+    narrow steps (a touch over a few pixels) are noisy line to line, instead needs its
+    search statistic (a two-sample t against the rest of the line, with the line's own
+    pixel noise) above ``center_mean_step_t_above``. Verdicts: PL fell by at least
     ``pl_drop_fraction_for_crash`` → tip crash suspected; the step reverted on a later
     line → sample touched (transient); a common-mode shift alone → contact (strain or
     heating); a roughness change alone → stand-off change.
+
+    A step that has not reverted stays raised until the scan ends (a crashed tip does not
+    mend itself, and the map after it is not comparable with the map before);
+    ``clear_when_quiet: true`` clears it instead after ``clear_lines`` lines without a
+    new step.
     """
 
     name: str = Field(default="resonance_jump", pattern=r"^[a-z][a-z0-9_]*$")
@@ -119,9 +133,12 @@ class ResonanceJumpSpec(RuleSpec):
     severity: Severity = "critical"
     persistence_lines: int = Field(default=2, ge=1, le=1000)
     clear_lines: int = Field(default=20, ge=1, le=10000)
-    field_step_log_ratio_above: float = Field(default=0.3, gt=0.0)
+    clear_when_quiet: bool = False
+    suppressed_by: tuple[str, ...] = ("fluorescence_lost", "contrast_collapsed")
+    field_step_log_ratio_above: float = Field(default=1.0, gt=0.0)
     pl_step_fraction_above: float = Field(default=0.1, gt=0.0, lt=1.0)
     center_mean_step_hz_above: float = Field(default=1.0e6, gt=0.0)
+    center_mean_step_t_above: float = Field(default=8.0, gt=0.0)
     z_above: float = Field(default=5.0, gt=0.0)
     pl_drop_fraction_for_crash: float = Field(default=0.1, gt=0.0, lt=1.0)
     advice: str = (
@@ -138,6 +155,7 @@ class FitFailuresRisingSpec(RuleSpec):
     severity: Severity = "warning"
     persistence_lines: int = Field(default=2, ge=1, le=1000)
     clear_lines: int = Field(default=3, ge=1, le=10000)
+    suppressed_by: tuple[str, ...] = ("fluorescence_lost", "contrast_collapsed")
     failure_fraction_above: float = Field(default=0.2, ge=0.0, le=1.0)
     rise_fraction_above: float = Field(default=0.15, ge=0.0, le=1.0)
     rise_fraction_clear_below: float = Field(default=0.05, ge=0.0, le=1.0)
@@ -153,7 +171,7 @@ class AcquisitionStalledSpec(RuleSpec):
     name: str = Field(default="acquisition_stalled", pattern=r"^[a-z][a-z0-9_]*$")
     kind: Literal["acquisition_stalled"] = "acquisition_stalled"
     severity: Severity = "warning"
-    interval_factor: float = Field(default=5.0, gt=1.0)
+    interval_factor: float = Field(default=2.5, gt=1.0)
     min_stall_s: float = Field(default=60.0, ge=0.0)
     fallback_interval_s: float | None = Field(default=None, gt=0.0)
     advice: str = (
@@ -163,10 +181,15 @@ class AcquisitionStalledSpec(RuleSpec):
 
 
 class ZfsDriftSpec(RuleSpec):
-    """Line median of (f₋ + f₊)/2 drifting from the scan's first good lines.
+    """Low percentile of (f₋ + f₊)/2 drifting from the scan's first good lines.
 
-    dD/dT = −74.2(7) kHz/K near room temperature (Acosta et al., PRL 104, 070801 (2010)),
-    so the default 0.37 MHz is about 5 K.
+    The line's 10th percentile of (f₋ + f₊)/2 (``center_mean_p10_hz``) is used because a
+    field transverse to the NV axis only raises the mean of the two resonances, by about
+    3(γB⊥)²/(2D) (PHYSICS.md §2), so the lowest values track D. The drift must pass both
+    ``drift_hz_above`` and ``anchor_spread_factor`` times the spread (1.4826·MAD) of the
+    statistic over the anchor lines (what the sample itself does to it). dD/dT =
+    −74.2(7) kHz/K near room temperature (Acosta et al., PRL 104, 070801 (2010)), so the
+    default 0.37 MHz is about 5 K.
     """
 
     name: str = Field(default="zfs_drift", pattern=r"^[a-z][a-z0-9_]*$")
@@ -176,6 +199,12 @@ class ZfsDriftSpec(RuleSpec):
     clear_lines: int = Field(default=3, ge=1, le=10000)
     drift_hz_above: float = Field(default=0.37e6, gt=0.0)
     drift_hz_clear_below: float = Field(default=0.22e6, gt=0.0)
+    anchor_spread_factor: float = Field(default=5.0, ge=0.0)
+    suppressed_by: tuple[str, ...] = (
+        "resonance_jump",
+        "fluorescence_lost",
+        "contrast_collapsed",
+    )
     advice: str = (
         "check the temperature (laser heating, room, cryostat) and the microwave power; "
         "a D drift shifts both resonances together and biases |B| and the angle"
@@ -287,4 +316,18 @@ class RulesConfig(_Model):
             if rule.name in seen:
                 raise ValueError(f"rule names must be unique; found {rule.name!r} twice")
             seen.add(rule.name)
+        for rule in self.rules:
+            if rule.name in rule.suppressed_by:
+                raise ValueError(
+                    f"rule {rule.name!r}: suppressed_by must name other rules; found itself"
+                )
+            # A name given by hand must exist (a typo would silently suppress nothing);
+            # the built-in defaults may name rules a trimmed rule set leaves out.
+            if "suppressed_by" in rule.model_fields_set:
+                unknown = [n for n in rule.suppressed_by if n not in seen]
+                if unknown:
+                    raise ValueError(
+                        f"rule {rule.name!r}: suppressed_by must name rules of this set; "
+                        f"found {', '.join(map(repr, unknown))}"
+                    )
         return self

@@ -190,7 +190,10 @@ def best_level_segment(change: np.ndarray, min_pixels: int) -> Segment | None:
 
 
 def best_energy_segment(
-    energy_now: np.ndarray, energy_prev: np.ndarray, min_pixels: int
+    energy_now: np.ndarray,
+    energy_prev: np.ndarray,
+    min_pixels: int,
+    noise_energy: float = 0.0,
 ) -> Segment | None:
     """Segment whose energy ratio (now / previous) differs most from the rest of the line.
 
@@ -201,12 +204,17 @@ def best_energy_segment(
         missing in either line is dropped from both).
     min_pixels : int
         Smallest segment (and smallest remainder) considered.
+    noise_energy : float
+        Mean energy per pixel that noise alone gives (same unit as the energies); the
+        regulariser is at least ``min_pixels`` times it, so a line whose roughness is
+        mostly noise (a µT-level sample) cannot give large ratios.
 
     Returns
     -------
     Segment or None
         ``value`` is ``ln(ΣE_now / ΣE_prev)`` over the changed part, each sum regularised
-        by ``min_pixels`` times the line's mean previous energy per pixel. None when the
+        by ``min_pixels`` times the larger of the line's mean previous energy per pixel
+        and ``noise_energy``. None when the
         previous line has no energy at all.
     """
     n = energy_now.shape[0]
@@ -215,7 +223,7 @@ def best_energy_segment(
         return None
     en = np.where(ok, energy_now, 0.0)
     ep = np.where(ok, energy_prev, 0.0)
-    eps = float(np.mean(ep[ok])) * min_pixels
+    eps = max(float(np.mean(ep[ok])), float(noise_energy)) * min_pixels
     if not eps > 0:
         return None
     cn = np.concatenate([[0.0], np.cumsum(en)])

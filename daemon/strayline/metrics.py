@@ -85,11 +85,26 @@ class MetricsOptions:
     change_sigma : float
         A pixel's field change counts as significant above this many 1σ of the difference.
     min_step_pixels : int
-        Smallest pixel range (and remainder of the line) the step search considers.
+        Smallest pixel range (and remainder of the line) the field-roughness step search
+        considers (a roughness sum needs many pixels to be stable).
+        Also the smallest range of the PL step search.
+    min_level_pixels : int
+        Smallest pixel range (and remainder) the centre-mean step search considers: a
+        touch of the sample can shift the resonances over only a few pixels.
+    common_mode_field_sigma, common_mode_field_change_t : float
+        The centre-mean step search looks only at pixels whose field along the NV axis
+        changed by at most this many 1σ of the difference or this many tesla, whichever is
+        larger (a common-mode shift leaves B∥ alone; a moving wall does not). Estimate:
+        a 1 MHz shift of (f₋+f₊)/2 from B⊥ alone takes ΔB⊥ ≈ 0.4 mT at B⊥ = 3 mT
+        (from 3γ²B⊥ΔB⊥/D, PHYSICS.md §2), which comes with B∥ changes of the same order,
+        well above 20 µT.
     """
 
     change_sigma: float = 5.0
     min_step_pixels: int = 16
+    min_level_pixels: int = 4
+    common_mode_field_sigma: float = 2.0
+    common_mode_field_change_t: float = 20e-6
 
 
 @dataclass(frozen=True)
@@ -103,7 +118,11 @@ class LineMetrics:
     fitted baseline / dwell, counts/s), ``contrast_median`` (fraction; pixels whose fit
     found no dip count as 0), ``fwhm_median_hz``, ``fit_failure_fraction`` (status != OK),
     ``field_median_t`` and ``field_spread_t`` (1.4826·MAD), ``center_mean_median_hz``
-    ((f₋+f₊)/2), ``chi2_red_median``, ``field_sigma_median_t`` (fit-reported 1σ).
+    ((f₋+f₊)/2), ``chi2_red_median``, ``field_sigma_median_t`` (fit-reported 1σ),
+    ``center_mean_p10_hz`` (10th percentile of (f₋+f₊)/2 over the line's good fits: a
+    field transverse to the NV axis only raises (f₋+f₊)/2, by about 3(γB⊥)²/(2D) [num,
+    PHYSICS.md §2], so the lowest centres of a line track D with the least bias from the
+    sample's field).
 
     Against the previous line of the same direction, at the same pixel:
     ``field_change_median_t`` (median |ΔB|), ``field_change_fraction`` (fraction of pixels
@@ -140,6 +159,7 @@ class LineMetrics:
     center_mean_median_hz: float
     chi2_red_median: float
     field_sigma_median_t: float
+    center_mean_p10_hz: float = float("nan")
     time_since_previous_s: float = float("nan")
     field_change_median_t: float = float("nan")
     field_change_fraction: float = float("nan")
@@ -206,15 +226,19 @@ def line_rows(line: ScanLine, fit: LineFit, field_: LineField) -> dict[str, np.n
     dict
         Keys :data:`ROW_KEYS`, each an ndarray of shape (n_pixels,): ``field_nv_t`` and
         ``field_nv_sigma_t`` (T), ``pl_per_s`` and ``pl_sigma_per_s`` (counts/s),
-        ``center_mean_hz`` and ``center_mean_sigma_hz`` (Hz), ``x_m`` (m).
+        ``center_mean_hz`` and ``center_mean_sigma_hz`` (Hz), ``x_m`` (m). Field and
+        centre rows are NaN where the fit status is not OK: a failed fit's resonances
+        are not a measurement, and one such pixel would otherwise dominate the next
+        line's roughness comparison.
     """
     dwell_s = float(line.dwell_s)
+    ok = np.asarray(fit.status) == FitStatus.OK
     return {
-        "field_nv_t": np.asarray(field_.field_nv_t, dtype=float).copy(),
+        "field_nv_t": np.where(ok, np.asarray(field_.field_nv_t, dtype=float), np.nan),
         "field_nv_sigma_t": np.asarray(field_.field_nv_sigma_t, dtype=float).copy(),
         "pl_per_s": np.asarray(fit.baseline, dtype=float) / dwell_s,
         "pl_sigma_per_s": np.asarray(fit.baseline_sigma, dtype=float) / dwell_s,
-        "center_mean_hz": np.asarray(field_.center_mean_hz, dtype=float).copy(),
+        "center_mean_hz": np.where(ok, np.asarray(field_.center_mean_hz, dtype=float), np.nan),
         "center_mean_sigma_hz": np.asarray(field_.center_mean_sigma_hz, dtype=float).copy(),
         "x_m": np.asarray(line.x_m, dtype=float).copy(),
     }
@@ -228,6 +252,23 @@ def _nanmedian(a: np.ndarray) -> float:
 def _nanpercentile(a: np.ndarray, q: float) -> float:
     a = a[np.isfinite(a)]
     return float(np.percentile(a, q)) if a.size else float("nan")
+
+
+def _row_mean(a: np.ndarray) -> np.ndarray:
+    """Mean of the finite values of each row, NaN for a row with none, shape (n_rows,).
+
+    The same numbers as ``np.nanmean(a, axis=1)`` (sum of the finite values over their
+    count) without its "Mean of empty slice" warning on rows where every value is NaN
+    (e.g. both dips of a failed fit). A 1-D input is one value per row already.
+    """
+    a = np.asarray(a, dtype=float)
+    if a.ndim == 1:
+        return np.where(np.isfinite(a), a, np.nan)
+    ok = np.isfinite(a)
+    count = ok.sum(axis=1)
+    total = np.where(ok, a, 0.0).sum(axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(count > 0, total / np.maximum(count, 1), np.nan)
 
 
 def _spread(a: np.ndarray) -> float:
@@ -322,10 +363,27 @@ def _change_fields(
     pl_range = out.get("pl_step_range")
     if isinstance(pl_range, tuple):
         out["pl_step_level_per_s"] = _nanmedian(rows["pl_per_s"][pl_range[0] : pl_range[1]])
-    out.update(_step_fields("center_mean", best_level_segment(d_cm[order], k), order, n))
+    # Two searches of the common-mode shift: over ranges of min_step_pixels or more, on
+    # every pixel; and over ranges down to min_level_pixels (a touch can be that narrow)
+    # on the pixels whose field along the NV axis stayed put — strain or heat from a
+    # touch moves D, i.e. (f₋+f₊)/2, and leaves f₊ − f₋ (B∥) alone, while a wall that
+    # moves changes B⊥ *and* B∥, so its pixels drop out (PHYSICS.md §2, §7). The
+    # stronger of the two is reported.
+    with np.errstate(invalid="ignore"):
+        still = np.abs(db) <= np.maximum(
+            options.common_mode_field_sigma * sigma_d, options.common_mode_field_change_t
+        )
+    cm_seg = best_level_segment(d_cm[order], k)
+    narrow = best_level_segment(np.where(still, d_cm, np.nan)[order], options.min_level_pixels)
+    if narrow is not None and (cm_seg is None or narrow.score > cm_seg.score):
+        cm_seg = narrow
+    out.update(_step_fields("center_mean", cm_seg, order, n))
     e_now = _roughness(b[order], rows["field_nv_sigma_t"][order])
     e_prev = _roughness(bp[order], prev["field_nv_sigma_t"][order])
-    out.update(_step_fields("field", best_energy_segment(e_now, e_prev, k), order, n))
+    # What noise alone puts into one pixel's roughness term: 2σ² of the line (T²).
+    noise = 2.0 * _nanmedian(prev["field_nv_sigma_t"]) ** 2
+    noise = noise if np.isfinite(noise) else 0.0
+    out.update(_step_fields("field", best_energy_segment(e_now, e_prev, k, noise), order, n))
     return out
 
 
@@ -362,9 +420,10 @@ def line_metrics(
     status = np.asarray(fit.status)
     ok = status == FitStatus.OK
     pl = rows["pl_per_s"]
-    contrast = np.nanmean(np.where(np.isfinite(fit.contrast), fit.contrast, np.nan), axis=1)
+    contrast = _row_mean(fit.contrast)
     contrast = np.where(status == FitStatus.NO_RESONANCE, 0.0, contrast)
-    fwhm = np.nanmean(np.where(np.isfinite(fit.fwhm_hz), fit.fwhm_hz, np.nan), axis=1)
+    fwhm = _row_mean(fit.fwhm_hz)
+    center_ok = np.where(ok, rows["center_mean_hz"], np.nan)
     b = np.where(ok, rows["field_nv_t"], np.nan)
     end_time_s = line.end_time.timestamp()
     values: dict[str, object] = {
@@ -381,7 +440,8 @@ def line_metrics(
         "fit_failure_fraction": float(np.mean(~ok)) if ok.size else float("nan"),
         "field_median_t": _nanmedian(b),
         "field_spread_t": _spread(b),
-        "center_mean_median_hz": _nanmedian(np.where(ok, rows["center_mean_hz"], np.nan)),
+        "center_mean_median_hz": _nanmedian(center_ok),
+        "center_mean_p10_hz": _nanpercentile(center_ok, 10.0),
         "chi2_red_median": _nanmedian(np.where(ok, fit.chi2_red, np.nan)),
         "field_sigma_median_t": _nanmedian(np.where(ok, rows["field_nv_sigma_t"], np.nan)),
         "aux_stats": MappingProxyType(_aux_stats(line)),
@@ -390,10 +450,7 @@ def line_metrics(
     if previous is not None:
         values["time_since_previous_s"] = end_time_s - previous.end_time_s
     if previous_rows is not None:
-        masked = dict(rows)
-        for key in ("field_nv_t", "center_mean_hz"):
-            masked[key] = np.where(ok, rows[key], np.nan)
-        values.update(_change_fields(masked, previous_rows, line.direction, opts))
+        values.update(_change_fields(rows, previous_rows, line.direction, opts))
     return LineMetrics(**values)  # type: ignore[arg-type]
 
 

@@ -22,7 +22,7 @@ import os
 import time
 from collections import deque
 from collections.abc import Callable, Iterable, Mapping
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, replace
 from datetime import UTC, datetime
 from os import PathLike
 from pathlib import Path
@@ -230,6 +230,15 @@ class RollingBaseline:
         if a.size < self.anchor_lines:
             return None
         return float(np.median(a))
+
+    def anchor_stats(self, name: str) -> tuple[float, float] | None:
+        """(median, 1.4826·MAD) of the first ``anchor_lines`` good values, once complete."""
+        a = np.asarray(self._anchor.get(name, []), dtype=float)
+        a = a[np.isfinite(a)]
+        if a.size < self.anchor_lines:
+            return None
+        med = float(np.median(a))
+        return med, float(_MAD_TO_SIGMA * np.median(np.abs(a - med)))
 
     def state_dict(self) -> dict[str, Any]:
         """JSON-serialisable state (NaN stored as None)."""
@@ -468,15 +477,27 @@ class RuleEngine:
         scan = self._scan(scan_id)
         if scan.last_arrival_s is not None:
             events += self._clear_stalls(scan_id, scan, now_s, f"line {metrics.line_index} arrived")
-        any_raise_cond = False
+        observed: dict[str, Observation] = {}
         for name, detect in self._detectors.items():
-            spec, st = self._specs[name], scan.rules[name]
+            st = scan.rules[name]
             memo = st.memo if st.memo is not None else {}
             st.memo = memo
             obs = detect(metrics, scan.baseline, memo)
-            if obs is None:
-                continue
-            any_raise_cond |= obs.raise_cond
+            if obs is not None:
+                observed[name] = obs
+        any_raise_cond = any(obs.raise_cond for obs in observed.values())
+        # A rule explained by another (its suppressed_by) is not raised while that one
+        # holds: raise condition on this line, or already active. Judged on the states
+        # before this line, so the order of the rules does not matter.
+        holding = {
+            name
+            for name, st in scan.rules.items()
+            if st.active or (name in observed and observed[name].raise_cond)
+        }
+        for name, seen in observed.items():
+            spec, st = self._specs[name], scan.rules[name]
+            explained = holding.intersection(spec.suppressed_by)
+            obs = replace(seen, raise_cond=False) if explained and not st.active else seen
             ev = self._step(scan_id, spec, st, obs, m=metrics, now_s=now_s)
             if ev is not None:
                 events.append(ev)
@@ -749,7 +770,8 @@ def rules_from_data(
             problem = "unknown key"
         elif first["type"] == "union_tag_invalid":
             problem = f"kind must be one of {', '.join(RULE_KINDS)}; found {first['input']!r}"
-        elif "input" in first and first["type"] not in ("missing",):
+        elif "input" in first and first["type"] not in ("missing",) and first["loc"]:
+            # (a whole-set check at the root names what it found in its own message)
             problem += f"; found {first['input']!r}"
         if len(errors) > 1:
             problem += f" (and {len(errors) - 1} more problem(s))"

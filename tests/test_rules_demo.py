@@ -1,0 +1,233 @@
+"""End-to-end rule tests: demo scans with one fault each, through the real pipeline.
+
+Each test writes a small scan with the demo instrument (:mod:`demo_stream`) at pace 0 and
+runs :func:`strayline.service.process_folder` over it (validate, fit, field, store,
+metrics, rules, alerts: the daemon's own per-line path), then reads the alert log. These
+complement the unit tests of ``test_rules.py``, which feed synthetic records to the
+engine. The faults' signatures are those of PHYSICS.md §7 (common practice).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from datetime import UTC, datetime, timedelta
+from pathlib import Path
+
+import pytest
+
+import demo_stream as ds
+from strayline.alerts import AlertEvent, AlertSink, read_alert_log
+from strayline.config import Config, config_from_mapping
+from strayline.lines import read_line_file, write_line_file
+from strayline.pipeline import LinePipeline
+from strayline.service import process_folder
+
+SCAN = "rules-demo"
+N_LINES = 20
+N_PIXELS = 48
+
+
+def _config(folder: Path) -> Config:
+    return config_from_mapping(
+        {
+            "paths": {"watch_root": "incoming", "output_root": "output"},
+            "alerts": {"console": False},
+            "logging": {"console": "off"},
+        },
+        base_dir=folder,
+    )
+
+
+def _demo(
+    *faults: str, scene: ds.Scene | None = None, pixel_m: float = 30e-9, seed: int = 5
+) -> ds.DemoConfig:
+    return ds.DemoConfig(
+        scene=scene if scene is not None else ds.labyrinth(),
+        n_lines=N_LINES,
+        n_pixels=N_PIXELS,
+        pixel_m=pixel_m,
+        faults=tuple(ds.parse_fault(f) for f in faults),
+        seed=seed,
+        scan_id=SCAN,
+    )
+
+
+def _events(folder: Path, demo: ds.DemoConfig) -> list[AlertEvent]:
+    """Write ``demo`` into ``folder/incoming``, process it once, return its alert events."""
+    ds.run_scan(demo, folder / "incoming", folder / "truth", sleep=lambda _s: None)
+    config = _config(folder)
+    process_folder(config, folder / "incoming")
+    return read_alert_log(config.paths.alert_log)
+
+
+def _summary(events: list[AlertEvent]) -> list[tuple[str, str, int | None]]:
+    return [(e.rule, e.state, e.line_index) for e in events]
+
+
+def test_lost_fluorescence_raises_one_alert_on_its_line_and_nothing_else(
+    tmp_path: Path,
+) -> None:
+    """PL falling to 5 % from pixel 20 of line 12 on (NV lost; PHYSICS.md §7, rule of thumb
+    below 50–70 % of a running median) raises fluorescence_lost on line 12, once, and the
+    fit failures and PL step it causes raise nothing more."""
+    events = _events(tmp_path, _demo("fluorescence_lost@12:20"))
+    assert _summary(events) == [("fluorescence_lost", "raised", 12)]
+    assert "from pixel 20 on" in events[0].message
+
+
+def test_collapsed_contrast_raises_within_two_lines_and_clears_once(tmp_path: Path) -> None:
+    """Microwave off (no ODMR dips, PL normal; PHYSICS.md §7, common practice) from pixel 30
+    of line 11 to the end of line 14, over a stripe with sharp edges, raises
+    contrast_collapsed within two lines of its start and clears it once after it ends,
+    with no other rule raised."""
+    # Over the stripe's sharp edges: the labyrinth's common-mode false alarms are the
+    # benchmark's business (benchmarks/alert_eval.py), not this test's.
+    scene = ds.calibration_stripe(width_m=1e-6)
+    events = _events(tmp_path, _demo("contrast_collapsed@11:30-14", scene=scene))
+    rules = {e.rule for e in events}
+    assert rules == {"contrast_collapsed"}, _summary(events)
+    (raised,) = [e for e in events if e.state == "raised"]
+    (cleared,) = [e for e in events if e.state == "cleared"]
+    assert raised.line_index is not None
+    assert 11 <= raised.line_index <= 13
+    assert cleared.line_index is not None
+    assert cleared.line_index > 14
+    assert "while PL stayed at" in raised.message
+
+
+def test_tip_crash_is_raised_as_a_tip_crash_within_two_lines_and_stays_raised(
+    tmp_path: Path,
+) -> None:
+    """A tip crash (stand-off +20 nm and PL down to 70 % from pixel 10 of line 9 on;
+    PHYSICS.md §7: a step along the slow axis that persists, common practice) raises
+    resonance_jump once within two lines, calls it a tip crash, places it at pixel 10, and
+    it is not cleared while the crash persists."""
+    events = _events(tmp_path, _demo("tip_crash@9:10"))
+    assert [(e.rule, e.state) for e in events] == [("resonance_jump", "raised")]
+    (raised,) = events
+    assert raised.line_index is not None
+    assert 9 <= raised.line_index <= 11
+    assert raised.message.startswith("tip crash suspected")
+    # The PL step search places the start within a few pixels (noise, 16-pixel minimum).
+    assert raised.pixel_range is not None
+    assert abs(raised.pixel_range[0] - 10) <= 4
+
+
+def test_touched_sample_is_raised_within_two_lines_and_cleared_when_it_reverts(
+    tmp_path: Path,
+) -> None:
+    """Contact strain shifting D by 6 MHz over pixels 20–31 of lines 10–11 (Doherty et al.,
+    PRL 112, 047601 (2014), via PHYSICS.md §7) raises resonance_jump within two lines and
+    clears it once the shift is gone. (Narrower or weaker touches sit near the noise of a
+    single line: see benchmarks/alert_eval.py.)"""
+    events = _events(tmp_path, _demo("sample_touched@10:20-11,width_pixels=12,zfs_shift_hz=6e6"))
+    assert {e.rule for e in events} == {"resonance_jump"}, _summary(events)
+    raised = [e for e in events if e.state == "raised"]
+    cleared = [e for e in events if e.state == "cleared"]
+    assert len(raised) == 1
+    assert len(cleared) == 1
+    assert raised[0].line_index is not None
+    assert 10 <= raised[0].line_index <= 12
+    assert raised[0].pixel_range is not None
+    assert raised[0].pixel_range[0] <= 31
+    assert raised[0].pixel_range[1] >= 20
+    assert cleared[0].line_index is not None
+    assert cleared[0].line_index >= 12
+
+
+def test_long_fault_gives_one_raise_and_one_clear(tmp_path: Path) -> None:
+    """Fluorescence lost for eleven lines (5–15) gives exactly one raised and one cleared
+    event, the clear after the fault ends: no flood (DESIGN.md, rules and alerts)."""
+    events = _events(tmp_path, _demo("fluorescence_lost@5-15"))
+    assert [(e.rule, e.state) for e in events] == [
+        ("fluorescence_lost", "raised"),
+        ("fluorescence_lost", "cleared"),
+    ]
+    assert events[0].line_index == 5
+    assert events[1].line_index is not None
+    assert 16 <= events[1].line_index <= 18
+
+
+def test_corrupt_file_is_reported_and_the_next_lines_raise_nothing(tmp_path: Path) -> None:
+    """A truncated line file gives one bad_file alert; the line after the gap is compared
+    with the last good line and raises nothing."""
+    events = _events(tmp_path, _demo("corrupt_file@10"))
+    assert [(e.rule, e.state) for e in events] == [("bad_file", "raised")]
+    assert "line_00010_fwd.h5" in events[0].message
+
+
+@pytest.mark.parametrize(
+    ("scene", "pixel_m"),
+    [
+        (ds.labyrinth(), 30e-9),
+        (ds.labyrinth(), 60e-9),
+        (ds.calibration_stripe(width_m=1e-6), 30e-9),
+        (ds.bubble_lattice(), 30e-9),
+    ],
+    ids=["labyrinth", "labyrinth-coarse", "stripe", "bubbles"],
+)
+def test_clean_scans_with_sharp_features_raise_nothing(
+    tmp_path: Path, scene: ds.Scene, pixel_m: float
+) -> None:
+    """Clean scans of domain walls crossing between lines, sharp stripe edges and a bubble
+    lattice raise no alert: a sample feature is continuous across lines (PHYSICS.md §7,
+    common practice)."""
+    assert _summary(_events(tmp_path, _demo(scene=scene, pixel_m=pixel_m))) == []
+
+
+class _Clock:
+    def __init__(self, t_s: float) -> None:
+        self.t_s = t_s
+
+    def __call__(self) -> float:
+        return self.t_s
+
+
+def test_stall_is_raised_on_a_fake_clock_and_cleared_by_the_late_line(tmp_path: Path) -> None:
+    """With lines every 40 s and the instrument pausing 5 line times before line 10, ticks
+    of the pipeline on a fake clock raise acquisition_stalled once, 2.5 line times after the
+    last line arrived, and line 10 clears it; the clean lines raise nothing else."""
+    demo = _demo()
+    ds.run_scan(demo, tmp_path / "incoming", tmp_path / "truth", sleep=lambda _s: None)
+    line_s, latency_s, t0 = 40.0, 3.0, datetime(2026, 3, 1, 9, 0, tzinfo=UTC)
+    timed = tmp_path / "timed" / SCAN
+    timed.mkdir(parents=True)
+    arrivals, paths = [], []
+    t_end = 0.0
+    for k in range(N_LINES):
+        if k == 10:
+            t_end += 5 * line_s
+        begin, t_end = t_end, t_end + line_s
+        line = read_line_file(tmp_path / "incoming" / SCAN / f"line_{k:05d}_fwd.h5")
+        stamped = dataclasses.replace(
+            line,
+            start_time=t0 + timedelta(seconds=begin),
+            end_time=t0 + timedelta(seconds=t_end),
+        )
+        paths.append(write_line_file(stamped, timed / f"line_{k:05d}_fwd.h5"))
+        arrivals.append(t0.timestamp() + t_end + latency_s)
+    config = _config(tmp_path)
+    clock = _Clock(t0.timestamp())
+    pipeline = LinePipeline(config, sink=AlertSink(config.paths.alert_log), clock=clock)
+    ticks: list[AlertEvent] = []
+    try:
+        for path, arrive in zip(paths, arrivals, strict=True):
+            while clock.t_s + 1.0 < arrive:
+                clock.t_s += 1.0
+                ticks += pipeline.tick(clock.t_s)
+            clock.t_s = arrive
+            pipeline.process(path)
+    finally:
+        pipeline.close()
+    assert [(e.rule, e.state, e.line_index) for e in ticks] == [
+        ("acquisition_stalled", "raised", 9)
+    ]
+    waited_s = ticks[0].datetime.timestamp() - arrivals[9]
+    assert 2.5 * line_s < waited_s <= 2.5 * line_s + 1.0
+    events = read_alert_log(config.paths.alert_log)
+    # The clear names the last line seen before it, and says which line arrived.
+    assert _summary(events) == [
+        ("acquisition_stalled", "raised", 9),
+        ("acquisition_stalled", "cleared", 9),
+    ]
+    assert "line 10 arrived" in events[1].message
