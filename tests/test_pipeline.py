@@ -668,3 +668,43 @@ def test_a_store_mismatch_is_quarantined(scan_files: Path, tmp_path: Path) -> No
     assert "n_pixels must be 32 (as in store pipe-scan.zarr); found 16" in (
         outcomes[5].events[0].message
     )
+
+
+def test_seeded_rows_of_a_backward_trace_follow_its_acquisition_order(
+    tmp_path: Path,
+) -> None:
+    """After a restart, the remembered backward row is in the backward trace's own pixel
+    order (decreasing x), as metrics.line_rows made it, although the store keeps maps in
+    increasing x (common practice for trace/retrace scans)."""
+    root = tmp_path / "demo"
+    scan = ds.DemoConfig(
+        scene=ds.labyrinth(), n_lines=4, n_pixels=16, seed=5, scan_id=SCAN, trace_retrace=True
+    )
+    ds.run_scan(scan, root / "incoming", root / "truth")
+    folder = root / "incoming" / SCAN
+    config = _config(tmp_path)
+    model = fit_model_from_config(config)
+    backward2 = read_line_file(folder / "line_00002_bwd.h5")
+    fit = fit_line(backward2.freq_hz, backward2.counts, model)
+    expected = line_rows(backward2, fit, field_from_fit(fit, zfs_hz=_zfs_hz(backward2)))
+    first = LinePipeline(config)
+    try:
+        for index in range(3):
+            for tag in ("fwd", "bwd"):
+                first.process(folder / f"line_{index:05d}_{tag}.h5")
+    finally:
+        first.close()
+    forward3 = read_line_file(folder / "line_00003_fwd.h5")
+    seeded = _RecordingTracker()
+    with ScanStore.open(
+        config.paths.output_root,
+        SCAN,
+        n_lines_planned=4,
+        n_pixels=16,
+        x_m=forward3.x_m,
+        config_json={},
+        config_digest="test",
+    ) as store:
+        _seed_tracker(seeded, store, forward3)
+    for key in ("field_nv_t", "center_mean_hz", "pl_per_s", "x_m"):
+        np.testing.assert_array_equal(seeded.seeded["backward"][key], expected[key], err_msg=key)

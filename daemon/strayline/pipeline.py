@@ -696,15 +696,28 @@ def _seed_tracker(tracker: MetricsTracker, store: ScanStore, line: ScanLine) -> 
     """
     committed = store.committed()
     for direction in ("forward", "backward"):
+        # Maps run in increasing x; metrics rows run in acquisition order, which is this
+        # line's for its own direction and the reverse for the other one.
+        x_m = np.asarray(line.x_m, dtype=float)
+        x_m = x_m if direction == line.direction else x_m[::-1].copy()
+        order = np.argsort(x_m, kind="stable")
         done = [i for (i, d) in committed if d == direction and i < line.line_index]
         if not done:
             continue
         last = max(done)
 
-        def row(name: str, direction: str = direction, last: int = last) -> np.ndarray:
-            return np.asarray(store.read_map(name, direction)[last], dtype=float)
+        def row(
+            name: str, direction: str = direction, last: int = last, order: np.ndarray = order
+        ) -> np.ndarray:
+            stored = np.asarray(store.read_map(name, direction)[last], dtype=float)
+            in_file_order = np.empty_like(stored)
+            in_file_order[order] = stored
+            return in_file_order
 
+        ok = row("status") == FitStatus.OK
         rows = {key: row(name) for key, name in _ROW_FROM_MAP.items()}
+        for key in ("field_nv_t", "center_mean_hz"):  # as metrics.line_rows keeps them
+            rows[key] = np.where(ok, rows[key], np.nan)
         rows["center_mean_sigma_hz"] = center_mean_sigma_from_maps(
             rows["center_mean_hz"],
             row("freq_hi_hz"),
@@ -712,7 +725,7 @@ def _seed_tracker(tracker: MetricsTracker, store: ScanStore, line: ScanLine) -> 
             row("freq_hi_sigma_hz"),
         )
         rows["pl_sigma_per_s"] = np.full(store.n_pixels, np.nan)
-        rows["x_m"] = np.asarray(line.x_m, dtype=float)
+        rows["x_m"] = x_m
         tracker.seed(direction, {key: rows[key] for key in ROW_KEYS})
 
 
