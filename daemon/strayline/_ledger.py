@@ -41,6 +41,7 @@ from typing import Any
 from strayline.errors import StoreError
 
 __all__ = [
+    "LEDGER_FILE",
     "Key",
     "Ledger",
     "LedgerEntry",
@@ -48,6 +49,7 @@ __all__ = [
     "format_time",
     "parse_records",
     "parse_time",
+    "read_ledger_state",
 ]
 
 Key = tuple[int, str]  # (line_index, direction)
@@ -312,3 +314,30 @@ class Ledger:
         if self._fd >= 0:
             fd, self._fd = self._fd, -1
             os.close(fd)
+
+
+LEDGER_FILE = Path("ledger") / "records.jsonl"
+"""Where the ledger lives inside a store."""
+
+
+def read_ledger_state(store_path: Path) -> LedgerState:
+    """Replay a store's ledger without taking its lock (safe while the daemon writes).
+
+    A missing ledger is an empty one; a torn last record is ignored.
+
+    Raises
+    ------
+    StoreError
+        If the ledger exists but cannot be read, or is damaged before its end.
+    """
+    ledger_file = Path(store_path) / LEDGER_FILE
+    try:
+        data = ledger_file.read_bytes()
+    except FileNotFoundError:
+        data = b""
+    except OSError as error:
+        raise StoreError(f"{ledger_file}: cannot read the ledger: {error}") from error
+    state = LedgerState()
+    for record in parse_records(data, ledger_file)[0]:
+        state.apply(record)
+    return state

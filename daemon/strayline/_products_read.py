@@ -15,9 +15,9 @@ from typing import Any
 import numpy as np
 import zarr
 
-from strayline._ledger import LedgerState, parse_records
+from strayline._ledger import read_ledger_state
 from strayline._products_maps import TraceMaps, assemble_trace
-from strayline._store_layout import DIRECTIONS, LEDGER_FILE, STORE_FORMAT
+from strayline._store_layout import DIRECTIONS, STORE_FORMAT
 from strayline.errors import LineFileError, StoreError
 from strayline.lines import read_line_file
 from strayline.store import MAP_NAMES
@@ -53,20 +53,6 @@ class StoreSnapshot:
         return str(self.attrs["scan_id"])
 
 
-def _ledger_state(store_path: Path) -> LedgerState:
-    ledger_file = store_path / LEDGER_FILE
-    try:
-        data = ledger_file.read_bytes()
-    except FileNotFoundError:
-        data = b""
-    except OSError as error:
-        raise StoreError(f"{ledger_file}: cannot read the ledger: {error}") from error
-    state = LedgerState()
-    for record in parse_records(data, ledger_file)[0]:
-        state.apply(record)
-    return state
-
-
 def _open(store_path: Path) -> zarr.Group:
     try:
         group = zarr.open_group(store_path, mode="r", zarr_format=3)
@@ -97,7 +83,7 @@ def read_snapshot(store_path: Path) -> StoreSnapshot:
         If ``store_path`` is not a readable scan store.
     """
     store_path = Path(store_path)
-    state = _ledger_state(store_path)
+    state = read_ledger_state(store_path)
     group = _open(store_path)
     attrs = dict(group.attrs.asdict())
     committed = {d: sorted(i for (i, dd) in state.committed if dd == d) for d in DIRECTIONS}

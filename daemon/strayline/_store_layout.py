@@ -41,6 +41,7 @@ import numpy as np
 import zarr
 from zarr.codecs import BloscCodec
 
+from strayline._ledger import LEDGER_FILE
 from strayline.fit import FitStatus
 
 __all__ = [
@@ -65,7 +66,6 @@ STORE_FORMAT = "strayline-store"
 STORE_FORMAT_VERSION = 1
 DIRECTIONS = ("forward", "backward")
 STATUS_FILL = 255  # status code of a pixel whose line was never written
-LEDGER_FILE = Path("ledger") / "records.jsonl"
 
 # zarr v3 "default" chunk key encoding with "/" (the spec's default), set explicitly so the
 # chunk of row block r of a 2-D array is the file <array>/c/<r>/0.

@@ -25,7 +25,6 @@ import os
 import queue
 import subprocess
 import sys
-import tempfile
 import threading
 import time
 from collections.abc import Mapping, Sequence
@@ -37,6 +36,7 @@ from typing import Any, TextIO
 
 import structlog
 
+from strayline._atomic import write_text_atomic
 from strayline.rules import AlertEvent
 
 __all__ = [
@@ -81,16 +81,6 @@ def _fill(argv: Sequence[str], event: AlertEvent) -> list[str]:
     return out
 
 
-def _fsync_dir(folder: Path) -> None:
-    if sys.platform == "win32":  # directories cannot be opened for fsync there
-        return
-    fd = os.open(folder, os.O_RDONLY)
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
-
-
 def write_stop_request(path: Path, event: AlertEvent) -> None:
     """Write the stop-request JSON atomically: temporary file, fsync, rename."""
     payload = {
@@ -102,18 +92,7 @@ def write_stop_request(path: Path, event: AlertEvent) -> None:
         "requested_by": "strayline",
     }
     path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            json.dump(payload, fh, ensure_ascii=False, indent=2)
-            fh.write("\n")
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
-    _fsync_dir(path.parent)
+    write_text_atomic(path, json.dumps(payload, ensure_ascii=False, indent=2) + "\n")
 
 
 class AlertSink:

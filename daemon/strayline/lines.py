@@ -12,13 +12,10 @@ its dtype, shape, unit and meaning; temporary names and atomic rename) is in
 
 from __future__ import annotations
 
-import errno
 import hashlib
 import io
 import os
-import secrets
 from collections.abc import Mapping
-from contextlib import suppress
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from pathlib import Path, PurePath
@@ -27,6 +24,7 @@ from typing import Literal, cast
 import h5py
 import numpy as np
 
+from strayline._atomic import write_bytes_atomic
 from strayline._h5check import NAME_PATTERN, NAME_RULE, FileFields, is_int, show
 from strayline.errors import LineFileError
 
@@ -579,37 +577,5 @@ def write_line_file(line: ScanLine, path: str | os.PathLike[str] | None = None) 
     target = Path(line.source if path is None else path)
     data = _encode(line, target)
     parse_line_bytes(data, target, limits=_NO_LIMITS)
-    temporary = target.with_name(f".{target.name}.{secrets.token_hex(6)}.tmp")
-    fd = os.open(
-        temporary, os.O_WRONLY | os.O_CREAT | os.O_EXCL | getattr(os, "O_BINARY", 0), 0o666
-    )
-    try:
-        with os.fdopen(fd, "wb") as handle:
-            handle.write(data)
-            handle.flush()
-            os.fsync(handle.fileno())
-        os.replace(temporary, target)
-    except BaseException:
-        with suppress(FileNotFoundError):
-            os.unlink(temporary)
-        raise
-    _fsync_folder(target.parent)
+    write_bytes_atomic(target, data)
     return target
-
-
-def _fsync_folder(folder: Path) -> None:
-    """Make the rename durable. Folders that cannot be fsync'd (some network or Windows
-    file systems) are skipped: the file's own bytes were already fsync'd."""
-    try:
-        fd = os.open(folder, os.O_RDONLY | getattr(os, "O_DIRECTORY", 0))
-    except OSError as exc:
-        if exc.errno in (errno.EACCES, errno.EISDIR, errno.EINVAL):
-            return
-        raise
-    try:
-        os.fsync(fd)
-    except OSError as exc:
-        if exc.errno not in (errno.EINVAL, errno.ENOTSUP, errno.EBADF):
-            raise
-    finally:
-        os.close(fd)

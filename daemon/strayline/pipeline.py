@@ -16,7 +16,6 @@ the store is closed again (releasing its writer's lock) and the next line starts
 
 from __future__ import annotations
 
-import contextlib
 import json
 import math
 import os
@@ -32,6 +31,7 @@ import numpy as np
 import structlog
 
 from strayline import __version__
+from strayline._atomic import write_text_atomic
 from strayline.alerts import AlertSink
 from strayline.config import Config, config_digest, select_profile
 from strayline.errors import ConfigError, LineFileError, StoreError
@@ -747,15 +747,8 @@ def _load_delivered(path: Path) -> dict[str, AlertEvent]:
 def _save_delivered(path: Path, active: dict[str, AlertEvent]) -> None:
     """Write the active delivered alerts atomically (temporary file, fsync, rename)."""
     text = json.dumps({"active": [e.to_dict() for e in active.values()]})
-    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
     try:
         path.parent.mkdir(parents=True, exist_ok=True)
-        with open(tmp, "w", encoding="utf-8") as fh:
-            fh.write(text)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
+        write_text_atomic(path, text)
     except OSError as error:
-        with contextlib.suppress(OSError):
-            tmp.unlink()
         raise StoreError(f"{path}: delivered alerts could not be saved: {error}") from error

@@ -41,6 +41,7 @@ import numpy as np
 import zarr
 
 import strayline
+from strayline._atomic import write_text_atomic
 from strayline._products_maps import TraceMaps, VectorField, reconstruct_vector
 from strayline._products_read import StoreSnapshot, nv_axis_from_store, read_snapshot
 from strayline._products_report import (
@@ -484,15 +485,7 @@ def _finite(value: Any) -> Any:
 
 
 def _write_text(path: Path, text: str) -> None:
-    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
-    try:
-        with open(tmp, "w", encoding="utf-8") as fh:
-            fh.write(text)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    finally:
-        tmp.unlink(missing_ok=True)
+    write_text_atomic(path, text)
 
 
 def _remove_tree(path: Path) -> None:

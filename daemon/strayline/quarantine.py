@@ -15,6 +15,7 @@ from dataclasses import asdict, dataclass
 from datetime import UTC, datetime
 from pathlib import Path
 
+from strayline._atomic import write_text_atomic
 from strayline.errors import LineFileError
 from strayline.rules import AlertEvent
 
@@ -153,7 +154,5 @@ def quarantine_file(
         time=datetime.now(UTC).isoformat(timespec="seconds"),
     )
     sidecar = target.with_name(target.name + ".error.json")
-    tmp = sidecar.with_name("." + sidecar.name + ".tmp")
-    tmp.write_text(json.dumps(asdict(record), indent=2) + "\n", encoding="utf-8")
-    os.replace(tmp, sidecar)
+    write_text_atomic(sidecar, json.dumps(asdict(record), indent=2) + "\n")
     return record

@@ -16,10 +16,9 @@ from typing import Any
 import numpy as np
 import zarr
 
-from strayline._ledger import LedgerState, parse_records
-from strayline._store_layout import DIRECTIONS, LEDGER_FILE, STATUS_FILL
+from strayline._ledger import LedgerState, read_ledger_state
+from strayline._store_layout import DIRECTIONS, STATUS_FILL
 from strayline.alerts import format_alert, read_alert_log
-from strayline.errors import StoreError
 from strayline.fit import FitStatus
 from strayline.rules import AlertEvent
 
@@ -98,16 +97,7 @@ def scan_status(store_path: Path, alerts: Sequence[AlertEvent] | None = None) ->
     attrs = group.attrs.asdict()
     scan_id = str(attrs["scan_id"])
     n_planned = int(attrs["n_lines_planned"])  # type: ignore[arg-type]
-    ledger_file = store_path / LEDGER_FILE
-    try:
-        data = ledger_file.read_bytes()
-    except FileNotFoundError:
-        data = b""
-    except OSError as error:
-        raise StoreError(f"{ledger_file}: cannot read the ledger: {error}") from error
-    state = LedgerState()
-    for record in parse_records(data, ledger_file)[0]:
-        state.apply(record)
+    state = read_ledger_state(store_path)
     done = {d: sum(1 for (_, dd) in state.committed if dd == d) for d in DIRECTIONS}
     busiest = max(DIRECTIONS, key=lambda d: done[d])
     times = _commit_times(state, busiest)[-_RATE_WINDOW:]
