@@ -1,34 +1,73 @@
 """The daemon: watcher → pipeline, in the foreground, under systemd or by hand.
 
-The only module that talks to systemd (sd_notify: READY, STATUS, WATCHDOG, STOPPING) and
-handles signals: SIGTERM/SIGINT finish the current line and exit 0; SIGHUP reloads the
-config (validated first; an invalid one is refused and the old one kept) and reopens log
-files. ``process_folder`` runs exactly the same pipeline once over what is there.
+The only module that talks to systemd and handles signals.
+
+- sd_notify (:mod:`strayline._sdnotify`): ``READY=1`` once the watcher is armed and the
+  catch-up listing has started; ``STATUS=`` with progress (scan, line, queue, last alert);
+  ``WATCHDOG=1`` from the main loop only, every half ``$WATCHDOG_USEC``, so a hung line or
+  a loop blocked in a system call stops the pings; ``RELOADING=1`` / ``READY=1`` around a
+  reload; ``STOPPING=1`` on the way out.
+- Signals: SIGTERM/SIGINT finish the current line (it is committed or was never begun)
+  and exit 0; SIGHUP reloads the config (validated first; an invalid one is refused and
+  the old one kept) and reopens the log files.
+- Resource guards: free space of the output root below ``service.min_free_disk_mib``
+  raises one critical alert and stops raw-spectra writing (maps go on); the output folder
+  failing (unwritable, replaced, vanished) raises one critical alert, keeps every line
+  file on a retry list and retries with backoff, and, once writing works again, lists the
+  watch root anew so that no line is lost. A missing watch root is waited for.
+
+``process_folder`` runs exactly the same pipeline once over what is there.
 """
 
 from __future__ import annotations
 
 import faulthandler
+import os
 import signal
 import sys
 import threading
 import time
+from collections import deque
 from collections.abc import Callable
 from dataclasses import dataclass
+from datetime import UTC, datetime
 from pathlib import Path
 from types import FrameType
+from typing import Literal
 
 import structlog
 
 from strayline._sdnotify import Notifier
+from strayline._store_layout import LEDGER_FILE
 from strayline._watch_tree import LineNames, list_tree
 from strayline.config import Config, load_config
 from strayline.errors import ConfigError, StoreError
-from strayline.logs import reopen_log_files
+from strayline.logs import configure_logging, reopen_log_files
 from strayline.pipeline import LineOutcome, LinePipeline
-from strayline.watch import LineWatcher, WatchOptions
+from strayline.rules import AlertEvent
+from strayline.watch import LineWatcher, ReadyFile, WatchOptions
 
-__all__ = ["ProcessSummary", "Service", "process_folder", "watch_options_from_config"]
+__all__ = [
+    "DiskGuard",
+    "ProcessSummary",
+    "Service",
+    "free_disk_bytes",
+    "process_folder",
+    "watch_options_from_config",
+]
+
+_MIB = 1024 * 1024
+#: Output folder and free space are looked at no more often than this, s.
+RESOURCE_CHECK_INTERVAL_S = 5.0
+#: First retry after an output failure, s; doubled after each failed retry up to the cap.
+RETRY_FIRST_S = 1.0
+RETRY_MAX_S = 60.0
+#: A line file that cannot be read (not a store failure) is retried this many times.
+UNREADABLE_ATTEMPTS = 6
+#: Rules of the alerts the service raises itself (the rule engine raises the others).
+SERVICE_RULES = ("disk_space_low", "output_unavailable")
+#: STATUS is re-sent at least this often even when unchanged, s.
+_STATUS_REFRESH_S = 10.0
 
 
 def watch_options_from_config(config: Config) -> WatchOptions:
@@ -90,6 +129,136 @@ def process_folder(config: Config, folder: Path) -> ProcessSummary:
     return _summarise(outcomes)
 
 
+# --------------------------------------------------------------------------- disk space
+
+
+def free_disk_bytes(folder: Path) -> int:
+    """Bytes an unprivileged writer may still use on the file system of ``folder``.
+
+    ``f_bavail * f_frsize`` from statvfs(3) (blocks free to non-root users times the
+    fundamental block size). Raises OSError if ``folder`` cannot be looked at.
+    """
+    st = os.statvfs(folder)
+    return st.f_bavail * st.f_frsize
+
+
+def _nearest_existing(folder: Path) -> Path:
+    """``folder`` or its closest existing ancestor (the disk it will be created on)."""
+    for candidate in (folder, *folder.parents):
+        if candidate.is_dir():
+            return candidate
+    return folder
+
+
+class DiskGuard:
+    """Free space of the output root against a floor, looked at every few seconds at most.
+
+    Parameters
+    ----------
+    folder : Path
+        The output root (measured on its closest existing ancestor while it is missing).
+    min_free_bytes : int
+        Below this the guard turns low.
+    free_bytes : callable, optional
+        ``free_bytes(folder) -> int`` (default :func:`free_disk_bytes`); tests inject one.
+    clock : callable returning float, optional
+        Monotonic seconds for the check interval.
+    interval_s : float
+        Looks at the disk no more often than this, s.
+    low : bool
+        Start in the low state (a guard rebuilt on reload keeps its predecessor's state).
+
+    Notes
+    -----
+    Hysteresis (common practice against flapping): once low, the guard clears only when
+    free space is back above ``min_free_bytes`` plus a tenth of it (at least 64 MiB).
+    """
+
+    def __init__(
+        self,
+        folder: Path,
+        min_free_bytes: int,
+        *,
+        free_bytes: Callable[[Path], int] = free_disk_bytes,
+        clock: Callable[[], float] = time.monotonic,
+        interval_s: float = RESOURCE_CHECK_INTERVAL_S,
+        low: bool = False,
+    ) -> None:
+        self.folder = Path(folder)
+        self.min_free_bytes = int(min_free_bytes)
+        self.clear_bytes = self.min_free_bytes + max(self.min_free_bytes // 10, 64 * _MIB)
+        self._free_bytes = free_bytes
+        self._clock = clock
+        self._interval_s = interval_s
+        self.low = low
+        self.last_free_bytes: int | None = None
+        self.last_error: str | None = None
+        self._next_s = -float("inf")
+
+    def check(self, *, force: bool = False) -> Literal["raised", "cleared"] | None:
+        """Look at the disk if due (or ``force``); return a change of state, else None.
+
+        A disk that cannot be looked at changes nothing (the folder check reports it).
+        """
+        now = self._clock()
+        if not force and now < self._next_s:
+            return None
+        self._next_s = now + self._interval_s
+        try:
+            free = int(self._free_bytes(_nearest_existing(self.folder)))
+        except OSError as exc:
+            self.last_error = f"{self.folder}: cannot read free space: {exc}"
+            return None
+        self.last_error = None
+        self.last_free_bytes = free
+        if not self.low and free < self.min_free_bytes:
+            self.low = True
+            return "raised"
+        if self.low and free >= self.clear_bytes:
+            self.low = False
+            return "cleared"
+        return None
+
+
+# --------------------------------------------------------------------------- the service
+
+
+@dataclass
+class _Outage:
+    """The output cannot be written: since when, why, and when to try again."""
+
+    reason: str
+    since_s: float
+    next_try_s: float
+    backoff_s: float
+    attempts: int = 0
+
+
+@dataclass
+class _Unreadable:
+    """A line file that could not be read (not a store failure), waiting for a retry."""
+
+    ready: ReadyFile
+    error: str
+    attempts: int
+    next_try_s: float
+
+
+def _exists(path: Path) -> bool:
+    """True unless ``path`` is certainly absent (any other error counts as present)."""
+    try:
+        path.stat()
+    except FileNotFoundError:
+        return False
+    except OSError:
+        return True
+    return True
+
+
+def _utc_now_text() -> str:
+    return datetime.now(UTC).isoformat(timespec="milliseconds")
+
+
 class Service:
     """The long-running daemon.
 
@@ -101,6 +270,10 @@ class Service:
         sd_notify sender (default: from ``$NOTIFY_SOCKET``, a no-op outside systemd).
     stop_when : callable returning bool, optional
         Checked after every loop turn; True ends the run (used by ``strayline demo``).
+    free_bytes : callable, optional
+        ``free_bytes(folder) -> int`` for the disk guard (default :func:`free_disk_bytes`).
+    clock : callable returning float, optional
+        Monotonic seconds for the resource checks and the retry backoff.
     """
 
     def __init__(
@@ -109,16 +282,43 @@ class Service:
         *,
         notifier: Notifier | None = None,
         stop_when: Callable[[], bool] | None = None,
+        free_bytes: Callable[[Path], int] = free_disk_bytes,
+        clock: Callable[[], float] = time.monotonic,
     ) -> None:
         self.config = config
         self._notifier = notifier if notifier is not None else Notifier()
         self._stop_when = stop_when
+        self._free_bytes = free_bytes
+        self._clock = clock
         self._log = structlog.get_logger("strayline.service")
         self._stop = threading.Event()
         self._reload = threading.Event()
-        self.pipeline, self.watcher = self._build(config)
-        self._last_status_s = 0.0
-        self._last_ping_s = 0.0
+        # Settled once: the watchdog period (half of systemd's, sd_watchdog_enabled(3)).
+        interval = self._notifier.watchdog_interval_s
+        self._ping_period_s = interval / 2 if interval and config.service.watchdog else None
+        self._next_ping_s = 0.0
+        self._status_sent_s = -float("inf")
+        self._last_status_text = ""
+        self._next_status_log_s = 0.0
+        self._next_check_s = -float("inf")
+        self._held: deque[ReadyFile] = deque()
+        self._unreadable: list[_Unreadable] = []
+        self._unreadable_attempts: dict[Path, int] = {}
+        self._undelivered: list[AlertEvent] = []
+        self._outage: _Outage | None = None
+        self._last_alert: AlertEvent | None = None
+        self._last_scan_id: str | None = None
+        self._raised: dict[str, AlertEvent] = {}  # service alerts raised, by rule
+        self._lost_stores: set[Path] = set()
+        self._disk = self._new_disk_guard(config, low=False)
+        self.pipeline: LinePipeline | None = None
+        try:
+            self.pipeline = LinePipeline(config)
+        except OSError as exc:  # output folder unusable at start: wait for it, alerting
+            self._begin_outage(f"building the pipeline failed: {exc}")
+        else:
+            self._adopt_raised(self.pipeline)
+        self.watcher = LineWatcher(config.paths.watch_root, watch_options_from_config(config))
 
     # -- signals ------------------------------------------------------------------------
 
@@ -146,13 +346,15 @@ class Service:
     def run(self) -> int:
         """Run until stopped; return the process exit code (0 on a clean stop)."""
         faulthandler.enable(file=sys.stderr, all_threads=True)
-        self.watcher.start()
+        self.watcher.start()  # arms the observer and lists the tree (catch-up)
+        self._check_resources(force=True)
         self._notifier.notify("READY=1", f"STATUS={self._status_text()}")
         self._log.info(
             "service_ready",
             watch_root=str(self.config.paths.watch_root),
             output_root=str(self.config.paths.output_root),
             mode=self.config.watch.mode,
+            watchdog_period_s=self._ping_period_s,
         )
         try:
             while not self._stop.is_set():
@@ -160,85 +362,502 @@ class Service:
                 if self._stop_when is not None and self._stop_when():
                     break
         finally:
-            self._notifier.notify("STOPPING=1", "STATUS=stopping")
+            self._notifier.notify("STOPPING=1", "STATUS=stopping: the current line is finished")
             self._shutdown()
-        self._log.info("service_stopped")
+        self._log.info("service_stopped", lines_left_for_next_start=len(self._held))
         return 0
 
-    @staticmethod
-    def _build(config: Config) -> tuple[LinePipeline, LineWatcher]:
-        pipeline = LinePipeline(config)
-        watcher = LineWatcher(config.paths.watch_root, watch_options_from_config(config))
-        return pipeline, watcher
+    def _turn(self) -> None:
+        """One loop turn: reload if asked, guard resources, take ready files, work, report."""
+        if self._reload.is_set():
+            self._do_reload()
+        self._check_resources()
+        busy = bool(self._held) and self._outage is None
+        ready = self.watcher.wait_ready(timeout_s=0.0 if busy else self._wait_s())
+        self._held.extend(ready)
+        self._requeue_unreadable()
+        if self._outage is not None:
+            if self._clock() >= self._outage.next_try_s:
+                self._try_recover()
+        else:
+            self._drain_held()
+        if self._outage is None and self.pipeline is not None and not self._stop.is_set():
+            try:
+                self._note_events(self.pipeline.tick())
+            except StoreError as exc:
+                self._begin_outage(str(exc))
+        self._ping()
+        now = time.monotonic()
+        if now >= self._next_status_log_s:
+            self._next_status_log_s = now + self.config.service.status_interval_s
+            self._log_status()
+
+    def _wait_s(self) -> float:
+        """How long the watcher may block: 1 s, less if a ping or retry falls due sooner."""
+        wait = 1.0
+        if self._ping_period_s is not None:
+            wait = min(wait, max(self._next_ping_s - time.monotonic(), 0.0))
+        if self._outage is not None:
+            wait = min(wait, max(self._outage.next_try_s - self._clock(), 0.0))
+        if self._unreadable:
+            soonest = min(u.next_try_s for u in self._unreadable)
+            wait = min(wait, max(soonest - self._clock(), 0.0))
+        return wait
+
+    def _drain_held(self) -> None:
+        """Process held files in order until done, stopped, or the output fails."""
+        while self._held and not self._stop.is_set():
+            before = self._outage
+            self._check_resources()  # a long catch-up still watches the disk
+            if self._outage is not before:
+                return
+            problem = self._output_problem()
+            if problem is not None:
+                self._begin_outage(problem)
+                return
+            if not self._handle(self._held[0]):
+                return  # output failed: the file stays first in line
+            self._held.popleft()
+            self._ping()
+
+    def _handle(self, ready: ReadyFile) -> bool:
+        """Run one file through the pipeline; False if the output failed (keep the file)."""
+        if self.pipeline is None:
+            return False
+        try:
+            if ready.kind == "gave_up":
+                outcome = self.pipeline.give_up(ready.path, ready.reason)
+            else:
+                outcome = self.pipeline.process(ready.path)
+        except StoreError as exc:
+            self._begin_outage(str(exc))
+            return False
+        except OSError as exc:  # the line file itself cannot be read: try again later
+            self._note_unreadable(ready, exc)
+            return True
+        except Exception:  # our own bug: keep the file, log it whole, carry on
+            self._log.exception("line_failed", file=str(ready.path))
+            return True
+        self._unreadable_attempts.pop(ready.path, None)
+        if outcome.scan_id is not None:
+            self._last_scan_id = outcome.scan_id
+        self._note_events(outcome.events)
+        return True
+
+    def _note_events(self, events: tuple[AlertEvent, ...]) -> None:
+        if events:
+            self._last_alert = events[-1]
 
     def _shutdown(self) -> None:
         self.watcher.stop()
-        self.pipeline.close()
+        self._close_pipeline()
         self._notifier.close()
 
-    def _turn(self) -> None:
-        """One loop turn: wait for ready files, process them, tick rules, report."""
-        if self._reload.is_set():
-            self._do_reload()
-        for ready in self.watcher.wait_ready(timeout_s=1.0):
-            if self._stop.is_set():
-                break  # the file stays; it is caught up on the next start
+    # -- unreadable files ---------------------------------------------------------------
+
+    def _note_unreadable(self, ready: ReadyFile, exc: OSError) -> None:
+        attempts = self._unreadable_attempts.get(ready.path, 0) + 1
+        if attempts >= UNREADABLE_ATTEMPTS:
+            self._unreadable_attempts.pop(ready.path, None)
+            self._log.error("line_unreadable_gave_up", file=str(ready.path), error=str(exc))
+            if self.pipeline is not None:
+                outcome = self.pipeline.give_up(ready.path, f"cannot be read: {exc}")
+                self._note_events(outcome.events)
+            return
+        self._unreadable_attempts[ready.path] = attempts
+        delay = min(RETRY_FIRST_S * 4**attempts, RETRY_MAX_S * 5)
+        self._log.warning(
+            "line_unreadable_retry", file=str(ready.path), error=str(exc), retry_in_s=delay
+        )
+        self._unreadable.append(_Unreadable(ready, str(exc), attempts, self._clock() + delay))
+
+    def _requeue_unreadable(self) -> None:
+        """Put unreadable files whose retry is due back in line."""
+        now = self._clock()
+        due = [u for u in self._unreadable if u.next_try_s <= now]
+        for u in due:
+            self._unreadable.remove(u)
+            self._held.append(u.ready)
+
+    # -- output failures ----------------------------------------------------------------
+
+    def _begin_outage(self, reason: str) -> None:
+        """The output cannot be written: alert once, close the pipeline, back off."""
+        now = self._clock()
+        if self._outage is None:
+            self._outage = _Outage(reason, now, now + RETRY_FIRST_S, RETRY_FIRST_S)
+            self._log.error("output_unavailable", reason=reason, held_files=len(self._held))
+            self._deliver(
+                self._service_event(
+                    "output_unavailable",
+                    "critical",
+                    "raised",
+                    message=(
+                        f"cannot write results below {self.config.paths.output_root}: {reason}; "
+                        "live maps and fault alerts are paused, line files are kept and retried"
+                    ),
+                    advice=(
+                        "check that the output folder exists, is writable and its disk is "
+                        "mounted and not full; processing resumes by itself"
+                    ),
+                )
+            )
+        else:
+            outage = self._outage
+            outage.backoff_s = min(outage.backoff_s * 2, RETRY_MAX_S)
+            outage.next_try_s = now + outage.backoff_s
+            self._log.warning(
+                "output_retry_failed",
+                reason=reason,
+                attempts=outage.attempts,
+                next_retry_s=outage.backoff_s,
+                held_files=len(self._held),
+            )
+        self._close_pipeline()
+
+    def _try_recover(self) -> None:
+        """Rebuild the pipeline, write the held files, and clear the outage if all went."""
+        outage = self._outage
+        if outage is None:
+            return
+        outage.attempts += 1
+        problem = self._output_problem()
+        if problem is not None:
+            self._begin_outage(problem)
+            return
+        self._set_aside_lost_stores()
+        if self.pipeline is None:
             try:
-                if ready.kind == "gave_up":
-                    self.pipeline.give_up(ready.path, ready.reason)
-                else:
-                    self.pipeline.process(ready.path)
-            except StoreError:
-                raise  # the output is unusable: stop cleanly, systemd restarts us
-            except Exception:  # our own bug: keep the file, log it whole, carry on
-                self._log.exception("line_failed", file=str(ready.path))
-            self._ping()
-        self.pipeline.tick()
-        self._ping()
-        now = time.monotonic()
-        if now - self._last_status_s >= self.config.service.status_interval_s:
-            self._last_status_s = now
-            self._log_status()
+                self.pipeline = self._new_pipeline(self.config)
+            except OSError as exc:
+                self._begin_outage(f"building the pipeline failed: {exc}")
+                return
+        self._drain_held()
+        if self._held:
+            return  # failed again (backoff set) or stopping
+        self._outage = None
+        down_s = self._clock() - outage.since_s
+        self._log.info("output_recovered", down_s=round(down_s, 1), attempts=outage.attempts)
+        self._deliver(
+            self._service_event(
+                "output_unavailable",
+                "critical",
+                "cleared",
+                message=(
+                    f"results are written below {self.config.paths.output_root} again after "
+                    f"{down_s:.0f} s; the watch root is listed again to catch up"
+                ),
+                advice="",
+            )
+        )
+        # Lines written meanwhile into a store that had vanished are found again: every
+        # file is reconsidered, and the ledger skips those already committed.
+        self._restart_watcher(self.config)
+
+    def _output_problem(self) -> str | None:
+        """Why the output cannot be used now (folder replaced or gone, a store gone), or None.
+
+        A handful of stat calls: cheap enough to run before every line, so that a line is
+        not written into a store whose folder was deleted while it was open.
+        """
+        root = self.config.paths.output_root
+        if root.exists() and not root.is_dir():
+            return f"output folder {root} is not a folder"
+        if self.pipeline is None:
+            return None
+        if not root.is_dir():
+            return f"output folder {root} vanished"
+        for scan_id in self.pipeline.scan_progress():
+            store = root / f"{scan_id}.zarr"
+            if not (store / "zarr.json").is_file():
+                self._lost_stores.add(store)
+                return f"scan store {store} vanished"
+        return None
+
+    def _set_aside_lost_stores(self) -> None:
+        """Move aside what writes into a deleted store left at its path, so that the store
+        can be created afresh there.
+
+        zarr creates missing folders when it writes a chunk, so lines written after a
+        store's folder was deleted leave a folder of chunks with neither the group
+        metadata (``zarr.json``) nor a ledger. Such a folder is renamed to a hidden
+        ``.<name>.orphaned-<UTC time>`` beside it, never deleted; a folder that has either
+        file is left alone.
+        """
+        lost, self._lost_stores = self._lost_stores, set()
+        for store in lost:
+            try:
+                if not store.is_dir() or any(
+                    _exists(store / name) for name in (Path("zarr.json"), LEDGER_FILE)
+                ):
+                    continue
+                stamp = datetime.now(UTC).strftime("%Y%m%dT%H%M%SZ")
+                aside = store.with_name(f".{store.name}.orphaned-{stamp}")
+                store.rename(aside)
+            except OSError as exc:
+                self._log.warning("lost_store_not_moved", store=str(store), error=str(exc))
+            else:
+                self._log.warning("lost_store_moved_aside", store=str(store), to=str(aside))
+
+    def _check_resources(self, *, force: bool = False) -> None:
+        """Output folder and free space, at most every RESOURCE_CHECK_INTERVAL_S."""
+        now = self._clock()
+        if not force and now < self._next_check_s:
+            return
+        self._next_check_s = now + RESOURCE_CHECK_INTERVAL_S
+        if self._outage is None:
+            problem = self._output_problem()
+            if problem is not None:
+                self._begin_outage(problem)
+        change = self._disk.check(force=True)
+        if change == "raised":
+            self._disk_low_raised()
+        elif change == "cleared":
+            self._disk_low_cleared()
+
+    def _disk_low_raised(self) -> None:
+        disk = self._disk
+        free_mib = (disk.last_free_bytes or 0) / _MIB
+        floor_mib = disk.min_free_bytes / _MIB
+        self._log.error("disk_space_low", free_mib=round(free_mib, 1), floor_mib=floor_mib)
+        if self.pipeline is not None:
+            try:
+                self.pipeline.set_raw_spectra(False)
+            except StoreError as exc:
+                self._begin_outage(str(exc))
+        self._deliver(
+            self._service_event(
+                "disk_space_low",
+                "critical",
+                "raised",
+                message=(
+                    f"free space for {self.config.paths.output_root} is {free_mib:.0f} MiB, "
+                    f"below service.min_free_disk_mib = {floor_mib:.0f} MiB; raw spectra are "
+                    "no longer stored (field maps still are)"
+                ),
+                advice=(
+                    "free space on that disk or move finished scans away; raw spectra are "
+                    f"stored again above {disk.clear_bytes / _MIB:.0f} MiB free"
+                ),
+                seen=(free_mib, floor_mib, "MiB"),
+            )
+        )
+
+    def _disk_low_cleared(self) -> None:
+        free_mib = (self._disk.last_free_bytes or 0) / _MIB
+        self._log.info("disk_space_recovered", free_mib=round(free_mib, 1))
+        # A fresh pipeline stores raw spectra again wherever each scan's config asks.
+        if self.pipeline is not None:
+            self._close_pipeline()
+            try:
+                self.pipeline = self._new_pipeline(self.config)
+            except OSError as exc:
+                self._begin_outage(f"building the pipeline failed: {exc}")
+        self._deliver(
+            self._service_event(
+                "disk_space_low",
+                "critical",
+                "cleared",
+                message=(
+                    f"free space for {self.config.paths.output_root} is {free_mib:.0f} MiB "
+                    "again; raw spectra are stored as configured"
+                ),
+                advice="",
+                seen=(free_mib, self._disk.min_free_bytes / _MIB, "MiB"),
+            )
+        )
+
+    # -- building and closing -----------------------------------------------------------
+
+    def _new_disk_guard(self, config: Config, *, low: bool) -> DiskGuard:
+        return DiskGuard(
+            config.paths.output_root,
+            config.service.min_free_disk_bytes,
+            free_bytes=self._free_bytes,
+            clock=self._clock,
+            low=low,
+        )
+
+    def _new_pipeline(self, config: Config) -> LinePipeline:
+        """A pipeline for ``config``, told about low disk, with held-back alerts sent."""
+        pipeline = LinePipeline(config)
+        if self._disk.low:
+            pipeline.set_raw_spectra(False)  # no scan is open yet: nothing to reopen
+        undelivered, self._undelivered = self._undelivered, []
+        self.pipeline = pipeline
+        for event in undelivered:
+            self._deliver(event)
+        return pipeline
+
+    def _adopt_raised(self, pipeline: LinePipeline) -> None:
+        """Take over this service's alerts still raised by a previous run, so that they
+        are cleared when their cause is gone (the first resource check decides)."""
+        for event in pipeline.active_alerts():
+            if event.rule in SERVICE_RULES and event.rule not in self._raised:
+                self._raised[event.rule] = event
+                self._log.info("alert_still_raised", rule=event.rule, scan=event.scan_id)
+        if "disk_space_low" in self._raised:
+            self._disk.low = True
+            pipeline.set_raw_spectra(False)  # no scan is open yet: nothing to reopen
+        if "output_unavailable" in self._raised and self._outage is None:
+            now = self._clock()
+            reason = "raised by a previous run"
+            self._outage = _Outage(reason, now, now, RETRY_FIRST_S)
+
+    def _close_pipeline(self) -> None:
+        pipeline, self.pipeline = self.pipeline, None
+        if pipeline is None:
+            return
+        try:
+            pipeline.close()
+        except OSError as exc:  # the output is failing; what is committed is on disk
+            self._log.warning("pipeline_close_failed", error=str(exc))
+
+    def _restart_watcher(self, config: Config) -> None:
+        """A new watcher (new options or a catch-up), started at once."""
+        self.watcher.stop()
+        self.watcher = LineWatcher(config.paths.watch_root, watch_options_from_config(config))
+        self.watcher.start()
+
+    # -- alerts of the service itself ---------------------------------------------------
+
+    def _service_event(
+        self,
+        rule: str,
+        severity: str,
+        state: Literal["raised", "cleared"],
+        *,
+        message: str,
+        advice: str,
+        seen: tuple[float, float, str] | None = None,
+    ) -> AlertEvent:
+        raised = self._raised.get(rule)
+        if state == "cleared" and raised is not None:
+            scan_id = raised.scan_id  # the pair is matched by (scan, rule)
+        else:
+            scan_id = self._last_scan_id or "-"
+        return AlertEvent(
+            time=_utc_now_text(),
+            scan_id=scan_id,
+            rule=rule,
+            severity=severity,
+            state=state,
+            line_index=None,
+            direction=None,
+            pixel_range=None,
+            seen_value=None if seen is None else seen[0],
+            seen_unit="" if seen is None else seen[2],
+            baseline_value=None if seen is None else seen[1],
+            baseline_spread=None,
+            confidence_z=None,
+            message=message,
+            advice=advice,
+        )
+
+    def _deliver(self, event: AlertEvent) -> None:
+        """Send through the pipeline's alert sink; keep it for later if that fails."""
+        self._last_alert = event
+        if event.state == "raised":
+            self._raised[event.rule] = event
+        else:
+            self._raised.pop(event.rule, None)
+        if self.pipeline is not None:
+            try:
+                self.pipeline.deliver(event)
+            except StoreError as exc:  # delivered; only remembering it failed
+                self._log.warning("alert_state_not_saved", rule=event.rule, error=str(exc))
+                return
+            except OSError as exc:
+                self._log.error("alert_delivery_failed", rule=event.rule, error=str(exc))
+            else:
+                return
+        self._log.error(f"alert_{event.state}_pending", **event.to_dict())
+        self._undelivered.append(event)
+
+    # -- systemd ------------------------------------------------------------------------
 
     def _ping(self) -> None:
-        """Watchdog ping and status, from the main loop only (a hung line stops them)."""
+        """Watchdog ping and status, from the main loop only (a hung line stops them).
+
+        STATUS goes with every ping, when its text changed (at most once a second), and
+        at least every ``_STATUS_REFRESH_S``.
+        """
         now = time.monotonic()
-        if now - self._last_ping_s < 1.0:
-            return
-        self._last_ping_s = now
-        states = [f"STATUS={self._status_text()}"]
-        if self.config.service.watchdog:
+        states = []
+        if self._ping_period_s is not None and now >= self._next_ping_s:
+            self._next_ping_s = now + self._ping_period_s
             states.append("WATCHDOG=1")
-        self._notifier.notify(*states)
+        since_s = now - self._status_sent_s
+        if states or since_s >= 1.0:
+            text = self._status_text()
+            if states or text != self._last_status_text or since_s >= _STATUS_REFRESH_S:
+                self._last_status_text = text
+                self._status_sent_s = now
+                states.append(f"STATUS={text}")
+        if states:
+            self._notifier.notify(*states)
 
     def _status_text(self) -> str:
-        stats = self.pipeline.statistics()
-        watch = self.watcher.statistics()
+        """One line for ``systemctl status``: scan, line, queue, last alert, troubles."""
         parts = []
-        for scan_id, (done, planned) in self.pipeline.scan_progress().items():
-            parts.append(f"scan {scan_id}: {done}/{planned} traces")
-        if not parts:
+        if self._outage is not None:
+            parts.append(
+                f"OUTPUT FAILING ({self._outage.reason}); {len(self._held)} files held, "
+                f"retry {self._outage.attempts + 1}"
+            )
+        if self._disk.low:
+            free_mib = (self._disk.last_free_bytes or 0) / _MIB
+            parts.append(f"DISK LOW ({free_mib:.0f} MiB free): raw spectra off")
+        watch = self.watcher.statistics()
+        if not watch.watch_root_present:
+            parts.append(f"waiting for watch root {self.config.paths.watch_root}")
+        progress = self.pipeline.scan_progress() if self.pipeline is not None else {}
+        stats = self.pipeline.statistics() if self.pipeline is not None else None
+        if stats is not None and stats.last_scan_id in progress:
+            done, planned = progress[stats.last_scan_id]
+            parts.append(
+                f"scan {stats.last_scan_id}: line {stats.last_line_index}, {done}/{planned} done"
+            )
+            if len(progress) > 1:
+                parts.append(f"{len(progress) - 1} more scans open")
+        elif progress:
+            parts.append(f"{len(progress)} scans open")
+        else:
             parts.append("waiting for lines")
-        parts.append(f"queue {watch.candidates_pending}")
-        parts.append(f"quarantined {stats.quarantined}")
-        parts.append(f"active alerts {stats.active_alerts}")
+        parts.append(f"queue {watch.candidates_pending + len(self._held)}")
+        if self._last_alert is not None:
+            a = self._last_alert
+            where = a.scan_id if a.line_index is None else f"{a.scan_id} line {a.line_index}"
+            parts.append(f"last alert {a.time[11:19]} {a.rule} {a.state} ({where})")
+        else:
+            parts.append("no alerts")
         return ", ".join(parts)
 
     def _log_status(self) -> None:
-        stats = self.pipeline.statistics()
+        stats = self.pipeline.statistics() if self.pipeline is not None else None
         watch = self.watcher.statistics()
         self._log.info(
             "service_status",
-            lines_written=stats.lines_written,
-            duplicates=stats.duplicates,
-            quarantined=stats.quarantined,
-            pixels_failed=stats.pixels_failed,
-            scans_open=stats.scans_open,
+            lines_written=None if stats is None else stats.lines_written,
+            duplicates=None if stats is None else stats.duplicates,
+            quarantined=None if stats is None else stats.quarantined,
+            pixels_failed=None if stats is None else stats.pixels_failed,
+            scans_open=None if stats is None else stats.scans_open,
+            active_alerts=None if stats is None else stats.active_alerts,
             queue=watch.candidates_pending,
-            active_alerts=stats.active_alerts,
+            held=len(self._held),
+            watch_root_present=watch.watch_root_present,
+            output_failing=self._outage is not None,
+            disk_low=self._disk.low,
+            free_mib=None
+            if self._disk.last_free_bytes is None
+            else round(self._disk.last_free_bytes / _MIB, 1),
         )
 
+    # -- reload -------------------------------------------------------------------------
+
     def _do_reload(self) -> None:
+        """Re-read the config file; apply it whole or refuse it whole, then reopen logs."""
         self._reload.clear()
         source = self.config.source
         self._notifier.notify("RELOADING=1", f"MONOTONIC_USEC={time.monotonic_ns() // 1000}")
@@ -246,14 +865,33 @@ class Service:
             if source is None:
                 raise ConfigError(None, "<config>", "the running config has no file to reload")
             new = load_config(source)
+            if new.logging != self.config.logging:
+                configure_logging(
+                    level=new.logging.level,
+                    console=new.logging.console,
+                    json_file=new.logging.json_file,
+                )
         except ConfigError as error:
-            self._log.error("config_reload_refused", problem=str(error))
+            self._log.error("config_reload_refused", file=str(source), problem=str(error))
+            reopen_log_files()
         else:
-            self.watcher.stop()
-            self.pipeline.close()
-            self.config = new
-            self.pipeline, self.watcher = self._build(new)
-            self.watcher.start()
+            self._apply_config(new)
+            reopen_log_files()
             self._log.info("config_reloaded", file=str(source))
-        reopen_log_files()
         self._notifier.notify("READY=1", f"STATUS={self._status_text()}")
+
+    def _apply_config(self, new: Config) -> None:
+        old = self.config
+        self.config = new
+        interval = self._notifier.watchdog_interval_s
+        self._ping_period_s = interval / 2 if interval and new.service.watchdog else None
+        self._disk = self._new_disk_guard(new, low=self._disk.low)
+        if (old.paths.watch_root, old.watch) != (new.paths.watch_root, new.watch):
+            self._restart_watcher(new)
+        self._close_pipeline()
+        if self._outage is None:
+            try:
+                self._new_pipeline(new)
+            except OSError as exc:
+                self._begin_outage(f"building the pipeline failed: {exc}")
+        self._check_resources(force=True)

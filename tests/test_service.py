@@ -1,0 +1,456 @@
+"""The service: disk guard, resource failures, signals and journald logs of the daemon.
+
+The disk guard is tested alone and inside an in-process :class:`Service` with an injected
+free-space function; signals, reload, output failures, a missing watch root and journald
+logs are tested against the real daemon process (``strayline run``).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import re
+import shutil
+import signal
+import subprocess
+import time
+from pathlib import Path
+from typing import Any
+
+import h5py
+import pytest
+import yaml
+
+import demo_stream as ds
+from strayline.alerts import read_alert_log
+from strayline.config import load_config
+from strayline.service import DiskGuard, Service, free_disk_bytes
+from tests._daemon import (
+    NotifyListener,
+    committed_keys,
+    json_records,
+    ledger_events,
+    pending_lines,
+    start_daemon_with,
+    wait_until,
+    write_config,
+)
+
+
+def _config(folder: Path, **sections: Any) -> Path:
+    """The test daemon config without scan products (they are not under test here and
+    cost seconds per finished scan)."""
+    return write_config(folder, products={"enabled": False}, **sections)
+
+
+MIB = 1024 * 1024
+
+
+def _scan(scan_id: str, n_lines: int, n_pixels: int = 32, seed: int = 11) -> ds.DemoConfig:
+    return ds.DemoConfig(n_lines=n_lines, n_pixels=n_pixels, seed=seed, scan_id=scan_id)
+
+
+def _write_scan(folder: Path, scan_id: str, n_lines: int, truth: Path, **kw: int) -> None:
+    ds.run_scan(_scan(scan_id, n_lines, **kw), folder, truth, pace_s=0.0)
+
+
+def _raw_lines(store: Path) -> set[int]:
+    """Line indices with stored raw spectra (forward trace)."""
+    raw = store / "raw" / "forward"
+    return {int(p.name) for p in raw.iterdir() if p.name.isdigit()} if raw.is_dir() else set()
+
+
+def _events(log: Path, name: str) -> list[dict[str, object]]:
+    return [r for r in json_records(log) if r.get("event") == name]
+
+
+# ------------------------------------------------------------------ the disk guard alone
+
+
+class _FakeClock:
+    def __init__(self) -> None:
+        self.now_s = 1000.0
+
+    def __call__(self) -> float:
+        return self.now_s
+
+
+def test_disk_guard_raises_once_and_clears_above_the_hysteresis(tmp_path: Path) -> None:
+    """Below the floor the guard turns low once; it stays low (no second event) until free
+    space exceeds the floor plus max(10 %, 64 MiB) (hysteresis against flapping: common
+    practice)."""
+    free = {"bytes": 5000 * MIB}
+    clock = _FakeClock()
+    guard = DiskGuard(
+        tmp_path, 1024 * MIB, free_bytes=lambda _p: free["bytes"], clock=clock, interval_s=5.0
+    )
+    seen = []
+    for free_mib in (5000, 1000, 900, 1030, 1100, 1200):
+        free["bytes"] = free_mib * MIB
+        clock.now_s += 5.0
+        seen.append(guard.check())
+    # clear threshold: 1024 + max(102.4, 64) MiB = 1126.4 MiB
+    assert seen == [None, "raised", None, None, None, "cleared"]
+    assert guard.clear_bytes == 1024 * MIB + (1024 * MIB) // 10
+    assert guard.last_free_bytes == 1200 * MIB
+
+
+def test_disk_guard_looks_at_the_disk_at_most_once_per_interval(tmp_path: Path) -> None:
+    """Checks within the interval do not call the free-space function (cheap checks)."""
+    calls = []
+    clock = _FakeClock()
+
+    def free(path: Path) -> int:
+        calls.append(path)
+        return 10_000 * MIB
+
+    guard = DiskGuard(tmp_path, MIB, free_bytes=free, clock=clock, interval_s=5.0)
+    for _ in range(10):
+        guard.check()
+        clock.now_s += 1.0
+    assert len(calls) == 2  # at t = 0 s and t = 5 s
+    guard.check(force=True)
+    assert len(calls) == 3
+
+
+def test_disk_guard_measures_the_nearest_existing_folder_and_ignores_errors(
+    tmp_path: Path,
+) -> None:
+    """A missing output root is measured on its closest existing ancestor (the disk it will
+    be created on); a free-space function that fails changes nothing."""
+    asked: list[Path] = []
+
+    def free(path: Path) -> int:
+        asked.append(path)
+        if len(asked) > 1:
+            raise PermissionError(13, "Permission denied", str(path))
+        return 0
+
+    guard = DiskGuard(tmp_path / "not" / "yet", MIB, free_bytes=free)
+    assert guard.check(force=True) == "raised"
+    assert asked == [tmp_path]
+    assert guard.check(force=True) is None
+    assert guard.low
+    assert guard.last_error is not None
+    assert "Permission denied" in guard.last_error
+
+
+def test_free_disk_bytes_agrees_with_shutil_disk_usage(tmp_path: Path) -> None:
+    """free_disk_bytes is the space free to unprivileged users, as Python's
+    shutil.disk_usage reports it (statvfs f_bavail × f_frsize, Python docs)."""
+    reference = shutil.disk_usage(tmp_path).free
+    # Other processes write meanwhile: allow 64 MiB of drift between the two reads.
+    assert abs(free_disk_bytes(tmp_path) - reference) < 64 * MIB
+
+
+# ------------------------------------------------------------------ in-process service
+
+
+def test_low_disk_stops_raw_spectra_then_restores_them(tmp_path: Path) -> None:
+    """With free space below service.min_free_disk_mib the service raises one critical
+    disk_space_low alert and stores no raw spectra (maps still written); when space
+    returns it clears the alert once and stores raw spectra again (injected free-space
+    function and clock)."""
+    config_path = _config(
+        tmp_path,
+        store={"raw_spectra": True},
+        service={"min_free_disk_mib": 1024.0},
+        logging={"console": "off"},
+    )
+    config = load_config(config_path)
+    incoming = tmp_path / "incoming"
+    _write_scan(incoming, "disk-a", 3, tmp_path / "truth")
+    free = {"bytes": 100 * MIB}
+    clock = _FakeClock()
+    store_a = tmp_path / "output" / "disk-a.zarr"
+    store_b = tmp_path / "output" / "disk-b.zarr"
+    phase = {"b_written": False}
+    started = time.monotonic()
+
+    def stop_when() -> bool:
+        assert time.monotonic() - started < 60, "the service did not get there in 60 s"
+        if not phase["b_written"] and len(committed_keys(store_a)) == 3:
+            free["bytes"] = 50_000 * MIB
+            clock.now_s += 10.0  # the next resource check is due
+            _write_scan(incoming, "disk-b", 3, tmp_path / "truth")
+            phase["b_written"] = True
+        return len(committed_keys(store_b)) == 3
+
+    service = Service(config, stop_when=stop_when, free_bytes=lambda _p: free["bytes"], clock=clock)
+    assert service.run() == 0
+    assert _raw_lines(store_a) == set()
+    assert _raw_lines(store_b) == {0, 1, 2}
+    events = [e for e in read_alert_log(config.paths.alert_log) if e.rule == "disk_space_low"]
+    assert [(e.state, e.severity) for e in events] == [
+        ("raised", "critical"),
+        ("cleared", "critical"),
+    ]
+    assert "100 MiB, below service.min_free_disk_mib = 1024 MiB" in events[0].message
+    assert events[0].seen_value == pytest.approx(100.0)
+    assert events[0].seen_unit == "MiB"
+
+
+def test_chunks_left_in_a_deleted_store_are_set_aside_and_the_scan_rebuilt(
+    tmp_path: Path,
+) -> None:
+    """When a scan's store folder is deleted while open and a folder of stray chunks (no
+    zarr.json, no ledger) appears at its path, the service raises output_unavailable,
+    renames that folder to a hidden .<name>.orphaned-<time> (never deletes it), creates
+    the store afresh and rebuilds the whole scan from the line files (common practice:
+    keep what you cannot explain, recompute what you can)."""
+    config = load_config(_config(tmp_path, logging={"console": "off"}))
+    incoming, output, stage = tmp_path / "incoming", tmp_path / "output", tmp_path / "stage"
+    _write_scan(stage, "ghost", 8, tmp_path / "truth")
+    _move_lines(stage, incoming, "ghost", range(4))
+    store = output / "ghost.zarr"
+    started = time.monotonic()
+    phase = {"deleted": False}
+
+    def stop_when() -> bool:
+        assert time.monotonic() - started < 60, "the service did not get there in 60 s"
+        if not phase["deleted"] and len(committed_keys(store)) == 4:
+            output.rename(tmp_path / "output.gone")
+            stray = store / "forward" / "field_nv_t" / "c"
+            stray.mkdir(parents=True)
+            (stray / "9").write_bytes(b"chunk written after the store was deleted")
+            _move_lines(stage, incoming, "ghost", range(4, 8))
+            phase["deleted"] = True
+        return phase["deleted"] and len(committed_keys(store)) == 8
+
+    assert Service(config, stop_when=stop_when).run() == 0
+    aside = sorted(output.glob(".ghost.zarr.orphaned-*"))
+    assert len(aside) == 1
+    assert (aside[0] / "forward" / "field_nv_t" / "c" / "9").is_file()
+    records = ledger_events(store)
+    assert pending_lines(records) == set()
+    commits = [(r["line_index"], r["direction"]) for r in records if r["event"] == "commit"]
+    assert sorted(commits) == [(i, "forward") for i in range(8)]
+    states = [
+        e.state for e in read_alert_log(config.paths.alert_log) if e.rule == "output_unavailable"
+    ]
+    assert states == ["raised", "cleared"]
+
+
+# ------------------------------------------------------------------ the real daemon
+
+
+def _start(config: Path, log: Path, **env: str) -> subprocess.Popen[bytes]:
+    with log.open("ab") as out:
+        return start_daemon_with(config, stdout=out, stderr=out, env=env)
+
+
+def _stop(proc: subprocess.Popen[bytes], timeout_s: float = 30.0) -> int:
+    if proc.poll() is None:
+        proc.send_signal(signal.SIGTERM)
+    return proc.wait(timeout=timeout_s)
+
+
+def _move_lines(stage: Path, incoming: Path, scan_id: str, lines: range) -> None:
+    """Rename staged line files into the watched scan folder (an atomic writer's way)."""
+    (incoming / scan_id).mkdir(parents=True, exist_ok=True)
+    for i in lines:
+        name = f"line_{i:05d}_fwd.h5"
+        (stage / scan_id / name).rename(incoming / scan_id / name)
+
+
+@pytest.mark.slow
+def test_sigterm_while_lines_flow_exits_0_with_no_half_written_line(tmp_path: Path) -> None:
+    """SIGTERM while lines stream in ends the daemon with exit code 0 within a few seconds,
+    the ledger holds no begun-but-uncommitted line, and a restart commits every remaining
+    line exactly once (the write-ahead ledger's promise; common practice)."""
+    config = _config(tmp_path)
+    proc = _start(config, tmp_path / "daemon.log")
+    store = tmp_path / "output" / "flow.zarr"
+    wait_until(lambda: "service_ready" in (tmp_path / "daemon.log").read_text(), proc, 30, "ready")
+    _write_scan(tmp_path / "incoming", "flow", 20, tmp_path / "truth")
+    wait_until(lambda: len(committed_keys(store)) >= 3, proc, 60, "3 lines")
+    sent = time.monotonic()
+    code = _stop(proc)
+    stop_s = time.monotonic() - sent
+    assert code == 0
+    assert stop_s < 10.0  # TimeoutStopSec of the unit is 90 s
+    records = ledger_events(store)
+    assert pending_lines(records) == set()
+    done_at_stop = len(committed_keys(store))
+    assert done_at_stop < 20, "all lines were done before SIGTERM: nothing was flowing"
+    assert _events(tmp_path / "output" / "strayline.log.jsonl", "service_stopped")
+
+    proc = _start(config, tmp_path / "daemon.log")
+    try:
+        wait_until(lambda: len(committed_keys(store)) == 20, proc, 90, "all 20 lines")
+    finally:
+        assert _stop(proc) == 0
+    records = ledger_events(store)
+    commits = [(r["line_index"], r["direction"]) for r in records if r["event"] == "commit"]
+    assert sorted(commits) == [(i, "forward") for i in range(20)]
+    assert [r for r in records if r["event"] == "reset"] == []  # nothing was left pending
+
+
+@pytest.mark.slow
+def test_sighup_applies_a_valid_config_reopens_logs_and_refuses_an_invalid_one(
+    tmp_path: Path,
+) -> None:
+    """SIGHUP with a changed valid config makes it take effect (raw spectra stored from
+    then on) and reopens the JSON log (records go to a new file at the configured path
+    after the old one was renamed); SIGHUP with an invalid config is refused with an
+    error naming the key, the previous config stays in force and lines keep flowing."""
+    log_file = tmp_path / "logs" / "strayline.jsonl"
+    config = _config(tmp_path, logging={"json_file": str(log_file)})
+    incoming, output = tmp_path / "incoming", tmp_path / "output"
+    proc = _start(config, tmp_path / "daemon.log")
+    try:
+        _write_scan(incoming, "hup-a", 3, tmp_path / "truth")
+        wait_until(lambda: len(committed_keys(output / "hup-a.zarr")) == 3, proc, 60, "scan a")
+        rotated = log_file.with_name("strayline.jsonl.1")
+        log_file.rename(rotated)
+        data = yaml.safe_load(config.read_text())
+        data["store"] = {"raw_spectra": True}
+        config.write_text(yaml.safe_dump(data), encoding="utf-8")
+        proc.send_signal(signal.SIGHUP)
+        wait_until(lambda: _events(log_file, "config_reloaded"), proc, 20, "reload")
+        _write_scan(incoming, "hup-b", 3, tmp_path / "truth")
+        wait_until(lambda: len(committed_keys(output / "hup-b.zarr")) == 3, proc, 60, "scan b")
+
+        data["store"] = {"raw_spectra": "sometimes"}
+        config.write_text(yaml.safe_dump(data), encoding="utf-8")
+        proc.send_signal(signal.SIGHUP)
+        wait_until(lambda: _events(log_file, "config_reload_refused"), proc, 20, "refusal")
+        _write_scan(incoming, "hup-c", 3, tmp_path / "truth")
+        wait_until(lambda: len(committed_keys(output / "hup-c.zarr")) == 3, proc, 60, "scan c")
+    finally:
+        code = _stop(proc)
+    assert code == 0
+    assert _raw_lines(output / "hup-a.zarr") == set()
+    assert _raw_lines(output / "hup-b.zarr") == {0, 1, 2}
+    assert _raw_lines(output / "hup-c.zarr") == {0, 1, 2}  # the valid config stayed
+    old_events = [r["event"] for r in json_records(rotated)]
+    assert "line_processed" in old_events
+    assert "config_reloaded" not in old_events
+    new_scans = {r.get("scan") for r in _events(log_file, "line_processed")}
+    assert new_scans == {"hup-b", "hup-c"}
+    refused = _events(log_file, "config_reload_refused")[0]
+    assert refused["level"] == "error"
+    assert "store.raw_spectra" in str(refused["problem"])
+    assert str(refused["file"]) == str(config)
+
+
+@pytest.mark.slow
+def test_output_failures_alert_once_hold_the_lines_and_lose_none(tmp_path: Path) -> None:
+    """When the output folder is replaced by a file the daemon raises one critical
+    output_unavailable alert, keeps the lines and retries with backoff; once the folder
+    is back every held line is written; when the output folder is deleted outright the
+    daemon recreates it and, listing the watch root again, rebuilds the whole scan. No
+    line is lost or committed twice, none is left half-written."""
+    log_file = tmp_path / "logs" / "strayline.jsonl"
+    config = _config(tmp_path, logging={"json_file": str(log_file)})
+    incoming, output, stage = tmp_path / "incoming", tmp_path / "output", tmp_path / "stage"
+    _write_scan(stage, "out", 16, tmp_path / "truth")
+    store = output / "out.zarr"
+    proc = _start(config, tmp_path / "daemon.log")
+    try:
+        _move_lines(stage, incoming, "out", range(6))
+        wait_until(lambda: len(committed_keys(store)) == 6, proc, 60, "6 lines")
+
+        # 1. The output folder is replaced by a plain file: nothing can be written.
+        output.rename(tmp_path / "output.away")
+        output.write_text("not a folder\n")
+        _move_lines(stage, incoming, "out", range(6, 10))
+        wait_until(lambda: _events(log_file, "output_unavailable"), proc, 20, "the alert")
+        time.sleep(2.0)  # a few retries fail meanwhile
+        assert len(committed_keys(tmp_path / "output.away" / "out.zarr")) == 6
+        output.unlink()
+        (tmp_path / "output.away").rename(output)
+        wait_until(lambda: len(committed_keys(store)) == 10, proc, 60, "held lines")
+        wait_until(lambda: _events(log_file, "output_recovered"), proc, 20, "recovery 1")
+
+        # 2. The output folder is deleted with everything in it (moved away first, as a
+        # recursive delete races the daemon's own writes).
+        output.rename(tmp_path / "output.trash")
+        shutil.rmtree(tmp_path / "output.trash", ignore_errors=True)
+        _move_lines(stage, incoming, "out", range(10, 16))
+        wait_until(lambda: len(_events(log_file, "output_recovered")) == 2, proc, 60, "rec. 2")
+        wait_until(lambda: len(committed_keys(store)) == 16, proc, 60, "the rebuilt scan")
+    finally:
+        code = _stop(proc)
+    assert code == 0
+    records = ledger_events(store)
+    assert pending_lines(records) == set()
+    commits = [(r["line_index"], r["direction"]) for r in records if r["event"] == "commit"]
+    assert sorted(commits) == [(i, "forward") for i in range(16)]
+    assert len(_events(log_file, "output_unavailable")) == 2  # one per outage
+    retried = _events(log_file, "output_retry_failed")
+    assert retried, "no retry was made while the folder was a file"
+    # The alert log lives below the output root: the second outage's pair is in it.
+    alerts = [e for e in read_alert_log(output / "alerts.jsonl") if e.rule == "output_unavailable"]
+    assert [(e.state, e.severity) for e in alerts] == [
+        ("raised", "critical"),
+        ("cleared", "critical"),
+    ]
+
+
+@pytest.mark.slow
+def test_a_missing_then_deleted_watch_root_is_waited_for(tmp_path: Path) -> None:
+    """A watch root missing at start is reported in STATUS and waited for; lines written
+    once it exists are processed, and so are lines written after it was deleted and
+    created again mid-run."""
+    config = _config(tmp_path)
+    incoming, output = tmp_path / "incoming", tmp_path / "output"
+    incoming.rmdir()
+    listener = NotifyListener(tmp_path)
+    with (tmp_path / "daemon.log").open("wb") as log:
+        proc = start_daemon_with(
+            config, stdout=log, stderr=log, env={"NOTIFY_SOCKET": str(listener.path)}
+        )
+    try:
+        listener.wait_for("READY", "1", timeout_s=30)
+        _write_scan(incoming, "root-a", 3, tmp_path / "truth")
+        wait_until(lambda: len(committed_keys(output / "root-a.zarr")) == 3, proc, 60, "a")
+        shutil.rmtree(incoming)
+        time.sleep(1.0)  # the watcher notices and disarms
+        _write_scan(incoming, "root-b", 3, tmp_path / "truth")
+        wait_until(lambda: len(committed_keys(output / "root-b.zarr")) == 3, proc, 60, "b")
+    finally:
+        code = _stop(proc)
+        listener.close()
+    assert code == 0
+    ready = next(m for _, m in listener.snapshot() if m.startswith("READY=1"))
+    assert f"waiting for watch root {incoming}" in ready
+
+
+@pytest.mark.slow
+def test_under_journald_console_lines_carry_priority_prefixes(tmp_path: Path) -> None:
+    """With $JOURNAL_STREAM naming the daemon's stderr (device:inode) the console log is one
+    line per record, each starting with its sd-daemon priority prefix: <6> for info,
+    <4> for a quarantined file's warning (sd-daemon(3); systemd.exec(5) for
+    $JOURNAL_STREAM)."""
+    config = _config(tmp_path, logging={"console": "auto"}, alerts={"console": False})
+    incoming = tmp_path / "incoming"
+    stderr_path = tmp_path / "stderr.txt"
+    with stderr_path.open("wb") as err:
+        st = os.fstat(err.fileno())
+        proc = start_daemon_with(
+            config,
+            stdout=subprocess.DEVNULL,
+            stderr=err,
+            env={"JOURNAL_STREAM": f"{st.st_dev}:{st.st_ino}"},
+        )
+    try:
+        _write_scan(incoming, "jrn", 3, tmp_path / "truth")
+        bad = incoming / "jrn" / "line_00007_fwd.h5"
+        with h5py.File(bad, "w") as h5:  # opens as HDF5, breaks the line-file contract
+            h5.attrs["format"] = "something else"
+        store = tmp_path / "output" / "jrn.zarr"
+        wait_until(lambda: len(committed_keys(store)) == 3, proc, 60, "3 lines")
+        wait_until(lambda: "line_quarantined" in stderr_path.read_text(), proc, 30, "quarantine")
+    finally:
+        code = _stop(proc)
+    assert code == 0
+    lines = stderr_path.read_text().splitlines()
+    assert lines
+    pattern = re.compile(r"^<[0-7]>[a-z_]+( |$)")
+    assert [x for x in lines if not pattern.match(x)] == []
+    assert any(x.startswith("<6>service_ready ") for x in lines)
+    assert sum(x.startswith("<6>line_processed ") for x in lines) == 3
+    assert any(x.startswith("<4>line_quarantined ") for x in lines)
+    assert not any(re.search(r"\d{4}-\d\d-\d\dT\d\d:\d\d", x.split(" ")[0]) for x in lines)
+    json.dumps(lines)  # plain text, nothing binary
