@@ -708,3 +708,31 @@ def test_seeded_rows_of_a_backward_trace_follow_its_acquisition_order(
         _seed_tracker(seeded, store, forward3)
     for key in ("field_nv_t", "center_mean_hz", "pl_per_s", "x_m"):
         np.testing.assert_array_equal(seeded.seeded["backward"][key], expected[key], err_msg=key)
+
+
+def test_only_a_few_scans_stay_open(scan_files: Path, tmp_path: Path) -> None:
+    """Lines of more scans than MAX_OPEN_SCANS close the least recently used stores (no
+    descriptor per scan for the daemon's lifetime), and progress of closed scans is kept."""
+    from strayline.pipeline import MAX_OPEN_SCANS
+
+    config = _config(tmp_path)
+    pipeline = LinePipeline(config)
+    n_scans = MAX_OPEN_SCANS + 2
+    try:
+        for k in range(n_scans):
+            folder = tmp_path / "incoming" / f"scan-{k}"
+            ds.run_scan(
+                ds.DemoConfig(scene=ds.labyrinth(), n_lines=2, n_pixels=16, scan_id=f"scan-{k}"),
+                tmp_path / "incoming",
+                tmp_path / f"truth-{k}",
+            )
+            assert pipeline.process(folder / "line_00000_fwd.h5").kind == "written"
+        assert pipeline.statistics().scans_open == MAX_OPEN_SCANS
+        progress = pipeline.scan_progress()
+        assert progress == {f"scan-{k}": (1, 2) for k in range(n_scans)}
+        # A late line of the first (closed) scan reopens it.
+        late = tmp_path / "incoming" / "scan-0" / "line_00001_fwd.h5"
+        assert pipeline.process(late).kind == "written"
+        assert pipeline.scan_progress()["scan-0"] == (2, 2)
+    finally:
+        pipeline.close()

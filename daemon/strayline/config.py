@@ -180,7 +180,7 @@ class WatchSection(_Section):
 
     mode: Literal["native", "polling"] = "native"
     poll_interval_s: Seconds = 2.0
-    settle_s: Annotated[float, Field(ge=0)] = 2.0
+    settle_s: Annotated[float, Field(ge=0)] = 0.5
     give_up_s: Seconds = 600.0
     reconcile_interval_s: Seconds = 60.0
     pattern: Annotated[str, Field(min_length=1)] = "*.h5"

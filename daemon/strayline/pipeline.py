@@ -109,6 +109,17 @@ class PipelineStatistics:
     active_alerts: int
 
 
+#: Scans kept open at once: each holds its ledger's descriptor and lock. Older ones are
+#: closed (a late line reopens its scan), so a daemon running for weeks does not collect
+#: one descriptor per scan.
+MAX_OPEN_SCANS = 4
+
+
+def _progress(store: ScanStore) -> tuple[int, int]:
+    stats = store.statistics()
+    return stats.committed_forward + stats.committed_backward, stats.n_lines_planned
+
+
 def fit_model_from_config(config: Config) -> FitModel:
     """The :class:`FitModel` that ``config.fit`` asks for (SI units).
 
@@ -227,7 +238,8 @@ class LinePipeline:
         self._delivered_path = config.paths.state_dir / _DELIVERED_STATE
         self._delivered = _load_delivered(self._delivered_path)
         self._raw_spectra: bool | None = None  # None: as each scan's config says
-        self._scans: dict[str, _Scan] = {}
+        self._scans: dict[str, _Scan] = {}  # open scans, least recently used first
+        self._closed_progress: dict[str, tuple[int, int]] = {}
         self._counters = _Counters()
 
     # -- one file -----------------------------------------------------------------------
@@ -396,14 +408,10 @@ class LinePipeline:
         )
 
     def scan_progress(self) -> dict[str, tuple[int, int]]:
-        """Per open scan: (lines committed in this store, lines planned)."""
-        out = {}
+        """Per scan seen: (lines committed in its store, lines planned)."""
+        out = dict(self._closed_progress)
         for scan_id, scan in self._scans.items():
-            stats = scan.store.statistics()
-            out[scan_id] = (
-                stats.committed_forward + stats.committed_backward,
-                stats.n_lines_planned,
-            )
+            out[scan_id] = _progress(scan.store)
         return out
 
     def close(self) -> None:
@@ -502,12 +510,23 @@ class LinePipeline:
         return datetime.fromtimestamp(self._clock(), UTC)
 
     def _scan_for(self, line: ScanLine, path: Path) -> tuple[_Scan, tuple[AlertEvent, ...]]:
-        scan = self._scans.get(line.scan_id)
+        scan = self._scans.pop(line.scan_id, None)
         if scan is not None:
+            self._scans[line.scan_id] = scan  # most recently used last
             return scan, ()
         scan, events = self._open_scan(line, path)
         self._scans[line.scan_id] = scan  # registered only once complete
+        self._closed_progress.pop(line.scan_id, None)
+        while len(self._scans) > MAX_OPEN_SCANS:
+            self._close_scan(next(iter(self._scans)))
         return scan, events
+
+    def _close_scan(self, scan_id: str) -> None:
+        """Close a scan's store (its ledger descriptor and lock); its next line reopens it."""
+        scan = self._scans.pop(scan_id)
+        self._closed_progress[scan_id] = _progress(scan.store)
+        scan.store.close()
+        self._log.info("scan_closed", scan=scan_id)
 
     def _scan_config(
         self, line: ScanLine, path: Path

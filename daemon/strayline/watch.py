@@ -101,7 +101,7 @@ class WatchOptions:
 
     mode: Literal["native", "polling"] = "native"
     poll_interval_s: float = 2.0
-    settle_s: float = 2.0
+    settle_s: float = 0.5
     give_up_s: float = 600.0
     reconcile_interval_s: float = 60.0
     pattern: str = "*.h5"
