@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import dataclasses
 import errno
 import json
@@ -712,3 +713,19 @@ def test_a_backward_trace_is_stored_in_increasing_x(tmp_path: Path) -> None:
             )
     x = np.asarray(zarr.open_group(tmp_path / "scan7.zarr", mode="r")["backward/x"][:])
     np.testing.assert_array_equal(x, np.sort(X_M))
+
+
+def test_a_store_deleted_while_open_refuses_to_commit(tmp_path: Path) -> None:
+    """If the store's folder is removed while it is open, the next write raises StoreError
+    instead of committing into a deleted ledger nobody will read (common practice)."""
+    import shutil
+
+    store = open_store(tmp_path)
+    try:
+        store.write_line(*make_records(0))
+        shutil.rmtree(store.path)
+        with pytest.raises(StoreError, match="ledger"):
+            store.write_line(*make_records(1))
+    finally:
+        with contextlib.suppress(StoreError):
+            store.close()

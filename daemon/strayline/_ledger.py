@@ -296,6 +296,7 @@ class Ledger:
             for record in batch
         )
         try:
+            self._check_still_there()
             written = os.write(self._fd, payload)
             if written != len(payload):
                 raise OSError(f"short write: {written} of {len(payload)} bytes")
@@ -304,6 +305,17 @@ class Ledger:
             raise StoreError(f"{self.path}: appending to the ledger failed: {exc}") from exc
         for record in batch:
             self.state.apply(record)
+
+    def _check_still_there(self) -> None:
+        """Refuse to append to a ledger whose file was deleted or replaced (the store's
+        folder removed while open): the records would land nowhere anyone reads."""
+        mine = os.fstat(self._fd)
+        try:
+            theirs = os.stat(self.path)
+        except FileNotFoundError:
+            raise OSError(f"the ledger file is gone from {self.path}") from None
+        if mine.st_nlink == 0 or (mine.st_dev, mine.st_ino) != (theirs.st_dev, theirs.st_ino):
+            raise OSError(f"the ledger file at {self.path} was replaced")
 
     @property
     def closed(self) -> bool:
