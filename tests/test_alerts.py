@@ -307,3 +307,29 @@ def test_follow_alerts_prints_the_tail_then_new_events(tmp_path: Path) -> None:
         stop.set()
         worker.join(5)
     assert [json.loads(t)["line_index"] for t in out.getvalue().splitlines()] == [7]
+
+
+@pytest.mark.parametrize(
+    ("logging_console", "expected"),
+    [("plain", True), ("json", False), ("journald", False), ("off", False)],
+)
+def test_readable_alert_lines_only_on_a_plain_console(
+    tmp_path: Path, logging_console: str, expected: bool
+) -> None:
+    """The sink prints its readable alert line only when the console log is plain text, so
+    journald and JSON consoles keep one record per line (sd-daemon(3) priority prefixes)."""
+    from strayline.config import config_from_mapping
+
+    config = config_from_mapping(
+        {
+            "paths": {"watch_root": "in", "output_root": "out"},
+            "logging": {"console": logging_console},
+            "alerts": {"console": True},
+        },
+        base_dir=tmp_path,
+    )
+    sink = AlertSink.from_config(config)
+    try:
+        assert sink._console is expected
+    finally:
+        sink.close()

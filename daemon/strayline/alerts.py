@@ -95,6 +95,17 @@ def write_stop_request(path: Path, event: AlertEvent) -> None:
     write_text_atomic(path, json.dumps(payload, ensure_ascii=False, indent=2) + "\n")
 
 
+def _console_is_plain(mode: str) -> bool:
+    """The readable alert line goes only to a plain terminal console: under journald or
+    with JSON console records it would break one-record-per-line output, and the log's
+    own ``alert_raised``/``alert_cleared`` record already carries the event."""
+    from strayline.logs import detect_console_mode
+
+    if mode == "auto":
+        return detect_console_mode(sys.stderr) == "plain"
+    return mode == "plain"
+
+
 class AlertSink:
     """Delivers alert events; options are settled here, once.
 
@@ -156,7 +167,7 @@ class AlertSink:
         section = config.alerts
         return cls(
             config.paths.alert_log,
-            console=section.console,
+            console=section.console and _console_is_plain(config.logging.console),
             hook=section.hook,
             hook_timeout_s=section.hook_timeout_s,
             stop_request_file=section.stop_request_file,
