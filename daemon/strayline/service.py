@@ -22,7 +22,6 @@ The only module that talks to systemd and handles signals.
 from __future__ import annotations
 
 import faulthandler
-import os
 import signal
 import sys
 import threading
@@ -38,6 +37,19 @@ from typing import Literal
 import structlog
 
 from strayline._sdnotify import Notifier
+from strayline._service_guards import (
+    MIB,
+    RESOURCE_CHECK_INTERVAL_S,
+    RETRY_FIRST_S,
+    RETRY_MAX_S,
+    SERVICE_RULES,
+    UNREADABLE_ATTEMPTS,
+    DiskGuard,
+    Outage,
+    Unreadable,
+    exists,
+    free_disk_bytes,
+)
 from strayline._store_layout import LEDGER_FILE
 from strayline._watch_tree import LineNames, list_tree
 from strayline.config import Config, load_config
@@ -56,16 +68,6 @@ __all__ = [
     "watch_options_from_config",
 ]
 
-_MIB = 1024 * 1024
-#: Output folder and free space are looked at no more often than this, s.
-RESOURCE_CHECK_INTERVAL_S = 5.0
-#: First retry after an output failure, s; doubled after each failed retry up to the cap.
-RETRY_FIRST_S = 1.0
-RETRY_MAX_S = 60.0
-#: A line file that cannot be read (not a store failure) is retried this many times.
-UNREADABLE_ATTEMPTS = 6
-#: Rules of the alerts the service raises itself (the rule engine raises the others).
-SERVICE_RULES = ("disk_space_low", "output_unavailable")
 #: STATUS is re-sent at least this often even when unchanged, s.
 _STATUS_REFRESH_S = 10.0
 
@@ -129,132 +131,6 @@ def process_folder(config: Config, folder: Path) -> ProcessSummary:
     return _summarise(outcomes)
 
 
-# --------------------------------------------------------------------------- disk space
-
-
-def free_disk_bytes(folder: Path) -> int:
-    """Bytes an unprivileged writer may still use on the file system of ``folder``.
-
-    ``f_bavail * f_frsize`` from statvfs(3) (blocks free to non-root users times the
-    fundamental block size). Raises OSError if ``folder`` cannot be looked at.
-    """
-    st = os.statvfs(folder)
-    return st.f_bavail * st.f_frsize
-
-
-def _nearest_existing(folder: Path) -> Path:
-    """``folder`` or its closest existing ancestor (the disk it will be created on)."""
-    for candidate in (folder, *folder.parents):
-        if candidate.is_dir():
-            return candidate
-    return folder
-
-
-class DiskGuard:
-    """Free space of the output root against a floor, looked at every few seconds at most.
-
-    Parameters
-    ----------
-    folder : Path
-        The output root (measured on its closest existing ancestor while it is missing).
-    min_free_bytes : int
-        Below this the guard turns low.
-    free_bytes : callable, optional
-        ``free_bytes(folder) -> int`` (default :func:`free_disk_bytes`); tests inject one.
-    clock : callable returning float, optional
-        Monotonic seconds for the check interval.
-    interval_s : float
-        Looks at the disk no more often than this, s.
-    low : bool
-        Start in the low state (a guard rebuilt on reload keeps its predecessor's state).
-
-    Notes
-    -----
-    Hysteresis (common practice against flapping): once low, the guard clears only when
-    free space is back above ``min_free_bytes`` plus a tenth of it (at least 64 MiB).
-    """
-
-    def __init__(
-        self,
-        folder: Path,
-        min_free_bytes: int,
-        *,
-        free_bytes: Callable[[Path], int] = free_disk_bytes,
-        clock: Callable[[], float] = time.monotonic,
-        interval_s: float = RESOURCE_CHECK_INTERVAL_S,
-        low: bool = False,
-    ) -> None:
-        self.folder = Path(folder)
-        self.min_free_bytes = int(min_free_bytes)
-        self.clear_bytes = self.min_free_bytes + max(self.min_free_bytes // 10, 64 * _MIB)
-        self._free_bytes = free_bytes
-        self._clock = clock
-        self._interval_s = interval_s
-        self.low = low
-        self.last_free_bytes: int | None = None
-        self.last_error: str | None = None
-        self._next_s = -float("inf")
-
-    def check(self, *, force: bool = False) -> Literal["raised", "cleared"] | None:
-        """Look at the disk if due (or ``force``); return a change of state, else None.
-
-        A disk that cannot be looked at changes nothing (the folder check reports it).
-        """
-        now = self._clock()
-        if not force and now < self._next_s:
-            return None
-        self._next_s = now + self._interval_s
-        try:
-            free = int(self._free_bytes(_nearest_existing(self.folder)))
-        except OSError as exc:
-            self.last_error = f"{self.folder}: cannot read free space: {exc}"
-            return None
-        self.last_error = None
-        self.last_free_bytes = free
-        if not self.low and free < self.min_free_bytes:
-            self.low = True
-            return "raised"
-        if self.low and free >= self.clear_bytes:
-            self.low = False
-            return "cleared"
-        return None
-
-
-# --------------------------------------------------------------------------- the service
-
-
-@dataclass
-class _Outage:
-    """The output cannot be written: since when, why, and when to try again."""
-
-    reason: str
-    since_s: float
-    next_try_s: float
-    backoff_s: float
-    attempts: int = 0
-
-
-@dataclass
-class _Unreadable:
-    """A line file that could not be read (not a store failure), waiting for a retry."""
-
-    ready: ReadyFile
-    error: str
-    attempts: int
-    next_try_s: float
-
-
-def _exists(path: Path) -> bool:
-    """True unless ``path`` is certainly absent (any other error counts as present)."""
-    try:
-        path.stat()
-    except FileNotFoundError:
-        return False
-    except OSError:
-        return True
-    return True
-
-
 def _utc_now_text() -> str:
     return datetime.now(UTC).isoformat(timespec="milliseconds")
 
@@ -302,10 +178,10 @@ class Service:
         self._next_status_log_s = 0.0
         self._next_check_s = -float("inf")
         self._held: deque[ReadyFile] = deque()
-        self._unreadable: list[_Unreadable] = []
+        self._unreadable: list[Unreadable] = []
         self._unreadable_attempts: dict[Path, int] = {}
         self._undelivered: list[AlertEvent] = []
-        self._outage: _Outage | None = None
+        self._outage: Outage | None = None
         self._last_alert: AlertEvent | None = None
         self._last_scan_id: str | None = None
         self._raised: dict[str, AlertEvent] = {}  # service alerts raised, by rule
@@ -469,7 +345,7 @@ class Service:
         self._log.warning(
             "line_unreadable_retry", file=str(ready.path), error=str(exc), retry_in_s=delay
         )
-        self._unreadable.append(_Unreadable(ready, str(exc), attempts, self._clock() + delay))
+        self._unreadable.append(Unreadable(ready, str(exc), attempts, self._clock() + delay))
 
     def _requeue_unreadable(self) -> None:
         """Put unreadable files whose retry is due back in line."""
@@ -485,7 +361,7 @@ class Service:
         """The output cannot be written: alert once, close the pipeline, back off."""
         now = self._clock()
         if self._outage is None:
-            self._outage = _Outage(reason, now, now + RETRY_FIRST_S, RETRY_FIRST_S)
+            self._outage = Outage(reason, now, now + RETRY_FIRST_S, RETRY_FIRST_S)
             self._log.error("output_unavailable", reason=reason, held_files=len(self._held))
             self._deliver(
                 self._service_event(
@@ -588,7 +464,7 @@ class Service:
         for store in lost:
             try:
                 if not store.is_dir() or any(
-                    _exists(store / name) for name in (Path("zarr.json"), LEDGER_FILE)
+                    exists(store / name) for name in (Path("zarr.json"), LEDGER_FILE)
                 ):
                     continue
                 stamp = datetime.now(UTC).strftime("%Y%m%dT%H%M%SZ")
@@ -617,8 +493,8 @@ class Service:
 
     def _disk_low_raised(self) -> None:
         disk = self._disk
-        free_mib = (disk.last_free_bytes or 0) / _MIB
-        floor_mib = disk.min_free_bytes / _MIB
+        free_mib = (disk.last_free_bytes or 0) / MIB
+        floor_mib = disk.min_free_bytes / MIB
         self._log.error("disk_space_low", free_mib=round(free_mib, 1), floor_mib=floor_mib)
         if self.pipeline is not None:
             try:
@@ -637,14 +513,14 @@ class Service:
                 ),
                 advice=(
                     "free space on that disk or move finished scans away; raw spectra are "
-                    f"stored again above {disk.clear_bytes / _MIB:.0f} MiB free"
+                    f"stored again above {disk.clear_bytes / MIB:.0f} MiB free"
                 ),
                 seen=(free_mib, floor_mib, "MiB"),
             )
         )
 
     def _disk_low_cleared(self) -> None:
-        free_mib = (self._disk.last_free_bytes or 0) / _MIB
+        free_mib = (self._disk.last_free_bytes or 0) / MIB
         self._log.info("disk_space_recovered", free_mib=round(free_mib, 1))
         # A fresh pipeline stores raw spectra again wherever each scan's config asks.
         if self.pipeline is not None:
@@ -663,7 +539,7 @@ class Service:
                     "again; raw spectra are stored as configured"
                 ),
                 advice="",
-                seen=(free_mib, self._disk.min_free_bytes / _MIB, "MiB"),
+                seen=(free_mib, self._disk.min_free_bytes / MIB, "MiB"),
             )
         )
 
@@ -702,7 +578,7 @@ class Service:
         if "output_unavailable" in self._raised and self._outage is None:
             now = self._clock()
             reason = "raised by a previous run"
-            self._outage = _Outage(reason, now, now, RETRY_FIRST_S)
+            self._outage = Outage(reason, now, now, RETRY_FIRST_S)
 
     def _close_pipeline(self) -> None:
         pipeline, self.pipeline = self.pipeline, None
@@ -806,7 +682,7 @@ class Service:
                 f"retry {self._outage.attempts + 1}"
             )
         if self._disk.low:
-            free_mib = (self._disk.last_free_bytes or 0) / _MIB
+            free_mib = (self._disk.last_free_bytes or 0) / MIB
             parts.append(f"DISK LOW ({free_mib:.0f} MiB free): raw spectra off")
         watch = self.watcher.statistics()
         if not watch.watch_root_present:
@@ -851,7 +727,7 @@ class Service:
             disk_low=self._disk.low,
             free_mib=None
             if self._disk.last_free_bytes is None
-            else round(self._disk.last_free_bytes / _MIB, 1),
+            else round(self._disk.last_free_bytes / MIB, 1),
         )
 
     # -- reload -------------------------------------------------------------------------
