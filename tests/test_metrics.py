@@ -22,6 +22,7 @@ from strayline.metrics import (
     LineMetrics,
     MetricsOptions,
     MetricsTracker,
+    _pixel_median,
     line_metrics,
     line_rows,
 )
@@ -369,3 +370,114 @@ def test_narrow_common_mode_shift_is_found_where_the_field_stayed_put() -> None:
     m = line_metrics(*now, previous_rows=line_rows(*prev))
     assert m.center_mean_step == pytest.approx(3e6, rel=0.05)
     assert m.center_mean_step_range == (100, 106)
+
+
+# -- references for confirming a step -------------------------------------------------
+
+
+def _cm_lines(shifts: list[tuple[float, int, int]]) -> list[LineMetrics]:
+    """Metrics of consecutive forward lines, line k shifted by shifts[k] over [a, b)."""
+    tracker = MetricsTracker()
+    out = []
+    for k, (shift_hz, a, b) in enumerate(shifts):
+        rng = np.random.default_rng(100 + k)
+        cm = np.full(N, 2.8702e9) + rng.normal(0, 10e3, N)
+        cm[a:b] += shift_hz
+        out.append(tracker.update(*records(index=k, center_mean_hz=cm, seed=100 + k)))
+    return out
+
+
+def test_step_held_is_measured_over_the_previous_range_from_before_the_step() -> None:
+    """A 3 MHz common-mode shift over pixels 60–119 from line 4 on is still +3 MHz on line
+    5 against the median of lines 1–3 (held), and 0 when line 5 is back (common practice:
+    a tip event persists, a touch reverts, PHYSICS.md §7)."""
+    clean = [(0.0, 0, 0)] * 4
+    kept = _cm_lines([*clean, (3e6, 60, 120), (3e6, 60, 120)])
+    back = _cm_lines([*clean, (3e6, 60, 120), (0.0, 0, 0)])
+    assert kept[4].center_mean_step_range == (60, 120)
+    # 60 pixels of 10 kHz noise: the medians are good to a few kHz.
+    assert abs(kept[4].center_mean_step_ref - 3e6) < 20e3
+    assert abs(kept[5].center_mean_step_held - 3e6) < 20e3
+    assert abs(back[5].center_mean_step_held) < 20e3
+    assert math.isnan(kept[0].center_mean_step_held)
+
+
+def test_step_ref_is_near_zero_when_a_step_only_undoes_an_odd_previous_line() -> None:
+    """A line that is normal after one odd line steps by +3 MHz against that line but by
+    about 0 against the per-pixel median of the last three lines (common practice: a
+    median ignores one outlier)."""
+    lines = _cm_lines([(0.0, 0, 0)] * 3 + [(-3e6, 60, 120), (0.0, 0, 0)])
+    m = lines[4]
+    assert m.center_mean_step_range == (60, 120)
+    assert abs(m.center_mean_step - 3e6) < 20e3
+    assert abs(m.center_mean_step_ref) < 20e3
+
+
+def test_roughness_held_compares_with_the_reference_lines() -> None:
+    """Field roughness that falls from pixel 128 on and stays low gives a held log ratio
+    close to the step's own (the stray field decays as exp(−k d) with stand-off: Beardsley,
+    IEEE Trans. Magn. 25, 671 (1989); PHYSICS.md §4)."""
+    tracker = MetricsTracker()
+    x = np.arange(N)
+    ms = []
+    for k in range(6):
+        rng = np.random.default_rng(300 + k)
+        amp = np.full(N, 200e-6)
+        if k == 4:
+            amp[128:] = 50e-6
+        if k >= 5:
+            amp[:] = 50e-6
+        b = 2e-3 + amp * np.sin(2 * np.pi * (x + 0.7 * k) / 9.0) + rng.normal(0, 2e-6, N)
+        ms.append(tracker.update(*records(index=k, field_t=b, seed=300 + k)))
+    step = ms[4]
+    assert step.field_step_range is not None
+    assert abs(step.field_step_range[0] - 128) <= 2
+    # Amplitude ×1/4 → energy ×1/16: ln ratio ≈ −2.8 (the regulariser pulls it toward 0).
+    assert step.field_step < -1.5
+    assert 0.5 <= ms[5].field_step_held / step.field_step <= 2.0
+
+
+@settings(max_examples=60, deadline=None)
+@given(
+    st.lists(
+        st.lists(
+            st.one_of(st.floats(-1e9, 1e9, allow_nan=False), st.just(float("nan"))),
+            min_size=5,
+            max_size=5,
+        ),
+        min_size=1,
+        max_size=4,
+    )
+)
+def test_pixel_median_matches_numpy_nanmedian(rows: list[list[float]]) -> None:
+    """The per-pixel median of a few rows equals numpy's nanmedian wherever a pixel has a
+    finite value, and is NaN where it has none (reference: numpy.nanmedian)."""
+    a = np.array(rows, dtype=float)
+    got = _pixel_median(list(a))
+    has = np.isfinite(a).any(axis=0)
+    assert np.all(np.isnan(got[~has]))
+    if has.any():
+        want = np.nanmedian(a[:, has], axis=0)
+        np.testing.assert_allclose(got[has], want, rtol=1e-12, atol=1e-6)
+
+
+def test_seeding_the_last_lines_restores_the_references_exactly() -> None:
+    """A tracker seeded with the rows of the last four lines, oldest first, gives the next
+    line the same metrics, references and held values included, as a tracker that saw
+    every line (restart memory; common practice)."""
+    shifts = [(0.0, 0, 0)] * 4 + [(3e6, 60, 120), (3e6, 60, 120)]
+    continuous = _cm_lines(shifts)
+    seeded = MetricsTracker()
+    all_records = []
+    for k, (shift_hz, a, b) in enumerate(shifts):
+        rng = np.random.default_rng(100 + k)
+        cm = np.full(N, 2.8702e9) + rng.normal(0, 10e3, N)
+        cm[a:b] += shift_hz
+        all_records.append(records(index=k, center_mean_hz=cm, seed=100 + k))
+    for rec in all_records[1:5]:
+        seeded.seed("forward", line_rows(*rec))
+    got = seeded.update(*all_records[5]).numeric()
+    want = continuous[5].numeric()
+    for name in ("center_mean_step_ref", "center_mean_step_held", "field_step_held"):
+        assert got[name] == pytest.approx(want[name], nan_ok=True), name
+    assert abs(got["center_mean_step_held"] - 3e6) < 20e3

@@ -710,3 +710,143 @@ def test_zfs_drift_threshold_rises_with_what_the_sample_does_to_it() -> None:
     rules = RulesConfig(rules=[ZfsDriftSpec()])
     assert [e.state for e in run(Scene(n_lines=20, faults=[drift]), rules)] == ["raised"]
     assert run(Scene(n_lines=20, faults=[scatter, drift]), rules) == []
+
+
+# -- confirmation of a step against the reference from before it ---------------------------
+
+
+def _jump_metrics(k: int, **steps: object) -> LineMetrics:
+    """Line k of a forward scan: clean levels, small centre-mean steps unless given."""
+    rng = np.random.default_rng(500 + k)
+    values: dict[str, object] = {
+        "center_mean_step": float(rng.normal(0, 30e3)),
+        "center_mean_step_score": 2.0,
+        "center_mean_step_range": (0, 128),
+        "center_mean_step_first_pixel": 0,
+        "center_mean_step_ref": float(rng.normal(0, 30e3)),
+        "center_mean_step_held": float(rng.normal(0, 30e3)),
+        "field_step": float(rng.normal(0, 0.1)),
+        "field_step_range": (0, 128),
+        "field_step_first_pixel": 0,
+        "field_step_ref": float(rng.normal(0, 0.1)),
+        "field_step_held": float(rng.normal(0, 0.1)),
+    }
+    values.update(steps)
+    return LineMetrics(
+        scan_id="night-run",
+        line_index=k,
+        direction="forward",
+        n_lines_planned=24,
+        n_pixels=256,
+        end_time_s=T0.timestamp() + LINE_PERIOD_S * (k + 1),
+        pl_median_per_s=2e5,
+        pl_p10_per_s=1.9e5,
+        contrast_median=0.15,
+        fwhm_median_hz=8e6,
+        fit_failure_fraction=0.0,
+        field_median_t=3e-3,
+        field_spread_t=1e-4,
+        center_mean_median_hz=D_HZ,
+        chi2_red_median=1.0,
+        field_sigma_median_t=5e-6,
+        **values,  # type: ignore[arg-type]
+    )
+
+
+_STEP_AT_12 = {
+    "center_mean_step": 3e6,
+    "center_mean_step_score": 20.0,
+    "center_mean_step_range": (60, 120),
+    "center_mean_step_first_pixel": 60,
+    "center_mean_step_ref": 3e6,
+}
+
+
+def _jump_events(line_13: dict[str, object], line_12: dict[str, object] | None = None) -> list:
+    """Resonance-jump events of 20 lines: a step on line 12, line 13 as given."""
+    engine = RuleEngine(RulesConfig(rules=[ResonanceJumpSpec()]), clock=FakeClock())
+    events = []
+    for k in range(20):
+        extra = {12: line_12 or _STEP_AT_12, 13: line_13}.get(k, {})
+        events += engine.evaluate_line("night-run", _jump_metrics(k, **extra))
+    return events
+
+
+def test_a_step_that_persists_against_the_pre_step_reference_is_raised() -> None:
+    """A 3 MHz common-mode step on line 12 that line 13 still shows over the same pixels
+    against the lines before the step (+2.8 MHz) is raised on line 13 as a contact
+    (strain shifts D: Doherty et al., PRL 112, 047601 (2014), PHYSICS.md §7)."""
+    events = _jump_events({"center_mean_step_held": 2.8e6})
+    assert [(e.state, e.line_index) for e in events] == [("raised", 13)]
+    assert events[0].message.startswith("contact suspected")
+    assert events[0].pixel_range == (60, 120)
+
+
+@pytest.mark.parametrize("held_hz", [9e6, -3e6])
+def test_a_step_that_does_not_persist_is_not_raised(held_hz: float) -> None:
+    """A step on line 12 that line 13 shows neither kept (same sign, half to twice the
+    size) nor reverted (grown threefold, or changed sign: a feature moving on) raises
+    nothing (common practice: a tip event persists, PHYSICS.md §7)."""
+    assert _jump_events({"center_mean_step_held": held_hz}) == []
+
+
+def test_a_step_that_reverts_is_raised_as_a_touch_and_cleared() -> None:
+    """A step on line 12 that is gone on line 13 (the way back seen against line 12, and
+    about 0 against the lines before the step) is raised as a transient touch and cleared
+    on the next quiet line (common practice, PHYSICS.md §7)."""
+    back = {
+        "center_mean_step": -3e6,
+        "center_mean_step_score": 20.0,
+        "center_mean_step_range": (60, 120),
+        "center_mean_step_first_pixel": 60,
+        "center_mean_step_ref": 0.0,
+        "center_mean_step_held": 0.1e6,
+    }
+    events = _jump_events(back)
+    assert [(e.state, e.line_index) for e in events] == [("raised", 13), ("cleared", 14)]
+    assert events[0].message.startswith("sample touched (transient)")
+
+
+def test_a_step_that_only_undoes_an_odd_previous_line_is_not_a_step() -> None:
+    """A 3 MHz step against line 11 that is about 0 against the median of the last three
+    lines (line 11 was the odd one) is not taken as a step, even when line 13 keeps it
+    (common practice: a median ignores one outlier)."""
+    events = _jump_events(
+        {"center_mean_step_held": 3e6}, line_12={**_STEP_AT_12, "center_mean_step_ref": 0.2e6}
+    )
+    assert events == []
+
+
+def test_a_one_line_excursion_is_raised_from_its_way_back() -> None:
+    """A 3 MHz common-mode excursion of line 12 alone, too weak on its own (t = 6 < 8),
+    is raised as a transient touch on line 13, whose step back (t = 20) is about 0
+    against the lines before it, and cleared on line 14 (strain shifts D: Doherty et al.,
+    PRL 112, 047601 (2014), PHYSICS.md §7)."""
+    weak = {**_STEP_AT_12, "center_mean_step_score": 6.0}
+    back = {
+        "center_mean_step": -3e6,
+        "center_mean_step_score": 20.0,
+        "center_mean_step_range": (62, 118),
+        "center_mean_step_first_pixel": 62,
+        "center_mean_step_ref": 0.05e6,
+    }
+    events = _jump_events(back, line_12=weak)
+    assert [(e.state, e.line_index) for e in events] == [("raised", 13), ("cleared", 14)]
+    assert events[0].message.startswith("sample touched (transient): the step at line 12")
+    assert events[0].pixel_range == (60, 120)
+
+
+def test_a_roughness_step_that_comes_and_goes_is_not_raised() -> None:
+    """Field roughness that halves from pixel 128 on line 12 and is back on line 13 (held
+    about 0) raises nothing: a stand-off change does not spring back within a line, and a
+    touch shows in the common mode (PHYSICS.md §7; common practice)."""
+    step = {
+        "field_step": -1.5,
+        "field_step_range": (128, 256),
+        "field_step_first_pixel": 128,
+        "field_step_ref": -1.4,
+    }
+    assert _jump_events({"field_step_held": 0.1}, line_12=step) == []
+    held = _jump_events({"field_step_held": -1.3}, line_12=step)
+    assert [(e.state, e.line_index) for e in held] == [("raised", 13)]
+    assert held[0].message.startswith("stand-off change suspected")

@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable, Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any, Protocol
 
 from strayline._rules_spec import (
@@ -46,6 +46,10 @@ class Observation:
     """One detector's reading of one line.
 
     ``confidence_z`` is a robust z-score: (value − baseline median) / baseline spread.
+    ``run_lines``: when set, the number of lines in a row (this one included) the raise
+    condition is known to have held, replacing the engine's count: 1 when the lines
+    counted so far were about something that did not hold, 2 when this line confirms
+    what the previous one showed.
     """
 
     raise_cond: bool
@@ -59,6 +63,7 @@ class Observation:
     confidence_z: float | None = None
     pixel_range: tuple[int, int] | None = None
     clear_message: str = ""
+    run_lines: int | None = None
 
 
 Detector = Callable[[LineMetrics, BaselineView, dict[str, Any]], Observation | None]
@@ -260,37 +265,102 @@ _CHANNELS = (
 )
 
 
-def _flagged(spec: ResonanceJumpSpec, m: LineMetrics, base: BaselineView) -> dict[str, Any]:
-    thresholds = {
-        "pl": spec.pl_step_fraction_above,
-        "center_mean": spec.center_mean_step_hz_above,
-        "field": spec.field_step_log_ratio_above,
-    }
-    out: dict[str, Any] = {}
+_THRESHOLD_FIELD = {
+    "pl": "pl_step_fraction_above",
+    "center_mean": "center_mean_step_hz_above",
+    "field": "field_step_log_ratio_above",
+}
+# Channels a touched sample steps and then reverts: contact strain shifts D (common mode)
+# and may dim the PL; a stand-off that springs back within one line is not modelled.
+_TRANSIENT_CHANNELS = ("pl", "center_mean")
+
+
+def _steps(
+    spec: ResonanceJumpSpec, m: LineMetrics, base: BaselineView
+) -> tuple[dict[str, Any], dict[str, Any], dict[str, Any]]:
+    """(flagged, undoing, seen): channels that step and are credible; channels that step
+    but only undo the previous line (about 0 against the reference of the last lines);
+    every channel with a step value (for the next line's look back)."""
+    flagged: dict[str, Any] = {}
+    undoing: dict[str, Any] = {}
+    seen: dict[str, Any] = {}
     for ch, _unit, _what in _CHANNELS:
         v = float(getattr(m, f"{ch}_step"))
         rng = getattr(m, f"{ch}_step_range")
         st = base.stats(f"{ch}_step")
         if not math.isfinite(v) or rng is None or st is None:
             continue
-        thr = thresholds[ch]
+        thr = float(getattr(spec, _THRESHOLD_FIELD[ch]))
         z = _z(v, st[0], st[1], 0.1 * thr)
         if ch == "center_mean":
             score = float(m.center_mean_step_score)
             steps = abs(v) >= thr and score >= spec.center_mean_step_t_above
         else:
             steps = abs(v) >= thr and abs(z) >= spec.z_above
-        if steps:
-            out[ch] = {
-                "value": v,
-                "range": [int(rng[0]), int(rng[1])],
-                "first": int(getattr(m, f"{ch}_step_first_pixel")),
-                "z": z,
-                "ratio": abs(v) / thr,
-                "median": st[0],
-                "spread": st[1],
-            }
-    return out
+        entry = {
+            "value": v,
+            "range": [int(rng[0]), int(rng[1])],
+            "first": int(getattr(m, f"{ch}_step_first_pixel")),
+            "z": z,
+            "ratio": abs(v) / thr,
+            "median": st[0],
+            "spread": st[1],
+        }
+        seen[ch] = entry
+        # Against the reference of the last few lines the range must show the step too
+        # (same sign, comparable size), or the "step" only undoes an odd previous line.
+        ref = float(getattr(m, f"{ch}_step_ref"))
+        credible = not math.isfinite(ref) or (
+            ref * v > 0 and abs(ref) >= spec.hold_fraction * abs(v)
+        )
+        if steps and credible:
+            flagged[ch] = entry
+        elif steps:
+            undoing[ch] = entry
+    return flagged, undoing, seen
+
+
+def _excursion(
+    spec: ResonanceJumpSpec, m: LineMetrics, undoing: Mapping[str, Any], last: Any
+) -> dict[str, Any] | None:
+    """A one-line excursion of the previous line, seen from its way back.
+
+    The current line steps (past the thresholds) back to the reference of the last lines
+    over pixels where the previous line of the same direction stepped the other way, by
+    at least ``hold_fraction`` of this step and past the size threshold: the previous
+    line departed and returned, as a touched sample does. Returns the pending record of
+    that previous line (already reverted), or None.
+    """
+    if not undoing or not isinstance(last, Mapping):
+        return None
+    if last.get("direction") != m.direction or last.get("line") != m.line_index - 1:
+        return None
+    out: dict[str, Any] = {}
+    for ch in _TRANSIENT_CHANNELS:
+        now, before = undoing.get(ch), last["seen"].get(ch)
+        if now is None or before is None:
+            continue
+        v, p = float(now["value"]), float(before["value"])
+        thr = float(getattr(spec, _THRESHOLD_FIELD[ch]))
+        if (
+            v * p < 0
+            and abs(p) >= max(spec.hold_fraction * abs(v), thr)
+            and _overlap(now["range"], before["range"])
+        ):
+            out[ch] = before
+    if not out:
+        return None
+    primary = max(out, key=lambda c: out[c]["ratio"])
+    pending: dict[str, Any] = {
+        "line": m.line_index - 1,
+        "direction": m.direction,
+        "channels": out,
+        "primary": primary,
+        "reverted_at": m.line_index,
+        "confirmed": True,
+    }
+    pending["verdict"] = _jump_verdict(spec, pending, m.line_index)
+    return pending
 
 
 def _overlap(a: list[int], b: list[int]) -> bool:
@@ -310,6 +380,42 @@ def _reverts(pending: Mapping[str, Any], m: LineMetrics) -> bool:
         if back and _overlap([int(rng[0]), int(rng[1])], old["range"]):
             return True
     return False
+
+
+def _hold(spec: ResonanceJumpSpec, pending: Mapping[str, Any], m: LineMetrics) -> str:
+    """How the line after a step relates to it: "held", "reverted", "unconfirmed" or
+    "unknown" (no measurement against the reference from before the step).
+
+    Judged per stepped channel on ``{ch}_step_held`` (this line over the step's range
+    against the reference from before the step): held when one channel keeps the sign
+    and a size within [h, 1/h] of the step; reverted when every measured channel is
+    back below (1 − h) of it (h = ``hold_fraction``) and one of them is a channel a
+    touch reverts (PL, common mode: a roughness change that comes and goes within a line
+    is no touch and is not confirmed). A line of the other direction, or not right after
+    the step, has no such measurement ("unknown"; see :func:`_confirm`).
+    """
+    h = spec.hold_fraction
+    same = m.direction == pending.get("direction", m.direction)
+    seen: list[str] = []
+    for ch, old in pending["channels"].items():
+        held = float(getattr(m, f"{ch}_step_held"))
+        if not same or m.line_index != pending["line"] + 1 or not math.isfinite(held):
+            continue
+        v = float(old["value"])
+        ratio = held / v if v != 0 else math.nan
+        if h <= ratio <= 1.0 / h:
+            return "held"
+        if abs(ratio) >= 1.0 - h:
+            seen.append("unconfirmed")
+        elif ch in _TRANSIENT_CHANNELS:
+            seen.append("reverted")
+        else:
+            seen.append("gone")
+    if not seen:
+        return "unknown"
+    if "unconfirmed" in seen or "reverted" not in seen:
+        return "unconfirmed"
+    return "reverted"
 
 
 def _jump_verdict(
@@ -333,11 +439,79 @@ def _jump_verdict(
     return f"stand-off change suspected: field roughness changed by {change:+.0%}"
 
 
+def _new_pending(
+    spec: ResonanceJumpSpec,
+    m: LineMetrics,
+    flagged: dict[str, Any],
+    memo: dict[str, Any],
+    *,
+    fresh: bool,
+) -> Observation:
+    primary = max(flagged, key=lambda c: flagged[c]["ratio"])
+    pending: dict[str, Any] = {
+        "line": m.line_index,
+        "direction": m.direction,
+        "channels": flagged,
+        "primary": primary,
+        "reverted_at": None,
+    }
+    verdict = _jump_verdict(spec, pending, None)
+    pending["verdict"] = verdict
+    memo["pending"] = pending
+    obs = _jump_obs(pending, m, raise_cond=True, clear_cond=False, clear_now=False, text=verdict)
+    return replace(obs, run_lines=1) if fresh else obs
+
+
+def _confirm(
+    spec: ResonanceJumpSpec,
+    pending: dict[str, Any],
+    m: LineMetrics,
+    flagged: dict[str, Any],
+    memo: dict[str, Any],
+) -> Observation:
+    """The line after a flagged step: raise on (held or reverted), or drop the step."""
+    hold = _hold(spec, pending, m)
+    if hold == "unknown":
+        # No measurement against the reference from before the step: after a
+        # confirmation (persistence_lines > 2), or without a reference (a restart),
+        # the step holds unless it reverts; a trace of the other direction confirms it
+        # only by stepping the same way itself.
+        again = pending.get("confirmed") or (
+            m.direction == pending.get("direction", m.direction)
+            or any(
+                ch in flagged and flagged[ch]["value"] * old["value"] > 0
+                for ch, old in pending["channels"].items()
+            )
+        )
+        hold = "reverted" if _reverts(pending, m) else "held" if again else "unconfirmed"
+    if hold == "unconfirmed":
+        memo.pop("pending", None)
+        if flagged:
+            return _new_pending(spec, m, flagged, memo, fresh=True)
+        return _jump_obs(
+            pending,
+            m,
+            raise_cond=False,
+            clear_cond=False,
+            clear_now=False,
+            text=f"the step at line {pending['line']} did not persist",
+        )
+    pending["confirmed"] = True
+    reverted_at = m.line_index if hold == "reverted" else None
+    pending["verdict"] = _jump_verdict(spec, pending, reverted_at)
+    pending["reverted_at"] = reverted_at
+    return _jump_obs(
+        pending, m, raise_cond=True, clear_cond=False, clear_now=False, text=pending["verdict"]
+    )
+
+
 def _resonance_jump(spec: ResonanceJumpSpec) -> Detector:
     clear_when_quiet = spec.clear_when_quiet
 
     def detect(m: LineMetrics, base: BaselineView, memo: dict[str, Any]) -> Observation | None:
-        flagged = _flagged(spec, m, base)
+        flagged, undoing, seen = _steps(spec, m, base)
+        last = memo.get("last")
+        memo["last"] = {"line": m.line_index, "direction": m.direction, "seen": seen}
         pending = memo.get("pending")
         raised = memo.get("raised")
         if raised is not None:  # the engine has raised: look for recovery or more steps
@@ -380,28 +554,21 @@ def _resonance_jump(spec: ResonanceJumpSpec) -> Detector:
                 text=msg,
                 clear_message=msg,
             )
-        if pending is None:
-            if not flagged:
-                return None
-            primary = max(flagged, key=lambda c: flagged[c]["ratio"])
-            pending = {"line": m.line_index, "channels": flagged, "primary": primary}
-            pending["verdict"] = _jump_verdict(spec, pending, None)
-            pending["reverted_at"] = None
-            memo["pending"] = pending
-            return _jump_obs(
-                pending,
+        excursion = _excursion(spec, m, undoing, last)
+        if excursion is not None:  # the previous line departed and this one returned
+            memo["pending"] = excursion
+            obs = _jump_obs(
+                excursion,
                 m,
                 raise_cond=True,
                 clear_cond=False,
                 clear_now=False,
-                text=pending["verdict"],
+                text=excursion["verdict"],
             )
-        reverted_at = m.line_index if _reverts(pending, m) else None
-        pending["verdict"] = _jump_verdict(spec, pending, reverted_at)
-        pending["reverted_at"] = reverted_at
-        return _jump_obs(
-            pending, m, raise_cond=True, clear_cond=False, clear_now=False, text=pending["verdict"]
-        )
+            return replace(obs, run_lines=2)
+        if pending is None:
+            return _new_pending(spec, m, flagged, memo, fresh=False) if flagged else None
+        return _confirm(spec, pending, m, flagged, memo)
 
     return detect
 

@@ -126,6 +126,20 @@ class ResonanceJumpSpec(RuleSpec):
     mend itself, and the map after it is not comparable with the map before);
     ``clear_when_quiet: true`` clears it instead after ``clear_lines`` lines without a
     new step.
+
+    Confirmation: a channel steps only if its range, measured against the reference of
+    the last few lines (``{ch}_step_ref``), shows the same sign and at least
+    ``hold_fraction`` of the step (a step that merely undoes an odd previous line does
+    not). The line after a step confirms it when, over the same pixels and against the
+    reference from before the step (``{ch}_step_held``), a stepped channel still shows
+    the same sign and a size between ``hold_fraction`` and ``1 / hold_fraction`` of the
+    step (a tip event); or when every stepped channel is back below ``1 − hold_fraction``
+    of it, PL or the common mode among them (reverted: a touched sample). Anything else
+    (a feature that moved on, a shift that grew or changed sign, a roughness change that
+    came and went) is not confirmed and raises nothing. A line that steps back by the
+    thresholds to the reference, over pixels where the line before it stepped the other
+    way by at least ``hold_fraction`` of that and past the size threshold, raises that
+    one-line excursion as a touch at once.
     """
 
     name: str = Field(default="resonance_jump", pattern=r"^[a-z][a-z0-9_]*$")
@@ -141,6 +155,7 @@ class ResonanceJumpSpec(RuleSpec):
     center_mean_step_t_above: float = Field(default=8.0, gt=0.0)
     z_above: float = Field(default=5.0, gt=0.0)
     pl_drop_fraction_for_crash: float = Field(default=0.1, gt=0.0, lt=1.0)
+    hold_fraction: float = Field(default=0.5, gt=0.0, lt=1.0)
     advice: str = (
         "check the tip (approach, feedback, topography channel); the map after this "
         "line is not comparable with the map before it; consider stopping the scan"

@@ -22,6 +22,15 @@ acquisition order, for the pixel range that changed most against the previous li
   the roughness falls from the pixel where it happened; a wall that moves carries its
   roughness with it and leaves the sums unchanged.
 
+Confirmation against a reference: a step found against the previous line may be the
+previous line's oddity, or a sample feature that moved. The tracker therefore keeps the
+last few lines of each direction; the per-pixel median of ``reference_lines`` of them is a
+reference that one odd line cannot move. Each step range is measured again against the
+reference of the lines up to the previous one (``{ch}_step_ref``), and the next line is
+measured over that same range against the reference from *before* the step
+(``{ch}_step_held``): the rules raise a step only when it is still there, with the same
+sign and a comparable size (or when it has cleanly reverted: a touched sample).
+
 Acquisition order: forward lines are acquired toward increasing x, backward lines toward
 decreasing x, whatever order the arrays are stored in. Reported ranges are in storage
 indices, half-open, and ``*_step_first_pixel`` is the first pixel acquired in the range.
@@ -35,7 +44,8 @@ References
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+from collections import deque
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field, fields
 from types import MappingProxyType
 
@@ -73,6 +83,8 @@ ROW_KEYS = (
     "x_m",
 )
 
+_STEP_CHANNELS = ("pl", "center_mean", "field")
+
 _AUX_STATS = ("median", "p10", "p90", "min", "max", "spread")
 
 
@@ -84,6 +96,10 @@ class MetricsOptions:
     ----------
     change_sigma : float
         A pixel's field change counts as significant above this many 1σ of the difference.
+    reference_lines : int
+        Lines of the same direction whose per-pixel median forms the *reference* a step is
+        checked against (``{ch}_step_ref``, ``{ch}_step_held``): the median of three lines
+        ignores one odd line among them, the previous line included.
     min_step_pixels : int
         Smallest pixel range (and remainder of the line) the field-roughness step search
         considers (a roughness sum needs many pixels to be stable).
@@ -101,6 +117,7 @@ class MetricsOptions:
     """
 
     change_sigma: float = 5.0
+    reference_lines: int = 3
     min_step_pixels: int = 16
     min_level_pixels: int = 4
     common_mode_field_sigma: float = 2.0
@@ -135,6 +152,16 @@ class LineMetrics:
     ``{ch}_step_first_pixel`` (first acquired pixel of the range, -1 if none),
     ``{ch}_step_to_end`` (1.0 if the range runs to the end of the acquisition, else 0.0).
     ``pl_step_level_per_s``: median PL over the PL step range.
+
+    Against a *reference* (per pixel, the median of the last ``reference_lines`` lines of
+    the same direction before the line it is compared with; see module notes):
+    ``{ch}_step_ref``, the value of this line's own step range against the reference of
+    the lines up to the previous one (a step that only undoes an odd previous line is
+    near 0 here); ``{ch}_step_held``, the value of this line over the *previous* line's
+    step range against the reference of the lines before the previous one, i.e. from
+    before that step (a tip event keeps its value; a transient returns to 0; a feature
+    that moves on does not keep the same value over the same pixels). Same units as
+    ``{ch}_step``; NaN without a range or a reference.
 
     Timing: ``time_since_previous_s`` (end of this line − end of the line before, any
     direction).
@@ -181,6 +208,12 @@ class LineMetrics:
     field_step_range: tuple[int, int] | None = None
     field_step_first_pixel: int = -1
     field_step_to_end: float = float("nan")
+    pl_step_ref: float = float("nan")
+    pl_step_held: float = float("nan")
+    center_mean_step_ref: float = float("nan")
+    center_mean_step_held: float = float("nan")
+    field_step_ref: float = float("nan")
+    field_step_held: float = float("nan")
     aux_stats: Mapping[str, Mapping[str, float]] = field(
         default_factory=lambda: MappingProxyType({})
     )
@@ -331,6 +364,102 @@ def _aux_stats(line: ScanLine) -> dict[str, Mapping[str, float]]:
     return out
 
 
+def _pixel_median(stack: list[np.ndarray]) -> np.ndarray:
+    """Per-pixel median of the finite values of a few rows, NaN where none, shape (n,).
+
+    (``np.nanmedian`` without its warning on all-NaN columns.)
+    """
+    a = np.stack(stack)
+    n = a.shape[1]
+    count = np.isfinite(a).sum(axis=0)
+    ordered = np.sort(a, axis=0)  # NaN sorts last
+    lo = np.maximum((count - 1) // 2, 0)
+    hi = np.maximum(count // 2 - (count == 0), 0)
+    cols = np.arange(n)
+    return np.where(count > 0, 0.5 * (ordered[lo, cols] + ordered[hi, cols]), np.nan)
+
+
+def _range_against(
+    rows: Mapping[str, np.ndarray],
+    refs: Sequence[Mapping[str, np.ndarray]],
+    ranges: Mapping[str, tuple[int, int] | None],
+    eps_t2: float,
+) -> dict[str, float]:
+    """Value of each channel of ``rows`` over its given pixel range against ``refs``.
+
+    ``pl``: median over the range of ``PL / PL_ref − 1`` (clipped to ±1); ``center_mean``:
+    median of ``cm − cm_ref`` (Hz); ``field``: ``ln((E + ε) / (E_ref + ε))`` with ``E`` the
+    fast-axis roughness summed over the range and ``E_ref`` the median of the reference
+    lines' sums, ``ε = eps_t2`` (T²). The reference of the level channels is the per-pixel
+    median of ``refs``. Ranges are storage indices, half-open.
+    """
+    out: dict[str, float] = {}
+    n = rows["pl_per_s"].shape[0]
+    for ch, rng in ranges.items():
+        if rng is None or not refs:
+            continue
+        a, b = max(int(rng[0]), 0), min(int(rng[1]), n)
+        if b - a < 2:
+            continue
+        if ch == "field":
+            e_now = _roughness(rows["field_nv_t"][a:b], rows["field_nv_sigma_t"][a:b])
+            e_refs = [_roughness(r["field_nv_t"][a:b], r["field_nv_sigma_t"][a:b]) for r in refs]
+            ok = np.isfinite(e_now)
+            for e in e_refs:
+                ok &= np.isfinite(e)
+            if ok.sum() < 2 or not eps_t2 > 0:
+                continue
+            ref_sum = float(np.median([float(e[ok].sum()) for e in e_refs]))
+            out[ch] = float(np.log((float(e_now[ok].sum()) + eps_t2) / (ref_sum + eps_t2)))
+            continue
+        key = "pl_per_s" if ch == "pl" else "center_mean_hz"
+        ref = _pixel_median([r[key][a:b] for r in refs])
+        if ch == "pl":
+            with np.errstate(invalid="ignore", divide="ignore"):
+                change = np.clip(rows[key][a:b] / ref - 1.0, -1.0, 1.0)
+        else:
+            change = rows[key][a:b] - ref
+        out[ch] = _nanmedian(change)
+    return out
+
+
+def _reference_fields(
+    rows: Mapping[str, np.ndarray],
+    history: Sequence[Mapping[str, np.ndarray]],
+    own_ranges: Mapping[str, tuple[int, int] | None],
+    previous_ranges: Mapping[str, tuple[int, int] | None],
+    options: MetricsOptions,
+) -> dict[str, object]:
+    """``{ch}_step_ref`` and ``{ch}_step_held`` (see :class:`LineMetrics`).
+
+    ``history`` holds the rows of the lines of the same direction before this one, oldest
+    first, the previous line last; rows of another pixel count are ignored.
+    """
+    n = rows["pl_per_s"].shape[0]
+    hist = [h for h in history if h["pl_per_s"].shape[0] == n]
+    if not hist:
+        return {}
+    m = options.reference_lines
+    noise = 2.0 * _nanmedian(hist[-1]["field_nv_sigma_t"]) ** 2
+    noise = noise if np.isfinite(noise) else 0.0
+    out: dict[str, object] = {}
+    # Regulariser of the roughness ratio as in the step search: min_step_pixels times the
+    # larger of the reference line's mean roughness per pixel and the noise floor (T²).
+    for name, refs, ranges in (
+        ("ref", hist[-m:], own_ranges),
+        ("held", hist[:-1][-m:], previous_ranges),
+    ):
+        if not refs:
+            continue
+        e = _roughness(refs[-1]["field_nv_t"], refs[-1]["field_nv_sigma_t"])
+        finite = e[np.isfinite(e)]
+        mean_e = float(np.mean(finite)) if finite.size else 0.0
+        eps = max(mean_e, noise) * options.min_step_pixels
+        for ch, v in _range_against(rows, refs, ranges, eps).items():
+            out[f"{ch}_step_{name}"] = v
+    return out
+
+
 def _change_fields(
     rows: Mapping[str, np.ndarray],
     prev: Mapping[str, np.ndarray],
@@ -395,6 +524,8 @@ def line_metrics(
     previous_rows: Mapping[str, np.ndarray] | None = None,
     *,
     options: MetricsOptions | None = None,
+    older_rows: Sequence[Mapping[str, np.ndarray]] = (),
+    previous_ranges: Mapping[str, tuple[int, int] | None] | None = None,
 ) -> LineMetrics:
     """Compute the metrics of one line.
 
@@ -410,6 +541,13 @@ def line_metrics(
         line-to-line changes and steps. Ignored if its pixel count differs.
     options : MetricsOptions, optional
         Defaults to ``MetricsOptions()``.
+    older_rows : sequence of mappings, optional
+        :func:`line_rows` of the lines of the same direction before ``previous_rows``,
+        oldest first: with ``previous_rows`` they form the references of
+        ``{ch}_step_ref`` and ``{ch}_step_held``.
+    previous_ranges : mapping, optional
+        Step ranges (``{ch}_step_range`` by channel ``pl``, ``center_mean``, ``field``) of
+        the line ``previous_rows`` belongs to: where ``{ch}_step_held`` is measured.
 
     Returns
     -------
@@ -451,34 +589,53 @@ def line_metrics(
         values["time_since_previous_s"] = end_time_s - previous.end_time_s
     if previous_rows is not None:
         values.update(_change_fields(rows, previous_rows, line.direction, opts))
+        own = {ch: values.get(f"{ch}_step_range") for ch in _STEP_CHANNELS}
+        before = {
+            ch: None if previous_ranges is None else previous_ranges.get(ch)
+            for ch in _STEP_CHANNELS
+        }
+        history = [*older_rows, previous_rows]
+        values.update(_reference_fields(rows, history, own, before, opts))  # type: ignore[arg-type]
     return LineMetrics(**values)  # type: ignore[arg-type]
 
 
 class MetricsTracker:
-    """Keeps the previous line's metrics and, per direction, its rows; not thread-safe.
+    """Keeps the previous line's metrics and, per direction, its last rows; not thread-safe.
 
     ``update(line, fit, field)`` returns the line's metrics and remembers what the next
-    line needs. ``seed(...)`` restores the memory after a restart (rows from the store).
+    line needs: per direction, the rows of the last ``reference_lines + 1`` lines and the
+    metrics of the last line. ``seed(...)`` restores the memory after a restart (rows from
+    the store).
     One tracker per scan.
     """
 
     def __init__(self, options: MetricsOptions | None = None) -> None:
         self._options = options or MetricsOptions()
         self._previous: LineMetrics | None = None
-        self._rows: dict[str, dict[str, np.ndarray]] = {}
+        self._rows: dict[str, deque[dict[str, np.ndarray]]] = {}
+        self._ranges: dict[str, dict[str, tuple[int, int] | None]] = {}
+
+    def _history(self, direction: str) -> deque[dict[str, np.ndarray]]:
+        return self._rows.setdefault(direction, deque(maxlen=self._options.reference_lines + 1))
 
     def update(self, line: ScanLine, fit: LineFit, field: LineField) -> LineMetrics:
         """Metrics of ``line`` against the remembered previous lines; then remember it."""
+        history = self._history(line.direction)
         metrics = line_metrics(
             line,
             fit,
             field,
             self._previous,
-            self._rows.get(line.direction),
+            history[-1] if history else None,
             options=self._options,
+            older_rows=list(history)[:-1],
+            previous_ranges=self._ranges.get(line.direction),
         )
         self._previous = metrics
-        self._rows[line.direction] = line_rows(line, fit, field)
+        self._ranges[line.direction] = {
+            ch: getattr(metrics, f"{ch}_step_range") for ch in _STEP_CHANNELS
+        }
+        history.append(line_rows(line, fit, field))
         return metrics
 
     def seed(
@@ -487,10 +644,25 @@ class MetricsTracker:
         rows: Mapping[str, np.ndarray],
         previous: LineMetrics | None = None,
     ) -> None:
-        """Remember ``rows`` (keys :data:`ROW_KEYS`) as the last line of ``direction``."""
+        """Remember ``rows`` (keys :data:`ROW_KEYS`) as the last line of ``direction``.
+
+        Calling it again for the same direction adds an older-to-newer history (the
+        rows given last are the last line): seeding the last ``reference_lines + 1``
+        lines, oldest first, restores the references exactly. The step ranges of the
+        last line are recomputed from its rows and the rows before it.
+        """
         missing = [k for k in ROW_KEYS if k not in rows]
         if missing:
             raise ValueError(f"rows for direction {direction!r} lack keys {missing}")
-        self._rows[direction] = {k: np.asarray(rows[k], dtype=float) for k in ROW_KEYS}
+        history = self._history(direction)
+        history.append({k: np.asarray(rows[k], dtype=float) for k in ROW_KEYS})
+        self._ranges.pop(direction, None)
+        if len(history) >= 2:
+            steps = _change_fields(history[-1], history[-2], direction, self._options)
+            ranges: dict[str, tuple[int, int] | None] = {}
+            for ch in _STEP_CHANNELS:
+                rng = steps.get(f"{ch}_step_range")
+                ranges[ch] = rng if isinstance(rng, tuple) else None
+            self._ranges[direction] = ranges
         if previous is not None:
             self._previous = previous

@@ -708,44 +708,54 @@ def center_mean_sigma_from_maps(
 
 
 def _seed_tracker(tracker: MetricsTracker, store: ScanStore, line: ScanLine) -> None:
-    """After a restart, remember the last committed line of each direction.
+    """After a restart, remember the last committed lines of each direction.
 
-    Every row is rebuilt from the store's maps except ``pl_sigma_per_s``: the store does
-    not keep the PL rate's 1σ, so that row is NaN (no metric uses it today).
+    The tracker compares a line with the previous one and with a reference built from a
+    few lines before it, so the last :data:`SEED_LINES` committed lines of each direction
+    are seeded, oldest first. Every row is rebuilt from the store's maps except
+    ``pl_sigma_per_s``: the store does not keep the PL rate's 1σ, so that row is NaN (no
+    metric uses it today).
     """
     committed = store.committed()
     for direction in ("forward", "backward"):
+        done = sorted(i for (i, d) in committed if d == direction and i < line.line_index)
         # Maps run in increasing x; metrics rows run in acquisition order, which is this
         # line's for its own direction and the reverse for the other one.
         x_m = np.asarray(line.x_m, dtype=float)
         x_m = x_m if direction == line.direction else x_m[::-1].copy()
         order = np.argsort(x_m, kind="stable")
-        done = [i for (i, d) in committed if d == direction and i < line.line_index]
-        if not done:
-            continue
-        last = max(done)
+        for index in done[-SEED_LINES:]:
+            tracker.seed(direction, _stored_rows(store, direction, index, order, x_m))
 
-        def row(
-            name: str, direction: str = direction, last: int = last, order: np.ndarray = order
-        ) -> np.ndarray:
-            stored = np.asarray(store.read_map(name, direction)[last], dtype=float)
-            in_file_order = np.empty_like(stored)
-            in_file_order[order] = stored
-            return in_file_order
 
-        ok = row("status") == FitStatus.OK
-        rows = {key: row(name) for key, name in _ROW_FROM_MAP.items()}
-        for key in ("field_nv_t", "center_mean_hz"):  # as metrics.line_rows keeps them
-            rows[key] = np.where(ok, rows[key], np.nan)
-        rows["center_mean_sigma_hz"] = center_mean_sigma_from_maps(
-            rows["center_mean_hz"],
-            row("freq_hi_hz"),
-            row("freq_lo_sigma_hz"),
-            row("freq_hi_sigma_hz"),
-        )
-        rows["pl_sigma_per_s"] = np.full(store.n_pixels, np.nan)
-        rows["x_m"] = x_m
-        tracker.seed(direction, {key: rows[key] for key in ROW_KEYS})
+#: Committed lines per direction given back to the metrics memory after a restart.
+SEED_LINES = 4
+
+
+def _stored_rows(
+    store: ScanStore, direction: str, index: int, order: np.ndarray, x_m: np.ndarray
+) -> dict[str, np.ndarray]:
+    """The metrics rows (:data:`ROW_KEYS`) of one committed line, from the store's maps."""
+
+    def row(name: str) -> np.ndarray:
+        stored = np.asarray(store.read_map(name, direction)[index], dtype=float)
+        in_file_order = np.empty_like(stored)
+        in_file_order[order] = stored
+        return in_file_order
+
+    ok = row("status") == FitStatus.OK
+    rows = {key: row(name) for key, name in _ROW_FROM_MAP.items()}
+    for key in ("field_nv_t", "center_mean_hz"):  # as metrics.line_rows keeps them
+        rows[key] = np.where(ok, rows[key], np.nan)
+    rows["center_mean_sigma_hz"] = center_mean_sigma_from_maps(
+        rows["center_mean_hz"],
+        row("freq_hi_hz"),
+        row("freq_lo_sigma_hz"),
+        row("freq_hi_sigma_hz"),
+    )
+    rows["pl_sigma_per_s"] = np.full(store.n_pixels, np.nan)
+    rows["x_m"] = x_m
+    return {key: rows[key] for key in ROW_KEYS}
 
 
 def _load_delivered(path: Path) -> dict[str, AlertEvent]:

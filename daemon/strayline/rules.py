@@ -524,7 +524,8 @@ class RuleEngine:
         now_s: float,
     ) -> AlertEvent | None:
         if not st.active:
-            st.true_count = st.true_count + 1 if obs.raise_cond else 0
+            run = st.true_count + 1 if obs.run_lines is None else obs.run_lines
+            st.true_count = run if obs.raise_cond else 0
             if st.true_count >= spec.persistence_lines:
                 ev = self._event(
                     scan_id,
