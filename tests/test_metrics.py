@@ -402,6 +402,22 @@ def test_step_held_is_measured_over_the_previous_range_from_before_the_step() ->
     assert math.isnan(kept[0].center_mean_step_held)
 
 
+def test_step_before_shows_whether_the_common_mode_was_already_moving_there() -> None:
+    """Over a 3 MHz step's pixels 60–119 on line 5, the previous line against the median of
+    lines 1–3 is +1.5 MHz when line 4 had already risen halfway there, and about 0 when
+    lines 0–4 were steady (common practice: a feature coming into view shifts the common
+    mode over several lines, a touch at once)."""
+    clean = [(0.0, 0, 0)] * 4
+    ramp = _cm_lines([*clean, (1.5e6, 60, 120), (4.5e6, 60, 120)])
+    steady = _cm_lines([*clean, (0.0, 0, 0), (3e6, 60, 120)])
+    assert ramp[5].center_mean_step_range == (60, 120)
+    assert steady[5].center_mean_step_range == (60, 120)
+    # 60 pixels of 10 kHz noise: the medians are good to a few kHz.
+    assert abs(ramp[5].center_mean_step_before - 1.5e6) < 20e3
+    assert abs(steady[5].center_mean_step_before) < 20e3
+    assert math.isnan(steady[1].center_mean_step_before)
+
+
 def test_step_ref_is_near_zero_when_a_step_only_undoes_an_odd_previous_line() -> None:
     """A line that is normal after one odd line steps by +3 MHz against that line but by
     about 0 against the per-pixel median of the last three lines (common practice: a

@@ -817,6 +817,19 @@ def test_a_step_that_only_undoes_an_odd_previous_line_is_not_a_step() -> None:
     assert events == []
 
 
+@pytest.mark.parametrize(("before_hz", "raised"), [(2.0e6, False), (0.5e6, True), (-2.0e6, True)])
+def test_a_step_where_the_common_mode_was_already_moving_its_way_is_not_a_step(
+    before_hz: float, raised: bool
+) -> None:
+    """A 3 MHz common-mode step on line 12 that line 13 keeps is not raised when line 11
+    had already moved +2 MHz over the same pixels against the lines before it (past 0.4 of
+    the step: a feature coming into view), but is with +0.5 MHz or a move the other way
+    (common practice: a touch shifts D at once, PHYSICS.md §7)."""
+    line_12 = {**_STEP_AT_12, "center_mean_step_before": before_hz}
+    events = _jump_events({"center_mean_step_held": 2.8e6}, line_12=line_12)
+    assert [(e.state, e.line_index) for e in events] == ([("raised", 13)] if raised else [])
+
+
 def test_a_one_line_excursion_is_raised_from_its_way_back() -> None:
     """A 3 MHz common-mode excursion of line 12 alone, too weak on its own (t = 6 < 8),
     is raised as a transient touch on line 13, whose step back (t = 20) is about 0
@@ -829,6 +842,7 @@ def test_a_one_line_excursion_is_raised_from_its_way_back() -> None:
         "center_mean_step_range": (62, 118),
         "center_mean_step_first_pixel": 62,
         "center_mean_step_ref": 0.05e6,
+        "center_mean_step_before": 3e6,  # line 12's excursion: the other way, not a ramp
     }
     events = _jump_events(back, line_12=weak)
     assert [(e.state, e.line_index) for e in events] == [("raised", 13), ("cleared", 14)]

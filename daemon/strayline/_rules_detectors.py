@@ -294,7 +294,12 @@ def _steps(
         z = _z(v, st[0], st[1], 0.1 * thr)
         if ch == "center_mean":
             score = float(m.center_mean_step_score)
-            steps = abs(v) >= thr and score >= spec.center_mean_step_t_above
+            before = float(m.center_mean_step_before)
+            steps = (
+                abs(v) >= thr
+                and score >= spec.center_mean_step_t_above
+                and not _already_moving(before, v, spec.center_mean_before_fraction_below)
+            )
         else:
             steps = abs(v) >= thr and abs(z) >= spec.z_above
         entry = {
@@ -318,6 +323,17 @@ def _steps(
         elif steps:
             undoing[ch] = entry
     return flagged, undoing, seen
+
+
+def _already_moving(before: float, step: float, fraction: float) -> bool:
+    """Whether the common mode was already moving the step's way on the line before it.
+
+    ``before`` is the previous line over the step's pixels against the lines before it
+    (``center_mean_step_before``): of the step's sign and past ``fraction`` of it, a
+    feature was coming into view there. Of the other sign the step returns from an
+    excursion of the previous line, which the excursion check judges.
+    """
+    return math.isfinite(before) and before * step > 0 and abs(before) > fraction * abs(step)
 
 
 def _excursion(

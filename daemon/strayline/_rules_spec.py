@@ -140,6 +140,12 @@ class ResonanceJumpSpec(RuleSpec):
     thresholds to the reference, over pixels where the line before it stepped the other
     way by at least ``hold_fraction`` of that and past the size threshold, raises that
     one-line excursion as a touch at once.
+
+    Steadiness: a common-mode step counts only where the common mode was steady before
+    it: over the step's pixels, the previous line against the reference of the lines
+    before it (``center_mean_step_before``) must not already show the step's sign past
+    ``center_mean_before_fraction_below`` of the step. A feature coming into view raises
+    (f₋ + f₊)/2 over a few lines, through its transverse field; a touch steps at once.
     """
 
     name: str = Field(default="resonance_jump", pattern=r"^[a-z][a-z0-9_]*$")
@@ -156,6 +162,7 @@ class ResonanceJumpSpec(RuleSpec):
     z_above: float = Field(default=5.0, gt=0.0)
     pl_drop_fraction_for_crash: float = Field(default=0.1, gt=0.0, lt=1.0)
     hold_fraction: float = Field(default=0.5, gt=0.0, lt=1.0)
+    center_mean_before_fraction_below: float = Field(default=0.4, gt=0.0)
     advice: str = (
         "check the tip (approach, feedback, topography channel); the map after this "
         "line is not comparable with the map before it; consider stopping the scan"

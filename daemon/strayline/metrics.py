@@ -152,6 +152,10 @@ class LineMetrics:
     ``{ch}_step_first_pixel`` (first acquired pixel of the range, -1 if none),
     ``{ch}_step_to_end`` (1.0 if the range runs to the end of the acquisition, else 0.0).
     ``pl_step_level_per_s``: median PL over the PL step range.
+    ``center_mean_step_before``: the previous line over this line's common-mode step range
+    against the reference of the lines before it (Hz; NaN without them): near 0 when the
+    pixels were steady before the step, comparable with the step when the common mode
+    there was already moving (a feature coming into view).
 
     Against a *reference* (per pixel, the median of the last ``reference_lines`` lines of
     the same direction before the line it is compared with; see module notes):
@@ -203,6 +207,7 @@ class LineMetrics:
     center_mean_step_range: tuple[int, int] | None = None
     center_mean_step_first_pixel: int = -1
     center_mean_step_to_end: float = float("nan")
+    center_mean_step_before: float = float("nan")
     field_step: float = float("nan")
     field_step_score: float = float("nan")
     field_step_range: tuple[int, int] | None = None
@@ -460,6 +465,23 @@ def _reference_fields(
     return out
 
 
+def _steady_fields(
+    n: int,
+    history: Sequence[Mapping[str, np.ndarray]],
+    cm_range: object,
+    options: MetricsOptions,
+) -> dict[str, object]:
+    """``center_mean_step_before`` (see :class:`LineMetrics`) for a line of ``n`` pixels;
+    ``history`` oldest first, the previous line last; rows of another pixel count are
+    ignored."""
+    hist = [h for h in history if h["center_mean_hz"].shape[0] == n]
+    if len(hist) < 2 or not isinstance(cm_range, tuple):
+        return {}
+    refs = hist[:-1][-options.reference_lines :]
+    got = _range_against(hist[-1], refs, {"center_mean": cm_range}, 0.0)
+    return {} if "center_mean" not in got else {"center_mean_step_before": got["center_mean"]}
+
+
 def _change_fields(
     rows: Mapping[str, np.ndarray],
     prev: Mapping[str, np.ndarray],
@@ -596,6 +618,7 @@ def line_metrics(
         }
         history = [*older_rows, previous_rows]
         values.update(_reference_fields(rows, history, own, before, opts))  # type: ignore[arg-type]
+        values.update(_steady_fields(pl.shape[0], history, own["center_mean"], opts))
     return LineMetrics(**values)  # type: ignore[arg-type]
 
 
