@@ -233,7 +233,7 @@ def test_profile_may_not_set_daemon_wide_keys(tmp_path: Path) -> None:
         config.with_profile("wide")
     message = str(info.value)
     assert info.value.key_path == "paths"
-    assert "paths: a profile may set only watch, fit, field, store, rules, alerts" in message
+    assert "paths: a profile may set only watch, fit, field, store, rules, rule_overrides, alerts" in message
     assert "watch.mode: a profile may set only give_up_s, settle_s in watch" in message
     assert "settle_s:" not in message
 
@@ -243,17 +243,17 @@ def test_profile_lists_replace_and_mappings_merge(tmp_path: Path) -> None:
     _write(
         tmp_path / "profiles",
         "p.yaml",
-        {"alerts": {"hook": {"info": ["b"]}}, "rules": [{"name": "x"}]},
+        {"alerts": {"hook": {"info": ["b"]}}, "rules": [{"name": "x", "kind": "zfs_drift"}]},
     )
     base = {
         **MINIMAL,
         "alerts": {"hook": {"critical": ["a", "{scan_id}"]}, "hook_timeout_s": 3.0},
-        "rules": [{"name": "y"}, {"name": "z"}],
+        "rules": [{"name": "y", "kind": "zfs_drift"}, {"name": "z", "kind": "zfs_drift"}],
     }
     profiled = load_config(_write(tmp_path, "cfg.yaml", base)).with_profile("p")
     assert profiled.alerts.hook == {"critical": ["a", "{scan_id}"], "info": ["b"]}
     assert profiled.alerts.hook_timeout_s == 3.0
-    assert profiled.rules == [{"name": "x"}]
+    assert profiled.rules == [{"name": "x", "kind": "zfs_drift"}]
 
 
 # --------------------------------------------------------------------------- messages

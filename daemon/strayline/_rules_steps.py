@@ -129,7 +129,9 @@ def _changed_part(
     return Segment(int(a), int(b), float(in_value), float(score))
 
 
-def best_level_segment(change: np.ndarray, min_pixels: int) -> Segment | None:
+def best_level_segment(
+    change: np.ndarray, min_pixels: int, sigma: np.ndarray | None = None
+) -> Segment | None:
     """Segment whose mean differs most from the rest of the line (t-like statistic).
 
     Parameters
@@ -138,6 +140,15 @@ def best_level_segment(change: np.ndarray, min_pixels: int) -> Segment | None:
         Per-pixel difference in acquisition order (NaN = no value).
     min_pixels : int
         Smallest segment (and smallest remainder) considered.
+    sigma : ndarray, shape (n,), optional
+        Per-pixel 1σ of ``change`` (same unit; NaN or <= 0 = no value). Given, the means
+        are inverse-variance weighted and the statistic is
+        ``(m_in − m_out) / √(1/W_in + 1/W_out)`` with ``W = Σ 1/σ²`` — the two-sample z of
+        weighted means (e.g. Bevington & Robinson, *Data Reduction and Error Analysis*,
+        3rd ed., §4.1) — divided by ``max(1, s)``, ``s`` the robust scatter of
+        ``change / sigma`` (so that σ that understate the pixel-to-pixel scatter cannot
+        inflate it). Without it every pixel weighs the same and the noise scale is the
+        robust scatter of ``change``.
 
     Returns
     -------
@@ -146,25 +157,34 @@ def best_level_segment(change: np.ndarray, min_pixels: int) -> Segment | None:
     """
     n = change.shape[0]
     ok = np.isfinite(change)
+    if sigma is not None:
+        ok &= np.isfinite(sigma) & (sigma > 0)
     if n < min_pixels or ok.sum() < min_pixels:
         return None
-    sigma = robust_scatter(change)
-    if not np.isfinite(sigma):
+    if sigma is None:
+        scale = robust_scatter(change)
+        weight = ok.astype(float)
+    else:
+        scale = max(1.0, robust_scatter(np.where(ok, change / np.where(ok, sigma, 1.0), np.nan)))
+        weight = np.where(ok, 1.0 / np.where(ok, sigma, 1.0) ** 2, 0.0)
+    if not np.isfinite(scale):
         return None
-    sigma = max(sigma, 1e-300)
-    c = np.where(ok, change, 0.0)
+    scale = max(scale, 1e-300)
+    c = np.where(ok, change, 0.0) * weight
     cs = np.concatenate([[0.0], np.cumsum(c)])
+    cw = np.concatenate([[0.0], np.cumsum(weight)])
     cn = np.concatenate([[0.0], np.cumsum(ok.astype(float))])
 
     def scorer(a: np.ndarray, b: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         n_in = cn[b] - cn[a]
-        n_out = cn[n] - n_in
+        w_in = cw[b] - cw[a]
+        w_out = cw[n] - w_in
         s_in = cs[b] - cs[a]
         with np.errstate(invalid="ignore", divide="ignore"):
-            m_in = s_in / n_in
-            m_out = np.where(n_out > 0, (cs[n] - s_in) / n_out, 0.0)
-            inv = 1.0 / n_in + np.where(n_out > 0, 1.0 / n_out, 0.0)
-            score = np.abs(m_in - m_out) / (sigma * np.sqrt(inv))
+            m_in = s_in / w_in
+            m_out = np.where(w_out > 0, (cs[n] - s_in) / w_out, 0.0)
+            inv = 1.0 / w_in + np.where(w_out > 0, 1.0 / w_out, 0.0)
+            score = np.abs(m_in - m_out) / (scale * np.sqrt(inv))
         edge = (a == 0) | (b == n)
         whole = (a == 0) & (b == n)
         # A segment inside the line counts only when it, not its surroundings, changed.
@@ -179,9 +199,9 @@ def best_level_segment(change: np.ndarray, min_pixels: int) -> Segment | None:
     a, b, score, m_in, m_out = _search(n, scorer)
     # The whole line is the answer only when no split separates two parts that differ
     # significantly (t >= _SPLIT_T); its own score is the t of its mean against zero.
-    n_ok = float(cn[n])
-    m_whole = float(cs[n]) / n_ok
-    whole_score = abs(m_whole) / (sigma / np.sqrt(n_ok))
+    w_all = float(cw[n])
+    m_whole = float(cs[n]) / w_all
+    whole_score = abs(m_whole) * np.sqrt(w_all) / scale
     if score < _SPLIT_T and whole_score > score:
         return Segment(0, n, m_whole, whole_score)
     if score < 0:

@@ -85,6 +85,7 @@ PROFILE_SECTIONS: Mapping[str, frozenset[str] | None] = {
     "field": None,
     "store": None,
     "rules": None,
+    "rule_overrides": None,
     "alerts": None,
     "products": frozenset({"enabled", "standoff_nm", "images"}),
 }
@@ -377,6 +378,7 @@ class Config(_Section):
     field: FieldSection = Field(default_factory=FieldSection)
     store: StoreSection = Field(default_factory=StoreSection)
     rules: list[dict[str, Any]] = Field(default_factory=list)
+    rule_overrides: dict[str, dict[str, Any]] = Field(default_factory=dict)
     alerts: AlertsSection = Field(default_factory=AlertsSection)
     products: ProductsSection = Field(default_factory=ProductsSection)
     logging: LoggingSection = Field(default_factory=LoggingSection)
@@ -453,6 +455,14 @@ def _build(
     except ValidationError as exc:
         return None, translate_validation_error(Config, exc)
     config._source = source
+    # The rule set (rules, rule_overrides) is data of its own schema: checked here too,
+    # so a bad rule stops the start (or refuses a profile) like any other key.
+    from strayline.rules import load_rules  # (rules imports the metrics stack)
+
+    try:
+        load_rules(config)
+    except ConfigError as error:
+        return None, [(error.key_path, error.problem)]
     return config, []
 
 

@@ -59,12 +59,15 @@ from strayline._rules_steps import (
 from strayline.field import LineField
 from strayline.fit import FitStatus, LineFit
 from strayline.lines import ScanLine
+from strayline.physics.constants import D_ROOM_HZ, GAMMA_NV_HZ_PER_T
 
 __all__ = [
     "ROW_KEYS",
     "LineMetrics",
     "MetricsOptions",
     "MetricsTracker",
+    "common_mode_sigma",
+    "field_perp",
     "line_metrics",
     "line_rows",
     "metric_names",
@@ -76,6 +79,7 @@ _MAD_TO_SIGMA = 1.482602218505602  # MAD of a normal sample → σ [cp]
 ROW_KEYS = (
     "field_nv_t",
     "field_nv_sigma_t",
+    "field_perp_t",
     "pl_per_s",
     "pl_sigma_per_s",
     "center_mean_hz",
@@ -107,21 +111,19 @@ class MetricsOptions:
     min_level_pixels : int
         Smallest pixel range (and remainder) the centre-mean step search considers: a
         touch of the sample can shift the resonances over only a few pixels.
-    common_mode_field_sigma, common_mode_field_change_t : float
-        The centre-mean step search looks only at pixels whose field along the NV axis
-        changed by at most this many 1σ of the difference or this many tesla, whichever is
-        larger (a common-mode shift leaves B∥ alone; a moving wall does not). Estimate:
-        a 1 MHz shift of (f₋+f₊)/2 from B⊥ alone takes ΔB⊥ ≈ 0.4 mT at B⊥ = 3 mT
-        (from 3γ²B⊥ΔB⊥/D, PHYSICS.md §2), which comes with B∥ changes of the same order,
-        well above 20 µT.
+    transverse_change_ratio : float
+        Assumed |ΔB⊥| / |ΔB∥| of the sample's own field change between two lines, for the
+        common-mode noise model (see :func:`common_mode_sigma`): the stray field of a
+        planar source has in-plane and out-of-plane Fourier components of equal size,
+        |b̃ₓ|² + |b̃ᵧ|² = |b̃_z|² (Casola, van der Sar & Yacoby, Nat. Rev. Mater. 3, 17088
+        (2018), Box 2), so the two changes are of the same order.
     """
 
     change_sigma: float = 5.0
     reference_lines: int = 3
     min_step_pixels: int = 16
     min_level_pixels: int = 4
-    common_mode_field_sigma: float = 2.0
-    common_mode_field_change_t: float = 20e-6
+    transverse_change_ratio: float = 1.0
 
 
 @dataclass(frozen=True)
@@ -263,7 +265,8 @@ def line_rows(line: ScanLine, fit: LineFit, field_: LineField) -> dict[str, np.n
     -------
     dict
         Keys :data:`ROW_KEYS`, each an ndarray of shape (n_pixels,): ``field_nv_t`` and
-        ``field_nv_sigma_t`` (T), ``pl_per_s`` and ``pl_sigma_per_s`` (counts/s),
+        ``field_nv_sigma_t`` (T), ``field_perp_t`` (field across the NV axis,
+        |B|·|sin θ|, T; NaN without two resonances), ``pl_per_s`` and ``pl_sigma_per_s`` (counts/s),
         ``center_mean_hz`` and ``center_mean_sigma_hz`` (Hz), ``x_m`` (m). Field and
         centre rows are NaN where the fit status is not OK: a failed fit's resonances
         are not a measurement, and one such pixel would otherwise dominate the next
@@ -274,12 +277,40 @@ def line_rows(line: ScanLine, fit: LineFit, field_: LineField) -> dict[str, np.n
     return {
         "field_nv_t": np.where(ok, np.asarray(field_.field_nv_t, dtype=float), np.nan),
         "field_nv_sigma_t": np.asarray(field_.field_nv_sigma_t, dtype=float).copy(),
+        "field_perp_t": field_perp(field_.field_abs_t, field_.angle_rad, ok),
         "pl_per_s": np.asarray(fit.baseline, dtype=float) / dwell_s,
         "pl_sigma_per_s": np.asarray(fit.baseline_sigma, dtype=float) / dwell_s,
         "center_mean_hz": np.where(ok, np.asarray(field_.center_mean_hz, dtype=float), np.nan),
         "center_mean_sigma_hz": np.asarray(field_.center_mean_sigma_hz, dtype=float).copy(),
         "x_m": np.asarray(line.x_m, dtype=float).copy(),
     }
+
+
+def field_perp(field_abs_t: np.ndarray, angle_rad: np.ndarray, ok: np.ndarray) -> np.ndarray:
+    """Field across the NV axis, |B|·|sin θ| (T), NaN where ``ok`` is False."""
+    perp = np.asarray(field_abs_t, dtype=float) * np.abs(np.sin(np.asarray(angle_rad, float)))
+    return np.where(ok, perp, np.nan)
+
+
+def common_mode_sigma(
+    rows: Mapping[str, np.ndarray], prev: Mapping[str, np.ndarray], transverse_ratio: float
+) -> np.ndarray:
+    """1σ of the line-to-line change of (f₋ + f₊)/2 that the sample alone explains, Hz.
+
+    ``σ² = σ²_now + σ²_prev + (3γ² B⊥ |ΔB⊥| / D)²`` with ``|ΔB⊥| = transverse_ratio ·
+    |ΔB∥|``, ``B⊥`` of the previous line and ``D`` the room-temperature zero-field
+    splitting: the fit errors of the two centre means, plus the shift a change of the
+    transverse field gives, from f± ≈ D + 3(γB⊥)²/(2D) ± γB∥ (PHYSICS.md §2), whose
+    derivative is d[(f₋ + f₊)/2]/dB⊥ = 3γ²B⊥/D. A moving domain wall changes B∥ and B⊥
+    together and is down-weighted where it does; a touch shifts D alone, leaves B∥ where
+    it was and keeps the fit errors alone as its noise.
+    """
+    perp = np.where(np.isfinite(prev["field_perp_t"]), prev["field_perp_t"], 0.0)
+    d_par = np.abs(rows["field_nv_t"] - prev["field_nv_t"])
+    d_par = np.where(np.isfinite(d_par), d_par, 0.0)
+    sample = 3.0 * GAMMA_NV_HZ_PER_T**2 * perp * transverse_ratio * d_par / D_ROOM_HZ
+    fit = rows["center_mean_sigma_hz"] ** 2 + prev["center_mean_sigma_hz"] ** 2
+    return np.sqrt(fit + sample**2)
 
 
 def _nanmedian(a: np.ndarray) -> float:
@@ -514,20 +545,12 @@ def _change_fields(
     pl_range = out.get("pl_step_range")
     if isinstance(pl_range, tuple):
         out["pl_step_level_per_s"] = _nanmedian(rows["pl_per_s"][pl_range[0] : pl_range[1]])
-    # Two searches of the common-mode shift: over ranges of min_step_pixels or more, on
-    # every pixel; and over ranges down to min_level_pixels (a touch can be that narrow)
-    # on the pixels whose field along the NV axis stayed put — strain or heat from a
-    # touch moves D, i.e. (f₋+f₊)/2, and leaves f₊ − f₋ (B∥) alone, while a wall that
-    # moves changes B⊥ *and* B∥, so its pixels drop out (PHYSICS.md §2, §7). The
-    # stronger of the two is reported.
-    with np.errstate(invalid="ignore"):
-        still = np.abs(db) <= np.maximum(
-            options.common_mode_field_sigma * sigma_d, options.common_mode_field_change_t
-        )
-    cm_seg = best_level_segment(d_cm[order], k)
-    narrow = best_level_segment(np.where(still, d_cm, np.nan)[order], options.min_level_pixels)
-    if narrow is not None and (cm_seg is None or narrow.score > cm_seg.score):
-        cm_seg = narrow
+    # The common-mode shift, over ranges down to min_level_pixels (a touch can be that
+    # narrow), each pixel weighted by the noise the fits and the sample's own field
+    # change give it: strain or heat from a touch moves D, i.e. (f₋+f₊)/2, and leaves
+    # B∥ alone, while a wall that moves changes B⊥ *and* B∥ (common_mode_sigma).
+    cm_sigma = common_mode_sigma(rows, prev, options.transverse_change_ratio)
+    cm_seg = best_level_segment(d_cm[order], options.min_level_pixels, cm_sigma[order])
     out.update(_step_fields("center_mean", cm_seg, order, n))
     e_now = _roughness(b[order], rows["field_nv_sigma_t"][order])
     e_prev = _roughness(bp[order], prev["field_nv_sigma_t"][order])

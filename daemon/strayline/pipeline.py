@@ -38,7 +38,7 @@ from strayline.errors import ConfigError, LineFileError, StoreError
 from strayline.field import field_from_fit
 from strayline.fit import FitModel, FitStatus, fit_line
 from strayline.lines import LineLimits, ScanLine, read_line_file
-from strayline.metrics import ROW_KEYS, MetricsTracker
+from strayline.metrics import ROW_KEYS, MetricsTracker, field_perp
 from strayline.physics.constants import D_ROOM_HZ, zfs_hz
 from strayline.products import make_products, products_dir
 from strayline.quarantine import bad_file_event, quarantine_file
@@ -592,6 +592,8 @@ class LinePipeline:
         except BaseException:
             store.close()  # release the writer's lock: the next line opens it afresh
             raise
+        # The scan is judged by its profile's rule set (rules, rule_overrides).
+        self._engine.use_rules(line.scan_id, load_rules(config))
         if store.recovered_lines:
             self._log.warning(
                 "store_recovered",
@@ -753,6 +755,7 @@ def _stored_rows(
         row("freq_lo_sigma_hz"),
         row("freq_hi_sigma_hz"),
     )
+    rows["field_perp_t"] = field_perp(row("field_abs_t"), row("angle_rad"), ok)
     rows["pl_sigma_per_s"] = np.full(store.n_pixels, np.nan)
     rows["x_m"] = x_m
     return {key: rows[key] for key in ROW_KEYS}

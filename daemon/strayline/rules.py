@@ -16,6 +16,7 @@ neither raises the alert again nor forgets it.
 from __future__ import annotations
 
 import contextlib
+import difflib
 import json
 import math
 import os
@@ -31,7 +32,7 @@ from typing import Any, Literal, Protocol
 import numpy as np
 import structlog
 import yaml
-from pydantic import ValidationError
+from pydantic import TypeAdapter, ValidationError
 
 from strayline._rules_detectors import Observation, build_detector
 from strayline._rules_spec import (
@@ -67,6 +68,7 @@ __all__ = [
     "RulesConfig",
     "ThresholdSpec",
     "ZfsDriftSpec",
+    "apply_overrides",
     "default_rules",
     "load_rules",
     "rules_from_data",
@@ -283,12 +285,26 @@ def _iso(t_s: float) -> str:
     return datetime.fromtimestamp(t_s, UTC).isoformat(timespec="milliseconds")
 
 
+class _RuleSet:
+    """One rule set, ready to run: its enabled specs, line detectors and stall rules."""
+
+    def __init__(self, config: RulesConfig) -> None:
+        self.config = config
+        self.specs: dict[str, RuleSpec] = {r.name: r for r in config.rules if r.enabled}
+        self.detectors = {
+            name: det for name, spec in self.specs.items() if (det := build_detector(spec))
+        }
+        self.stall_specs = [s for s in self.specs.values() if isinstance(s, AcquisitionStalledSpec)]
+
+
 class _ScanState:
-    def __init__(self, baseline: BaselineSpec, rule_names: Iterable[str]) -> None:
+    def __init__(self, rule_set: _RuleSet) -> None:
+        self.rule_set = rule_set
+        baseline = rule_set.config.baseline
         self.baseline = RollingBaseline(
             baseline.window_lines, baseline.min_lines, baseline.anchor_lines
         )
-        self.rules = {name: _RuleState(memo={}) for name in rule_names}
+        self.rules = {name: _RuleState(memo={}) for name in rule_set.specs}
         self.last_arrival_s: float | None = None
         self.last_line_index: int | None = None
         self.last_direction: str | None = None
@@ -303,9 +319,11 @@ class _ScanState:
             and self.last_line_index >= self.n_lines_planned - 1
         )
 
-    def state_dict(self) -> dict[str, Any]:
+    def state_dict(self, default: _RuleSet) -> dict[str, Any]:
+        own = self.rule_set is not default
         return {
             "baseline": self.baseline.state_dict(),
+            "rule_set": self.rule_set.config.model_dump(mode="json") if own else None,
             "rules": {
                 name: {
                     "active": st.active,
@@ -325,10 +343,13 @@ class _ScanState:
         }
 
     @classmethod
-    def from_state(
-        cls, state: Mapping[str, Any], baseline: BaselineSpec, rule_names: Iterable[str]
-    ) -> _ScanState:
-        out = cls(baseline, rule_names)
+    def from_state(cls, state: Mapping[str, Any], default: _RuleSet) -> _ScanState:
+        own = state.get("rule_set")  # absent in states saved before per-scan rule sets
+        rule_set = default
+        if own is not None:
+            with contextlib.suppress(ValidationError):  # from another version: the default
+                rule_set = _RuleSet(RulesConfig.model_validate(own))
+        out = cls(rule_set)
         out.baseline = RollingBaseline.from_state(state["baseline"])
         for name, st in state["rules"].items():
             if name in out.rules:  # rules removed from the config are forgotten
@@ -360,23 +381,34 @@ class RuleEngine:
     """
 
     def __init__(self, rules: RulesConfig, *, clock: Callable[[], float] = time.time) -> None:
-        self._config = rules
+        self._default = _RuleSet(rules)
         self._clock = clock
-        self._specs: dict[str, RuleSpec] = {r.name: r for r in rules.rules if r.enabled}
-        self._detectors = {
-            name: det
-            for name, spec in self._specs.items()
-            if (det := build_detector(spec)) is not None
-        }
-        self._stall_specs = [
-            s for s in self._specs.values() if isinstance(s, AcquisitionStalledSpec)
-        ]
         self._scans: dict[str, _ScanState] = {}
         self._latest: str | None = None
 
     @property
     def config(self) -> RulesConfig:
-        return self._config
+        """The rule set of scans that were given none of their own."""
+        return self._default.config
+
+    def rules_for(self, scan_id: str) -> RulesConfig:
+        """The rule set ``scan_id`` is judged by."""
+        scan = self._scans.get(scan_id)
+        return self._default.config if scan is None else scan.rule_set.config
+
+    def use_rules(self, scan_id: str, rules: RulesConfig) -> None:
+        """Judge ``scan_id`` by ``rules`` from now on (its sample-type profile's set).
+
+        The state of rules that keep their name carries over (an active alert stays
+        active); rules no longer in the set are forgotten; the baseline is kept.
+        """
+        scan = self._scan(scan_id, rules)
+        if scan.rule_set.config == rules:
+            return
+        scan.rule_set = self._default if rules == self._default.config else _RuleSet(rules)
+        scan.rules = {
+            name: scan.rules.get(name) or _RuleState(memo={}) for name in scan.rule_set.specs
+        }
 
     # -- events -------------------------------------------------------------------------
 
@@ -426,10 +458,13 @@ class RuleEngine:
 
     # -- evaluation ---------------------------------------------------------------------
 
-    def _scan(self, scan_id: str) -> _ScanState:
+    def _scan(self, scan_id: str, rules: RulesConfig | None = None) -> _ScanState:
         scan = self._scans.get(scan_id)
         if scan is None:
-            scan = _ScanState(self._config.baseline, self._specs)
+            if rules is None or rules == self._default.config:
+                scan = _ScanState(self._default)
+            else:
+                scan = _ScanState(_RuleSet(rules))
             self._scans[scan_id] = scan
             while len(self._scans) > _MAX_SCANS_KEPT:
                 oldest = next(iter(self._scans))
@@ -442,7 +477,7 @@ class RuleEngine:
         self, scan_id: str, scan: _ScanState, now_s: float, why: str
     ) -> list[AlertEvent]:
         out = []
-        for spec in self._stall_specs:
+        for spec in scan.rule_set.stall_specs:
             st = scan.rules[spec.name]
             if st.active:
                 out.append(
@@ -478,7 +513,7 @@ class RuleEngine:
         if scan.last_arrival_s is not None:
             events += self._clear_stalls(scan_id, scan, now_s, f"line {metrics.line_index} arrived")
         observed: dict[str, Observation] = {}
-        for name, detect in self._detectors.items():
+        for name, detect in scan.rule_set.detectors.items():
             st = scan.rules[name]
             memo = st.memo if st.memo is not None else {}
             st.memo = memo
@@ -495,7 +530,7 @@ class RuleEngine:
             if st.active or (name in observed and observed[name].raise_cond)
         }
         for name, seen in observed.items():
-            spec, st = self._specs[name], scan.rules[name]
+            spec, st = scan.rule_set.specs[name], scan.rules[name]
             explained = holding.intersection(spec.suppressed_by)
             obs = replace(seen, raise_cond=False) if explained and not st.active else seen
             ev = self._step(scan_id, spec, st, obs, m=metrics, now_s=now_s)
@@ -573,7 +608,7 @@ class RuleEngine:
         events = []
         waited = now_s - scan.last_arrival_s
         usual = float(np.median(scan.intervals_s)) if scan.intervals_s else None
-        for spec in self._stall_specs:
+        for spec in scan.rule_set.stall_specs:
             st = scan.rules[spec.name]
             interval = usual if usual is not None else spec.fallback_interval_s
             if st.active or interval is None:
@@ -627,7 +662,7 @@ class RuleEngine:
         return {
             "version": _STATE_VERSION,
             "latest_scan": self._latest,
-            "scans": {sid: scan.state_dict() for sid, scan in self._scans.items()},
+            "scans": {sid: scan.state_dict(self._default) for sid, scan in self._scans.items()},
         }
 
     def save(self, path: str | PathLike[str]) -> None:
@@ -711,7 +746,7 @@ class RuleEngine:
             )
         engine = cls(rules, clock=clock)
         for sid, scan_state in state["scans"].items():
-            engine._scans[sid] = _ScanState.from_state(scan_state, rules.baseline, engine._specs)
+            engine._scans[sid] = _ScanState.from_state(scan_state, engine._default)
         engine._latest = state["latest_scan"]
         return engine
 
@@ -746,6 +781,21 @@ def _key_path(loc: tuple[int | str, ...]) -> str:
     return "".join(parts) or "<root>"
 
 
+def _problem(first: Mapping[str, Any], n_errors: int) -> str:
+    """One pydantic error as our wording (the first of ``n_errors``)."""
+    problem = str(first["msg"]).removeprefix("Value error, ")
+    if first["type"] == "extra_forbidden":
+        problem = "unknown key"
+    elif first["type"] == "union_tag_invalid":
+        problem = f"kind must be one of {', '.join(RULE_KINDS)}; found {first['input']!r}"
+    elif "input" in first and first["type"] not in ("missing",) and first["loc"]:
+        # (a whole-set check at the root names what it found in its own message)
+        problem += f"; found {first['input']!r}"
+    if n_errors > 1:
+        problem += f" (and {n_errors - 1} more problem(s))"
+    return problem
+
+
 def rules_from_data(
     data: Mapping[str, Any] | list[Any] | None, path: str | PathLike[str] | None = None
 ) -> RulesConfig:
@@ -766,17 +816,71 @@ def rules_from_data(
     except ValidationError as exc:
         errors = exc.errors()
         first = errors[0]
-        problem = str(first["msg"]).removeprefix("Value error, ")
-        if first["type"] == "extra_forbidden":
-            problem = "unknown key"
-        elif first["type"] == "union_tag_invalid":
-            problem = f"kind must be one of {', '.join(RULE_KINDS)}; found {first['input']!r}"
-        elif "input" in first and first["type"] not in ("missing",) and first["loc"]:
-            # (a whole-set check at the root names what it found in its own message)
-            problem += f"; found {first['input']!r}"
-        if len(errors) > 1:
-            problem += f" (and {len(errors) - 1} more problem(s))"
-        raise ConfigError(path, _key_path(tuple(first["loc"])), problem) from None
+        raise ConfigError(
+            path, _key_path(tuple(first["loc"])), _problem(first, len(errors))
+        ) from None
+
+
+_ONE_RULE: TypeAdapter[Any] = TypeAdapter(AnyRuleSpec)
+
+
+def apply_overrides(
+    rules: RulesConfig,
+    overrides: Mapping[str, Any] | None,
+    path: str | PathLike[str] | None = None,
+) -> RulesConfig:
+    """``rules`` with some settings of some rules changed: ``{rule name: {key: value}}``.
+
+    This is how a sample-type profile tunes a threshold or two without restating the
+    whole rule set (config key ``rule_overrides``; a profile's overrides merge key by key
+    over the base config's).
+
+    Raises
+    ------
+    ConfigError
+        Naming the file and ``rule_overrides.<rule>[.<key>]``: an unknown rule (with the
+        nearest name), an unknown key, a bad value, or a change of a rule's name or kind.
+    """
+    if not overrides:
+        return rules
+    if not isinstance(overrides, Mapping):
+        raise ConfigError(
+            path, "rule_overrides", f"expected a mapping of rule names; found {overrides!r}"
+        )
+    specs = {r.name: r for r in rules.rules}
+    for name, keys in overrides.items():
+        where = f"rule_overrides.{name}"
+        spec = specs.get(name)
+        if spec is None:
+            close = difflib.get_close_matches(str(name), list(specs), n=1)
+            hint = f" (did you mean {close[0]!r}?)" if close else ""
+            raise ConfigError(
+                path, where, f"no rule of this name{hint}; the rules are {', '.join(specs)}"
+            )
+        if not isinstance(keys, Mapping):
+            raise ConfigError(path, where, f"expected a mapping of settings; found {keys!r}")
+        for fixed in ("name", "kind"):
+            if fixed in keys and keys[fixed] != getattr(spec, fixed):
+                raise ConfigError(
+                    path,
+                    f"{where}.{fixed}",
+                    f"an override cannot change a rule's {fixed}; found {keys[fixed]!r}",
+                )
+        data = {**spec.model_dump(exclude_unset=True), "name": spec.name, "kind": spec.kind}
+        try:
+            specs[name] = _ONE_RULE.validate_python({**data, **keys})
+        except ValidationError as exc:
+            errors = exc.errors()
+            first = errors[0]
+            loc = [str(v) for v in first["loc"]]
+            if loc and loc[0] == spec.kind:  # the discriminator's own level
+                loc = loc[1:]
+            raise ConfigError(path, ".".join([where, *loc]), _problem(first, len(errors))) from None
+    try:
+        return RulesConfig(version=rules.version, baseline=rules.baseline, rules=[*specs.values()])
+    except ValidationError as exc:
+        errors = exc.errors()
+        raise ConfigError(path, "rule_overrides", _problem(errors[0], len(errors))) from None
 
 
 class _HasRules(Protocol):
@@ -795,6 +899,8 @@ def load_rules(source: str | PathLike[str] | _HasRules) -> RulesConfig:
         mappings, or a mapping with ``baseline`` and ``rules``); its ``source`` attribute,
         if any, names the file in errors. Empty or missing rules mean the built-in set,
         :func:`default_rules` (to run without a rule, list it with ``enabled: false``).
+        A ``rule_overrides`` attribute, if any, then changes single settings
+        (:func:`apply_overrides`).
 
     Raises
     ------
@@ -802,10 +908,10 @@ def load_rules(source: str | PathLike[str] | _HasRules) -> RulesConfig:
         If the file cannot be read, is not YAML, or does not validate.
     """
     if not isinstance(source, str | PathLike):
+        where = getattr(source, "source", None)
         data = source.rules
-        if not data:
-            return default_rules()
-        return rules_from_data(data, getattr(source, "source", None))
+        rules = rules_from_data(data, where) if data else default_rules()
+        return apply_overrides(rules, getattr(source, "rule_overrides", None), where)
     p = Path(source)
     try:
         text = p.read_text(encoding="utf-8")
