@@ -233,7 +233,8 @@ def test_profile_may_not_set_daemon_wide_keys(tmp_path: Path) -> None:
         config.with_profile("wide")
     message = str(info.value)
     assert info.value.key_path == "paths"
-    assert "paths: a profile may set only watch, fit, field, store, rules, rule_overrides, alerts" in message
+    allowed = "watch, fit, field, store, rules, rule_overrides, alerts"
+    assert f"paths: a profile may set only {allowed}" in message
     assert "watch.mode: a profile may set only give_up_s, settle_s in watch" in message
     assert "settle_s:" not in message
 
@@ -578,3 +579,32 @@ def test_empty_path_is_refused_and_dot_is_the_config_folder(tmp_path: Path) -> N
     )
     dot = _write(tmp_path, "b.yaml", {"paths": {"watch_root": ".", "output_root": "out"}})
     assert load_config(dot).paths.watch_root == tmp_path
+
+
+def test_profile_rule_overrides_merge_over_the_base_and_are_checked_at_start(
+    tmp_path: Path,
+) -> None:
+    """A profile's rule_overrides merge rule by rule and key by key over the base
+    config's; a bad one in a profile the config names stops the start, naming the
+    profile file and the key path."""
+    _write(
+        tmp_path / "profiles",
+        "ferro.yaml",
+        {"rule_overrides": {"resonance_jump": {"z_above": 6.0}}},
+    )
+    _write(tmp_path / "profiles", "bad.yaml", {"rule_overrides": {"zfs_drift": {"drift": 1}}})
+    base = {
+        **MINIMAL,
+        "rule_overrides": {
+            "resonance_jump": {"hold_fraction": 0.6},
+            "zfs_drift": {"enabled": False},
+        },
+    }
+    profiled = load_config(_write(tmp_path, "cfg.yaml", base)).with_profile("ferro")
+    assert profiled.rule_overrides == {
+        "resonance_jump": {"hold_fraction": 0.6, "z_above": 6.0},
+        "zfs_drift": {"enabled": False},
+    }
+    error = _error(_write(tmp_path, "named.yaml", {**MINIMAL, "default_profile": "bad"}))
+    assert error.path == tmp_path / "profiles" / "bad.yaml"
+    assert error.key_path == "rule_overrides.zfs_drift.drift"

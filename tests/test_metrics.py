@@ -23,9 +23,11 @@ from strayline.metrics import (
     MetricsOptions,
     MetricsTracker,
     _pixel_median,
+    common_mode_sigma,
     line_metrics,
     line_rows,
 )
+from strayline.physics.constants import D_ROOM_HZ, GAMMA_NV_HZ_PER_T
 
 T0 = datetime(2026, 3, 2, 1, 0, tzinfo=UTC)
 N = 256
@@ -497,3 +499,84 @@ def test_seeding_the_last_lines_restores_the_references_exactly() -> None:
     for name in ("center_mean_step_ref", "center_mean_step_held", "field_step_held"):
         assert got[name] == pytest.approx(want[name], nan_ok=True), name
     assert abs(got["center_mean_step_held"] - 3e6) < 20e3
+
+
+# -- the weighted common-mode search ---------------------------------------------------
+
+
+def test_weighted_step_score_is_the_z_of_inverse_variance_weighted_means() -> None:
+    """With per-pixel σ the score of the reported range is the two-sample z of
+    inverse-variance weighted means, (m_in − m_out)/√(1/W_in + 1/W_out) with W = Σ 1/σ²
+    (Bevington & Robinson, Data Reduction and Error Analysis, 3rd ed., §4.1), the means
+    taken here with numpy's np.average, over the robust pixel-to-pixel scatter of
+    change/σ when that exceeds 1; the 5-pixel plateau is placed exactly."""
+    rng = np.random.default_rng(11)
+    n = 64
+    sigma = rng.uniform(0.5e6, 2.0e6, n)
+    change = rng.normal(0.0, sigma)
+    change[30:35] += 6e6
+    seg = best_level_segment(change, 4, sigma)
+    assert seg is not None
+    assert (seg.start, seg.stop) == (30, 35)
+    w = 1.0 / sigma**2
+    inside = np.zeros(n, bool)
+    inside[30:35] = True
+    m_in = np.average(change[inside], weights=w[inside])
+    m_out = np.average(change[~inside], weights=w[~inside])
+    z = (m_in - m_out) / np.sqrt(1 / w[inside].sum() + 1 / w[~inside].sum())
+    # ... divided by the pixel-to-pixel scatter of change/σ when that exceeds 1 (scipy's
+    # normal-scaled MAD of the neighbour differences about 0, over √2).
+    diffs = np.diff(change / sigma)
+    scatter = median_abs_deviation(diffs, center=lambda a, axis: 0.0, scale="normal")
+    assert seg.value == pytest.approx(m_in, rel=1e-9)
+    assert seg.score == pytest.approx(abs(z) / max(1.0, scatter / np.sqrt(2)), rel=1e-9)
+
+
+def test_a_pixel_with_a_large_sigma_cannot_make_a_step() -> None:
+    """A 20 MHz jump in two pixels whose own σ is 20 MHz (a fit that barely held, or a
+    wall that moved) stays insignificant; the same jump with the line's 0.5 MHz σ is a
+    step."""
+    rng = np.random.default_rng(3)
+    n = 64
+    sigma = np.full(n, 0.5e6)
+    change = rng.normal(0.0, sigma)
+    change[20:24] += 20e6
+    loud = sigma.copy()
+    loud[20:24] = 20e6
+    quiet = best_level_segment(change, 4, loud)
+    assert quiet is None or quiet.score < 4.0
+    found = best_level_segment(change, 4, sigma)
+    assert found is not None
+    assert found.score > 20
+    assert (found.start, found.stop) == (20, 24)
+
+
+def _nv_pair_hz(b_par_t: float, b_perp_t: float) -> tuple[float, float]:
+    """f₋, f₊ of the NV ground-state spin-1 Hamiltonian H/h = D S_z² + γ(B∥ S_z + B⊥ S_x),
+    from numpy's eigensolver."""
+    s = 1 / np.sqrt(2)
+    sx = np.array([[0, s, 0], [s, 0, s], [0, s, 0]])
+    sz = np.diag([1.0, 0.0, -1.0])
+    h = D_ROOM_HZ * sz @ sz + GAMMA_NV_HZ_PER_T * (b_par_t * sz + b_perp_t * sx)
+    e = np.linalg.eigvalsh(h)
+    return e[1] - e[0], e[2] - e[0]
+
+
+def test_common_mode_noise_uses_the_eigensolver_slope_of_the_line_mean() -> None:
+    """The sample term of common_mode_sigma is |d[(f₋+f₊)/2]/dB⊥| · |ΔB⊥| with the slope
+    3γ²B⊥/D (PHYSICS.md §2): checked against a central difference of the exact
+    eigenfrequencies from numpy's eigensolver at B∥ = 1 mT, B⊥ = 2 mT (within 2 %)."""
+    b_par, b_perp, h = 1e-3, 2e-3, 1e-7
+    hi, lo = _nv_pair_hz(b_par, b_perp + h), _nv_pair_hz(b_par, b_perp - h)
+    slope = (sum(hi) / 2 - sum(lo) / 2) / (2 * h)
+    assert 3 * GAMMA_NV_HZ_PER_T**2 * b_perp / D_ROOM_HZ == pytest.approx(slope, rel=0.02)
+    n = 4
+    prev = {
+        "field_nv_t": np.full(n, b_par),
+        "field_perp_t": np.full(n, b_perp),
+        "center_mean_sigma_hz": np.zeros(n),
+    }
+    now = {**prev, "field_nv_t": prev["field_nv_t"] + np.array([0.0, 1e-5, -1e-4, np.nan])}
+    got = common_mode_sigma(now, prev, transverse_ratio=1.0)
+    want = np.abs(slope) * np.array([0.0, 1e-5, 1e-4, 0.0])
+    assert got == pytest.approx(want, rel=0.02, abs=1.0)

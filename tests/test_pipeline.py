@@ -736,3 +736,47 @@ def test_only_a_few_scans_stay_open(scan_files: Path, tmp_path: Path) -> None:
         assert pipeline.scan_progress()["scan-0"] == (2, 2)
     finally:
         pipeline.close()
+
+
+def test_a_profile_rule_override_applies_to_its_scans_only(tmp_path: Path) -> None:
+    """Two scans lose their fluorescence the same way; the one whose profile turns
+    fluorescence_lost off (rule_overrides) does not raise it (the rules it used to
+    explain speak instead), the other raises it alone."""
+    profiles = tmp_path / "profiles"
+    profiles.mkdir()
+    (profiles / "dim-sample.yaml").write_text(
+        "rule_overrides:\n  fluorescence_lost: {enabled: false}\n", encoding="utf-8"
+    )
+    for scan_id, profile in (("plain-scan", None), ("dim-scan", "dim-sample")):
+        ds.run_scan(
+            ds.DemoConfig(
+                scene=ds.labyrinth(),
+                n_lines=12,
+                n_pixels=16,
+                seed=5,
+                scan_id=scan_id,
+                profile=profile,
+                faults=(ds.parse_fault("fluorescence_lost@9:0"),),
+            ),
+            tmp_path / "incoming",
+            tmp_path / "truth",
+        )
+    config = _config(tmp_path, profiles_dir=str(profiles))
+    pipeline = LinePipeline(config)
+    try:
+        for scan_id in ("plain-scan", "dim-scan"):
+            for path in _files(tmp_path / "incoming" / scan_id):
+                pipeline.process(path)
+    finally:
+        pipeline.close()
+    raised = {
+        scan_id: {
+            e.rule
+            for e in read_alert_log(config.paths.alert_log, scan_id=scan_id)
+            if e.state == "raised"
+        }
+        for scan_id in ("plain-scan", "dim-scan")
+    }
+    assert raised["plain-scan"] == {"fluorescence_lost"}
+    assert raised["dim-scan"]
+    assert "fluorescence_lost" not in raised["dim-scan"]

@@ -864,3 +864,70 @@ def test_a_roughness_step_that_comes_and_goes_is_not_raised() -> None:
     held = _jump_events({"field_step_held": -1.3}, line_12=step)
     assert [(e.state, e.line_index) for e in held] == [("raised", 13)]
     assert held[0].message.startswith("stand-off change suspected")
+
+
+# -- rule sets per sample type ----------------------------------------------------------
+
+
+@dataclass
+class _Cfg:
+    rules: list[dict[str, object]]
+    rule_overrides: dict[str, dict[str, object]]
+    source: Path | None = None
+
+
+def test_rule_overrides_change_one_setting_and_keep_the_rest() -> None:
+    """rule_overrides changes the named settings of the named rules only; every other
+    rule and setting is the built-in one."""
+    got = load_rules(
+        _Cfg(rules=[], rule_overrides={"resonance_jump": {"center_mean_step_hz_above": 2e6}})
+    )
+    base = {r.name: r for r in default_rules().rules}
+    jump = {r.name: r for r in got.rules}["resonance_jump"]
+    assert jump.center_mean_step_hz_above == 2e6
+    assert jump.model_copy(update={"center_mean_step_hz_above": 1e6}) == base["resonance_jump"]
+    assert [r for r in got.rules if r.name != "resonance_jump"] == [
+        r for r in default_rules().rules if r.name != "resonance_jump"
+    ]
+
+
+@pytest.mark.parametrize(
+    ("overrides", "key", "words"),
+    [
+        ({"resonance_jmp": {"z_above": 4}}, "rule_overrides.resonance_jmp", "'resonance_jump'"),
+        ({"resonance_jump": {"z_abov": 4}}, "rule_overrides.resonance_jump.z_abov", "unknown key"),
+        ({"zfs_drift": {"drift_hz_above": -1}}, "rule_overrides.zfs_drift.drift_hz_above", "-1"),
+        ({"zfs_drift": {"kind": "threshold"}}, "rule_overrides.zfs_drift.kind", "cannot change"),
+        ({"zfs_drift": 3}, "rule_overrides.zfs_drift", "expected a mapping"),
+    ],
+)
+def test_rule_override_errors_name_the_file_and_key_path(
+    overrides: dict[str, object], key: str, words: str
+) -> None:
+    """A bad override stops with the file, the key path, and what was found or meant."""
+    with pytest.raises(ConfigError) as info:
+        load_rules(_Cfg(rules=[], rule_overrides=overrides, source=Path("p.yaml")))  # type: ignore[arg-type]
+    assert info.value.key_path == key
+    assert str(info.value).startswith(f"p.yaml: {key}: ")
+    assert words in str(info.value)
+
+
+def test_each_scan_is_judged_by_its_own_rule_set_also_after_a_restart() -> None:
+    """Two scans in one engine: the one given a rule set without fluorescence_lost raises
+    nothing on the same PL collapse that the other raises; a JSON round trip of the
+    state keeps each scan's set."""
+    quiet = load_rules(_Cfg(rules=[], rule_overrides={"fluorescence_lost": {"enabled": False}}))
+    engine = RuleEngine(default_rules(), clock=FakeClock())
+    engine.use_rules("afm", quiet)
+    pl = [2e5] * 10 + [0.4e5] * 3
+    raised: dict[str, list[str]] = {"plain": [], "afm": []}
+    for scan in raised:
+        for i, v in enumerate(pl):
+            m = dataclasses.replace(_metrics(i, pl_median_per_s=v), scan_id=scan)
+            raised[scan] += [e.rule for e in engine.evaluate_line(scan, m) if e.state == "raised"]
+    assert raised == {"plain": ["fluorescence_lost"], "afm": []}
+    state = json.loads(json.dumps(engine.state_dict()))
+    again = RuleEngine.from_state(default_rules(), state, clock=FakeClock())
+    assert again.rules_for("afm") == quiet
+    assert again.rules_for("plain") == default_rules()
+    assert [e.rule for e in again.active()] == ["fluorescence_lost"]

@@ -311,18 +311,23 @@ def _steps(
             "median": st[0],
             "spread": st[1],
         }
-        seen[ch] = entry
         # Against the reference of the last few lines the range must show the step too
         # (same sign, comparable size), or the "step" only undoes an odd previous line.
         ref = float(getattr(m, f"{ch}_step_ref"))
-        credible = not math.isfinite(ref) or (
-            ref * v > 0 and abs(ref) >= spec.hold_fraction * abs(v)
-        )
+        credible = _agrees(ref, v, spec.hold_fraction)
+        entry["credible"] = credible
+        seen[ch] = entry
         if steps and credible:
             flagged[ch] = entry
         elif steps:
             undoing[ch] = entry
     return flagged, undoing, seen
+
+
+def _agrees(ref: float, step: float, fraction: float) -> bool:
+    """Whether a step's value against the reference of the last lines (``ref``) shows
+    the step too: same sign and at least ``fraction`` of it (True without a reference)."""
+    return not math.isfinite(ref) or (ref * step > 0 and abs(ref) >= fraction * abs(step))
 
 
 def _already_moving(before: float, step: float, fraction: float) -> bool:
@@ -358,9 +363,12 @@ def _excursion(
             continue
         v, p = float(now["value"]), float(before["value"])
         thr = float(getattr(spec, _THRESHOLD_FIELD[ch]))
+        # The previous line's departure must have been one against its own reference
+        # too: a line that only returned from an odd line before it made no excursion.
         if (
             v * p < 0
             and abs(p) >= max(spec.hold_fraction * abs(v), thr)
+            and before.get("credible", True)
             and _overlap(now["range"], before["range"])
         ):
             out[ch] = before
