@@ -158,7 +158,7 @@ class ResonanceJumpSpec(RuleSpec):
     field_step_log_ratio_above: float = Field(default=1.0, gt=0.0)
     pl_step_fraction_above: float = Field(default=0.1, gt=0.0, lt=1.0)
     center_mean_step_hz_above: float = Field(default=1.0e6, gt=0.0)
-    center_mean_step_t_above: float = Field(default=6.5, gt=0.0)
+    center_mean_step_t_above: float = Field(default=6.0, gt=0.0)
     z_above: float = Field(default=5.0, gt=0.0)
     pl_drop_fraction_for_crash: float = Field(default=0.1, gt=0.0, lt=1.0)
     hold_fraction: float = Field(default=0.5, gt=0.0, lt=1.0)
