@@ -116,8 +116,10 @@ class ResonanceJumpSpec(RuleSpec):
     A channel steps when its value passes the absolute threshold AND its robust z against
     the baseline of clean lines passes ``z_above``; the common-mode channel, whose
     narrow steps (a touch over a few pixels) are noisy line to line, instead needs its
-    search statistic (a two-sample t against the rest of the line, with the line's own
-    pixel noise) above ``center_mean_step_t_above``. Verdicts: PL fell by at least
+    search statistic above ``center_mean_step_t_above``: the two-sample z of the range's
+    inverse-variance weighted mean against the rest of the line, each pixel's variance
+    being its fits' plus the shift the sample's own field change can give it
+    (:func:`strayline.metrics.common_mode_sigma`). Verdicts: PL fell by at least
     ``pl_drop_fraction_for_crash`` → tip crash suspected; the step reverted on a later
     line → sample touched (transient); a common-mode shift alone → contact (strain or
     heating); a roughness change alone → stand-off change.
@@ -138,7 +140,8 @@ class ResonanceJumpSpec(RuleSpec):
     (a feature that moved on, a shift that grew or changed sign, a roughness change that
     came and went) is not confirmed and raises nothing. A line that steps back by the
     thresholds to the reference, over pixels where the line before it stepped the other
-    way by at least ``hold_fraction`` of that and past the size threshold, raises that
+    way by at least ``hold_fraction`` of that and past the size threshold (and against
+    its own reference, so a return from an odd line is no excursion), raises that
     one-line excursion as a touch at once.
 
     Steadiness: a common-mode step counts only where the common mode was steady before
