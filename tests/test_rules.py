@@ -831,11 +831,11 @@ def test_a_step_where_the_common_mode_was_already_moving_its_way_is_not_a_step(
 
 
 def test_a_one_line_excursion_is_raised_from_its_way_back() -> None:
-    """A 3 MHz common-mode excursion of line 12 alone, too weak on its own (t = 6 < 8),
+    """A 3 MHz common-mode excursion of line 12 alone, too weak on its own (t = 5 < 6),
     is raised as a transient touch on line 13, whose step back (t = 20) is about 0
     against the lines before it, and cleared on line 14 (strain shifts D: Doherty et al.,
     PRL 112, 047601 (2014), PHYSICS.md §7)."""
-    weak = {**_STEP_AT_12, "center_mean_step_score": 6.0}
+    weak = {**_STEP_AT_12, "center_mean_step_score": 5.0}
     back = {
         "center_mean_step": -3e6,
         "center_mean_step_score": 20.0,
@@ -848,6 +848,33 @@ def test_a_one_line_excursion_is_raised_from_its_way_back() -> None:
     assert [(e.state, e.line_index) for e in events] == [("raised", 13), ("cleared", 14)]
     assert events[0].message.startswith("sample touched (transient): the step at line 12")
     assert events[0].pixel_range == (60, 120)
+
+
+def test_a_held_step_back_to_where_a_weak_departure_left_is_called_a_touch() -> None:
+    """A +3 MHz common-mode departure on line 10 too weak to step (t = 4), a −3 MHz step
+    on line 12 that line 13 keeps: the step returns to the level line 10 left, so it is
+    raised as a transient touch naming both lines, and cleared on the next quiet line,
+    not held as a new contact (strain shifts D while the tip presses: Doherty et al.,
+    PRL 112, 047601 (2014), PHYSICS.md §7)."""
+    lines = {
+        10: {**_STEP_AT_12, "center_mean_step_score": 4.0},
+        12: {
+            **_STEP_AT_12,
+            "center_mean_step": -3e6,
+            "center_mean_step_ref": -3e6,
+            "center_mean_step_range": (62, 118),
+        },
+        13: {"center_mean_step_held": -2.8e6},
+    }
+    engine = RuleEngine(RulesConfig(rules=[ResonanceJumpSpec()]), clock=FakeClock())
+    events = []
+    for k in range(20):
+        events += engine.evaluate_line("night-run", _jump_metrics(k, **lines.get(k, {})))
+    assert [(e.state, e.line_index) for e in events] == [("raised", 13), ("cleared", 14)]
+    assert events[0].message.startswith(
+        "sample touched (transient): left its level at line 10 (below the thresholds there) "
+        "and came back at line 12"
+    )
 
 
 def test_a_roughness_step_that_comes_and_goes_is_not_raised() -> None:

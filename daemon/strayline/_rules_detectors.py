@@ -273,6 +273,8 @@ _THRESHOLD_FIELD = {
 # Channels a touched sample steps and then reverts: contact strain shifts D (common mode)
 # and may dim the PL; a stand-off that springs back within one line is not modelled.
 _TRANSIENT_CHANNELS = ("pl", "center_mean")
+# Lines of the same direction looked back on for where a returning step departed.
+_RECENT_LINES = 4
 
 
 def _steps(
@@ -447,6 +449,12 @@ def _jump_verdict(
 ) -> str:
     chans = pending["channels"]
     line = pending["line"]
+    departed = pending.get("departed_at")
+    if departed is not None:
+        return (
+            f"sample touched (transient): left its level at line {departed} (below the "
+            f"thresholds there) and came back at line {line}"
+        )
     if reverted_at is not None:
         return f"sample touched (transient): the step at line {line} reverted at line {reverted_at}"
     pl = chans.get("pl")
@@ -486,6 +494,36 @@ def _new_pending(
     return replace(obs, run_lines=1) if fresh else obs
 
 
+def _departure(
+    spec: ResonanceJumpSpec, pending: Mapping[str, Any], recent: list[Any]
+) -> int | None:
+    """The line where the level a held step returns to was left, or None.
+
+    A step that holds may be the *end* of a touch whose start stayed below the
+    thresholds: within the last few lines of the same direction before the step, a PL or
+    common-mode change of the other sign over overlapping pixels, at least
+    ``hold_fraction`` of the step. The latest such line is returned.
+    """
+    found = None
+    for past in recent:
+        if not isinstance(past, Mapping) or past.get("direction") != pending["direction"]:
+            continue
+        if not 0 < pending["line"] - int(past["line"]) <= _RECENT_LINES:
+            continue
+        for ch in _TRANSIENT_CHANNELS:
+            now, then = pending["channels"].get(ch), past["seen"].get(ch)
+            if now is None or then is None:
+                continue
+            v, p = float(now["value"]), float(then["value"])
+            if (
+                v * p < 0
+                and abs(p) >= spec.hold_fraction * abs(v)
+                and _overlap(now["range"], then["range"])
+            ):
+                found = int(past["line"])
+    return found
+
+
 def _confirm(
     spec: ResonanceJumpSpec,
     pending: dict[str, Any],
@@ -522,6 +560,10 @@ def _confirm(
         )
     pending["confirmed"] = True
     reverted_at = m.line_index if hold == "reverted" else None
+    departed = _departure(spec, pending, memo.get("recent", [])) if hold == "held" else None
+    if departed is not None:  # the end of an excursion: back where it was
+        pending["departed_at"] = departed
+        reverted_at = pending["line"]
     pending["verdict"] = _jump_verdict(spec, pending, reverted_at)
     pending["reverted_at"] = reverted_at
     return _jump_obs(
@@ -535,6 +577,8 @@ def _resonance_jump(spec: ResonanceJumpSpec) -> Detector:
     def detect(m: LineMetrics, base: BaselineView, memo: dict[str, Any]) -> Observation | None:
         flagged, undoing, seen = _steps(spec, m, base)
         last = memo.get("last")
+        recent = [*memo.get("recent", ()), last] if isinstance(last, Mapping) else []
+        memo["recent"] = recent[-2 * _RECENT_LINES :]  # both directions
         memo["last"] = {"line": m.line_index, "direction": m.direction, "seen": seen}
         pending = memo.get("pending")
         raised = memo.get("raised")
