@@ -220,7 +220,7 @@ class ZfsDriftSpec(RuleSpec):
     name: str = Field(default="zfs_drift", pattern=r"^[a-z][a-z0-9_]*$")
     kind: Literal["zfs_drift"] = "zfs_drift"
     severity: Severity = "warning"
-    persistence_lines: int = Field(default=3, ge=1, le=1000)
+    persistence_lines: int = Field(default=6, ge=1, le=1000)
     clear_lines: int = Field(default=3, ge=1, le=10000)
     drift_hz_above: float = Field(default=0.37e6, gt=0.0)
     drift_hz_clear_below: float = Field(default=0.22e6, gt=0.0)
