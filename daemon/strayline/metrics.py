@@ -298,14 +298,16 @@ def common_mode_sigma(
     """1σ of the line-to-line change of (f₋ + f₊)/2 that the sample alone explains, Hz.
 
     ``σ² = σ²_now + σ²_prev + (3γ² B⊥ |ΔB⊥| / D)²`` with ``|ΔB⊥| = transverse_ratio ·
-    |ΔB∥|``, ``B⊥`` of the previous line and ``D`` the room-temperature zero-field
-    splitting: the fit errors of the two centre means, plus the shift a change of the
-    transverse field gives, from f± ≈ D + 3(γB⊥)²/(2D) ± γB∥ (PHYSICS.md §2), whose
-    derivative is d[(f₋ + f₊)/2]/dB⊥ = 3γ²B⊥/D. A moving domain wall changes B∥ and B⊥
-    together and is down-weighted where it does; a touch shifts D alone, leaves B∥ where
-    it was and keeps the fit errors alone as its noise.
+    |ΔB∥|``, ``B⊥`` the mean of the two lines' (where known) and ``D`` the
+    room-temperature zero-field splitting: the fit errors of the two centre means, plus
+    the shift a change of the transverse field gives, from f± ≈ D + 3(γB⊥)²/(2D) ± γB∥
+    (PHYSICS.md §2): (3γ²/2D)(B⊥,now² − B⊥,prev²) = (3γ²/D) B̄⊥ ΔB⊥ exactly, B̄⊥ being the
+    mean. A moving domain wall changes B∥ and B⊥ together and is down-weighted where it
+    does; a touch shifts D alone, leaves B∥ where it was and keeps the fit errors alone
+    as its noise (the B⊥ the inversion reads into its shift then multiplies ΔB∥ ≈ 0).
     """
-    perp = np.where(np.isfinite(prev["field_perp_t"]), prev["field_perp_t"], 0.0)
+    perp = _row_mean(np.stack([rows["field_perp_t"], prev["field_perp_t"]], axis=1))
+    perp = np.where(np.isfinite(perp), perp, 0.0)
     d_par = np.abs(rows["field_nv_t"] - prev["field_nv_t"])
     d_par = np.where(np.isfinite(d_par), d_par, 0.0)
     sample = 3.0 * GAMMA_NV_HZ_PER_T**2 * perp * transverse_ratio * d_par / D_ROOM_HZ
