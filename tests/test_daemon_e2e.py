@@ -17,7 +17,14 @@ from strayline._ledger import parse_records
 from strayline._store_layout import LEDGER_FILE
 from strayline.config import load_config
 from strayline.service import process_folder
-from tests._daemon import start_daemon, stop_daemon, wait_committed, write_config
+from tests._daemon import (
+    json_records,
+    start_daemon,
+    stop_daemon,
+    wait_committed,
+    wait_until,
+    write_config,
+)
 
 pytestmark = pytest.mark.slow
 
@@ -143,9 +150,17 @@ def test_kill_9_at_random_instants_loses_nothing(tmp_path: Path) -> None:
         time.sleep(rng.uniform(0.8, 3.0))
         proc.send_signal(signal.SIGKILL)
         proc.wait(timeout=30)
+    log = tmp_path / "output" / "strayline.log.jsonl"
+
+    def readies() -> int:
+        return sum(r.get("event") == "service_ready" for r in json_records(log))
+
+    before = readies()
     proc = start_daemon(config, tmp_path / "daemon.log")
     try:
         assert wait_committed(store, n_lines, proc, timeout_s=120) == n_lines
+        # (the killed runs may have committed every line: let this one come up first)
+        wait_until(lambda: readies() > before, proc, 60.0, "the last start")
     finally:
         assert stop_daemon(proc) == 0
     for name in ("field_nv_t", "field_nv_sigma_t", "freq_lo_hz", "status", "y"):
@@ -158,3 +173,14 @@ def test_kill_9_at_random_instants_loses_nothing(tmp_path: Path) -> None:
     records, _ = parse_records((store / LEDGER_FILE).read_bytes(), "ledger")
     commits = [(r["line_index"], r["direction"]) for r in records if r["event"] == "commit"]
     assert sorted(commits) == [(i, "forward") for i in range(n_lines)], "a line committed twice"
+
+
+@pytest.mark.parametrize("delay_s", [0.3, 1.0])
+def test_a_stop_request_while_starting_exits_cleanly(tmp_path: Path, delay_s: float) -> None:
+    """SIGTERM while the daemon is still importing and arming (before the service takes
+    the signals over) ends it with exit code 0, as systemd expects of a stop (common
+    practice: a unit stopped mid-start is not a failed unit)."""
+    config = write_config(tmp_path)
+    proc = start_daemon(config, tmp_path / "daemon.log")
+    time.sleep(delay_s)
+    assert stop_daemon(proc) == 0

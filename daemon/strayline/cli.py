@@ -9,6 +9,7 @@ from __future__ import annotations
 import argparse
 import json
 import os
+import signal
 import sys
 from collections.abc import Sequence
 from pathlib import Path
@@ -203,7 +204,16 @@ def _configure_logs(config) -> None:  # type: ignore[no-untyped-def]
     )
 
 
+def _exit_before_start(signum: int, frame: object) -> None:
+    """SIGTERM/SIGINT while the daemon is still starting: nothing has begun, exit 0."""
+    raise SystemExit(EXIT_OK)
+
+
 def _cmd_run(args: argparse.Namespace) -> int:
+    # Until the service takes the signals over, a stop request ends the start cleanly
+    # (systemd may stop a unit that is still importing its libraries).
+    for signum in (signal.SIGTERM, signal.SIGINT):
+        signal.signal(signum, _exit_before_start)
     from strayline.service import Service
 
     config = _load(args)
