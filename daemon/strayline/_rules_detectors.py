@@ -363,16 +363,10 @@ def _excursion(
         now, before = undoing.get(ch), last["seen"].get(ch)
         if now is None or before is None:
             continue
-        v, p = float(now["value"]), float(before["value"])
         thr = float(getattr(spec, _THRESHOLD_FIELD[ch]))
         # The previous line's departure must have been one against its own reference
         # too: a line that only returned from an odd line before it made no excursion.
-        if (
-            v * p < 0
-            and abs(p) >= max(spec.hold_fraction * abs(v), thr)
-            and before.get("credible", True)
-            and _overlap(now["range"], before["range"])
-        ):
+        if before.get("credible", True) and _opposes(now, before, spec.hold_fraction, thr):
             out[ch] = before
     if not out:
         return None
@@ -387,6 +381,19 @@ def _excursion(
     }
     pending["verdict"] = _jump_verdict(spec, pending, m.line_index)
     return pending
+
+
+def _opposes(
+    now: Mapping[str, Any], then: Mapping[str, Any], fraction: float, floor: float
+) -> bool:
+    """Whether step ``then`` went the other way over overlapping pixels, by at least
+    ``fraction`` of step ``now`` and at least ``floor``."""
+    v, p = float(now["value"]), float(then["value"])
+    return (
+        v * p < 0
+        and abs(p) >= max(fraction * abs(v), floor)
+        and _overlap(now["range"], then["range"])
+    )
 
 
 def _overlap(a: list[int], b: list[int]) -> bool:
@@ -514,12 +521,7 @@ def _departure(
             now, then = pending["channels"].get(ch), past["seen"].get(ch)
             if now is None or then is None:
                 continue
-            v, p = float(now["value"]), float(then["value"])
-            if (
-                v * p < 0
-                and abs(p) >= spec.hold_fraction * abs(v)
-                and _overlap(now["range"], then["range"])
-            ):
+            if _opposes(now, then, spec.hold_fraction, 0.0):
                 found = int(past["line"])
     return found
 

@@ -369,12 +369,15 @@ class _ScanState:
 
 
 class RuleEngine:
-    """Evaluates a rule set line by line and on clock ticks; one engine for all scans.
+    """Evaluates rule sets line by line and on clock ticks; one engine for all scans.
+
+    Each scan is judged by its own rule set (its sample-type profile's, given with
+    :meth:`use_rules`; ``rules`` otherwise), which the saved state keeps.
 
     Parameters
     ----------
     rules : RulesConfig
-        The rule set (disabled rules are skipped).
+        The rule set of scans given none of their own (disabled rules are skipped).
     clock : callable returning POSIX seconds
         Time source for event times and stall detection (inject a fake one in tests).
     """
