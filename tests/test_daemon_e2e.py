@@ -182,5 +182,10 @@ def test_a_stop_request_while_starting_exits_cleanly(tmp_path: Path, delay_s: fl
     practice: a unit stopped mid-start is not a failed unit)."""
     config = write_config(tmp_path)
     proc = start_daemon(config, tmp_path / "daemon.log")
-    time.sleep(delay_s)
-    assert stop_daemon(proc) == 0
+    try:
+        time.sleep(delay_s)
+        assert stop_daemon(proc) == 0
+    finally:
+        if proc.poll() is None:  # never leave a daemon behind a failed assertion
+            proc.kill()
+            proc.wait(timeout=30)

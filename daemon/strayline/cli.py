@@ -204,22 +204,21 @@ def _configure_logs(config) -> None:  # type: ignore[no-untyped-def]
     )
 
 
-def _exit_before_start(signum: int, frame: object) -> None:
-    """SIGTERM/SIGINT while the daemon is still starting: nothing has begun, exit 0."""
-    raise SystemExit(EXIT_OK)
-
-
 def _cmd_run(args: argparse.Namespace) -> int:
-    # Until the service takes the signals over, a stop request ends the start cleanly
-    # (systemd may stop a unit that is still importing its libraries).
+    # A stop request while the daemon is still starting (systemd may stop a unit that is
+    # still importing its libraries) is remembered and handed to the service once it
+    # exists, which then exits cleanly before its first line.
+    early: list[int] = []
     for signum in (signal.SIGTERM, signal.SIGINT):
-        signal.signal(signum, _exit_before_start)
+        signal.signal(signum, lambda n, _f: early.append(n))
     from strayline.service import Service
 
     config = _load(args)
     _configure_logs(config)
     service = Service(config)
     service.install_signal_handlers()
+    if early:
+        service.request_stop()
     return service.run()
 
 
