@@ -378,6 +378,25 @@ def test_zfs_rule_is_settled_from_the_field_section(scan_files: Path, tmp_path: 
 # -- profiles ---------------------------------------------------------------------------
 
 
+def _labyrinth_scan(
+    tmp_path: Path, scan_id: str, profile: str | None, n_lines: int, *faults: str
+) -> None:
+    """A small demo labyrinth scan (16 pixels, seed 5) naming ``profile``, in incoming/."""
+    ds.run_scan(
+        ds.DemoConfig(
+            scene=ds.labyrinth(),
+            n_lines=n_lines,
+            n_pixels=16,
+            seed=5,
+            scan_id=scan_id,
+            profile=profile,
+            faults=tuple(ds.parse_fault(f) for f in faults),
+        ),
+        tmp_path / "incoming",
+        tmp_path / "truth",
+    )
+
+
 def _profiles(tmp_path: Path) -> Path:
     folder = tmp_path / "profiles"
     folder.mkdir()
@@ -393,18 +412,7 @@ def test_an_unusable_profile_falls_back_to_the_base_config_with_one_warning(
     """A scan naming an unknown or invalid profile is processed with the base config and
     raises one warning that names the profile and the available ones."""
     profiles = _profiles(tmp_path)
-    ds.run_scan(
-        ds.DemoConfig(
-            scene=ds.labyrinth(),
-            n_lines=3,
-            n_pixels=16,
-            seed=5,
-            scan_id="prof-scan",
-            profile=profile,
-        ),
-        tmp_path / "incoming",
-        tmp_path / "truth",
-    )
+    _labyrinth_scan(tmp_path, "prof-scan", profile, 3)
     config = _config(tmp_path, profiles_dir=str(profiles))
     pipeline = LinePipeline(config)
     try:
@@ -426,18 +434,7 @@ def test_an_unusable_profile_falls_back_to_the_base_config_with_one_warning(
 def test_a_usable_profile_is_applied_without_warning(tmp_path: Path) -> None:
     """A scan naming an existing, valid profile gets it, recorded in the store."""
     profiles = _profiles(tmp_path)
-    ds.run_scan(
-        ds.DemoConfig(
-            scene=ds.labyrinth(),
-            n_lines=2,
-            n_pixels=16,
-            seed=5,
-            scan_id="film-scan",
-            profile="thin-film",
-        ),
-        tmp_path / "incoming",
-        tmp_path / "truth",
-    )
+    _labyrinth_scan(tmp_path, "film-scan", "thin-film", 2)
     config = _config(tmp_path, profiles_dir=str(profiles))
     pipeline = LinePipeline(config)
     try:
@@ -748,19 +745,7 @@ def test_a_profile_rule_override_applies_to_its_scans_only(tmp_path: Path) -> No
         "rule_overrides:\n  fluorescence_lost: {enabled: false}\n", encoding="utf-8"
     )
     for scan_id, profile in (("plain-scan", None), ("dim-scan", "dim-sample")):
-        ds.run_scan(
-            ds.DemoConfig(
-                scene=ds.labyrinth(),
-                n_lines=12,
-                n_pixels=16,
-                seed=5,
-                scan_id=scan_id,
-                profile=profile,
-                faults=(ds.parse_fault("fluorescence_lost@9:0"),),
-            ),
-            tmp_path / "incoming",
-            tmp_path / "truth",
-        )
+        _labyrinth_scan(tmp_path, scan_id, profile, 12, "fluorescence_lost@9:0")
     config = _config(tmp_path, profiles_dir=str(profiles))
     pipeline = LinePipeline(config)
     try:

@@ -165,8 +165,9 @@ def best_level_segment(
         scale = robust_scatter(change)
         weight = ok.astype(float)
     else:
-        scale = max(1.0, robust_scatter(np.where(ok, change / np.where(ok, sigma, 1.0), np.nan)))
-        weight = np.where(ok, 1.0 / np.where(ok, sigma, 1.0) ** 2, 0.0)
+        safe = np.where(ok, sigma, 1.0)
+        scale = max(1.0, robust_scatter(np.where(ok, change / safe, np.nan)))
+        weight = np.where(ok, 1.0 / safe**2, 0.0)
     if not np.isfinite(scale):
         return None
     scale = max(scale, 1e-300)
