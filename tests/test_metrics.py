@@ -509,7 +509,9 @@ def test_weighted_step_score_is_the_z_of_inverse_variance_weighted_means() -> No
     inverse-variance weighted means, (m_in − m_out)/√(1/W_in + 1/W_out) with W = Σ 1/σ²
     (Bevington & Robinson, Data Reduction and Error Analysis, 3rd ed., §4.1), the means
     taken here with numpy's np.average, over the robust pixel-to-pixel scatter of
-    change/σ when that exceeds 1; the 5-pixel plateau is placed exactly."""
+    change/σ when that exceeds 1, each change clipped to ±6σ in the statistic (Huber,
+    Ann. Math. Statist. 35, 73 (1964)) but not in the reported mean; the 5-pixel plateau
+    is placed exactly."""
     rng = np.random.default_rng(11)
     n = 64
     sigma = rng.uniform(0.5e6, 2.0e6, n)
@@ -521,21 +523,25 @@ def test_weighted_step_score_is_the_z_of_inverse_variance_weighted_means() -> No
     w = 1.0 / sigma**2
     inside = np.zeros(n, bool)
     inside[30:35] = True
-    m_in = np.average(change[inside], weights=w[inside])
-    m_out = np.average(change[~inside], weights=w[~inside])
-    z = (m_in - m_out) / np.sqrt(1 / w[inside].sum() + 1 / w[~inside].sum())
-    # ... divided by the pixel-to-pixel scatter of change/σ when that exceeds 1 (scipy's
+    # The noise scale: the pixel-to-pixel scatter of change/σ when that exceeds 1 (scipy's
     # normal-scaled MAD of the neighbour differences about 0, over √2).
     diffs = np.diff(change / sigma)
     scatter = median_abs_deviation(diffs, center=lambda a, axis: 0.0, scale="normal")
+    scale = max(1.0, scatter / np.sqrt(2))
+    m_in = np.average(change[inside], weights=w[inside])
+    clipped = np.clip(change, -6 * scale * sigma, 6 * scale * sigma)
+    c_in = np.average(clipped[inside], weights=w[inside])
+    c_out = np.average(clipped[~inside], weights=w[~inside])
+    z = (c_in - c_out) / np.sqrt(1 / w[inside].sum() + 1 / w[~inside].sum())
     assert seg.value == pytest.approx(m_in, rel=1e-9)
-    assert seg.score == pytest.approx(abs(z) / max(1.0, scatter / np.sqrt(2)), rel=1e-9)
+    assert seg.score == pytest.approx(abs(z) / scale, rel=1e-9)
 
 
 def test_a_pixel_with_a_large_sigma_cannot_make_a_step() -> None:
     """A 20 MHz jump in two pixels whose own σ is 20 MHz (a fit that barely held, or a
     wall that moved) stays insignificant; the same jump with the line's 0.5 MHz σ is a
-    step."""
+    step, scoring the most four pixels clipped at 6σ can: 6·√4 = 12, less the rest of
+    the line's share."""
     rng = np.random.default_rng(3)
     n = 64
     sigma = np.full(n, 0.5e6)
@@ -547,8 +553,32 @@ def test_a_pixel_with_a_large_sigma_cannot_make_a_step() -> None:
     assert quiet is None or quiet.score < 4.0
     found = best_level_segment(change, 4, sigma)
     assert found is not None
-    assert found.score > 20
+    assert 10.0 < found.score <= 12.0
     assert (found.start, found.stop) == (20, 24)
+    assert found.value == pytest.approx(20e6, abs=1e6)
+
+
+def test_one_misfitted_pixel_cannot_make_a_range_alone() -> None:
+    """One pixel whose centre moved by 100σ (a dip taken for the wrong one) in a line of
+    noise scores at most 6σ/√4 = 3 over the smallest range of 4 pixels, well below the
+    threshold of 6, while a real 4-pixel shift of 8σ each is still found with a score near
+    8·√4 = 16 less the clip (Huber-type clipping, Huber, Ann. Math. Statist. 35, 73
+    (1964); common practice for a robust search)."""
+    rng = np.random.default_rng(5)
+    n = 64
+    sigma = np.full(n, 1e6)
+    noise = rng.normal(0.0, sigma)
+    outlier = noise.copy()
+    outlier[40] += 100e6
+    seg = best_level_segment(outlier, 4, sigma)
+    assert seg is None or seg.score < 4.5
+    shifted = noise.copy()
+    shifted[20:24] += 8e6
+    found = best_level_segment(shifted, 4, sigma)
+    assert found is not None
+    assert (found.start, found.stop) == (20, 24)
+    assert 10.0 < found.score <= 12.5
+    assert found.value == pytest.approx(8e6 + noise[20:24].mean(), abs=0.3e6)
 
 
 def _nv_pair_hz(b_par_t: float, b_perp_t: float) -> tuple[float, float]:

@@ -851,13 +851,14 @@ def test_a_one_line_excursion_is_raised_from_its_way_back() -> None:
 
 
 def test_a_held_step_back_to_where_a_weak_departure_left_is_called_a_touch() -> None:
-    """A +3 MHz common-mode departure on line 10 too weak to step (t = 4), a −3 MHz step
-    on line 12 that line 13 keeps: the step returns to the level line 10 left, so it is
+    """A +3 MHz common-mode departure on line 10 too weak to step (t = 2.5, too weak to
+    pair), a −3 MHz step on line 12 that line 13 keeps: the step returns to the level
+    line 10 left, so it is
     raised as a transient touch naming both lines, and cleared on the next quiet line,
     not held as a new contact (strain shifts D while the tip presses: Doherty et al.,
     PRL 112, 047601 (2014), PHYSICS.md §7)."""
     lines = {
-        10: {**_STEP_AT_12, "center_mean_step_score": 4.0},
+        10: {**_STEP_AT_12, "center_mean_step_score": 2.5},
         12: {
             **_STEP_AT_12,
             "center_mean_step": -3e6,
@@ -875,6 +876,66 @@ def test_a_held_step_back_to_where_a_weak_departure_left_is_called_a_touch() -> 
         "sample touched (transient): left its level at line 10 (below the thresholds there) "
         "and came back at line 12"
     )
+
+
+def _pair_events(departure: dict[str, object], back_score: float) -> list:
+    """Resonance-jump events of 20 lines: a +3 MHz departure on line 10 of statistic 5.5
+    (or as given), a −3 MHz return on line 12 of statistic ``back_score``."""
+    back = {
+        **_STEP_AT_12,
+        "center_mean_step": -3e6,
+        "center_mean_step_score": back_score,
+        "center_mean_step_ref": -3e6,
+        "center_mean_step_range": (62, 118),
+    }
+    lines = {10: {**_STEP_AT_12, "center_mean_step_score": 5.5, **departure}, 12: back}
+    engine = RuleEngine(RulesConfig(rules=[ResonanceJumpSpec()]), clock=FakeClock())
+    events = []
+    for k in range(20):
+        events += engine.evaluate_line("night-run", _jump_metrics(k, **lines.get(k, {})))
+    return events
+
+
+@pytest.mark.parametrize(
+    ("t_departure", "t_back", "raised"),
+    [(5.5, 5.9, True), (5.0, 5.5, False), (2.9, 5.9, False), (5.9, 2.9, False)],
+)
+def test_a_weak_departure_and_a_weak_return_together_are_a_touch(
+    t_departure: float, t_back: float, raised: bool
+) -> None:
+    """A +3 MHz departure on line 10 and the −3 MHz return on line 12, each below the
+    single-line statistic of 6, are raised together on line 12 when (t₁ + t₂)/√2 (Stouffer's
+    combination of two z scores, Whitlock, J. Evol. Biol. 18, 1368 (2005)) reaches 8 and
+    each is at least 3; (5.5 + 5.9)/√2 = 8.06 is, (5.0 + 5.5)/√2 = 7.4 is not, nor a pair
+    with one side under 3 (strain shifts D while the tip presses: Doherty et al., PRL 112,
+    047601 (2014), PHYSICS.md §7). Cleared on the next quiet line."""
+    events = _pair_events({"center_mean_step_score": t_departure}, t_back)
+    if not raised:
+        assert events == []
+        return
+    assert [(e.state, e.line_index) for e in events] == [("raised", 12), ("cleared", 13)]
+    assert events[0].message.startswith(
+        "sample touched (transient): left its level at line 10 (below the thresholds there) "
+        "and came back at line 12"
+    )
+    assert events[0].pixel_range == (62, 118)
+
+
+@pytest.mark.parametrize(
+    "departure",
+    [
+        {"center_mean_step_ref": 0.2e6},  # only undid an odd line before it
+        {"center_mean_step_before": 2.5e6},  # a feature already coming into view
+        {"center_mean_step_range": (150, 200)},  # elsewhere on the line
+        {"center_mean_step": 1.2e6},  # less than half of the return
+    ],
+)
+def test_a_pair_needs_a_departure_that_was_one(departure: dict[str, object]) -> None:
+    """No pair is raised when the departure only undid an odd line (not credible against
+    its own reference), followed a ramp already under way, lay over other pixels, or was
+    less than half the size of the return (common practice: the return of a touch goes
+    back to where the departure left)."""
+    assert _pair_events(departure, 5.9) == []
 
 
 def test_a_roughness_step_that_comes_and_goes_is_not_raised() -> None:

@@ -294,14 +294,12 @@ def _steps(
             continue
         thr = float(getattr(spec, _THRESHOLD_FIELD[ch]))
         z = _z(v, st[0], st[1], 0.1 * thr)
+        score = steady = None
         if ch == "center_mean":
             score = float(m.center_mean_step_score)
             before = float(m.center_mean_step_before)
-            steps = (
-                abs(v) >= thr
-                and score >= spec.center_mean_step_t_above
-                and not _already_moving(before, v, spec.center_mean_before_fraction_below)
-            )
+            steady = not _already_moving(before, v, spec.center_mean_before_fraction_below)
+            steps = abs(v) >= thr and score >= spec.center_mean_step_t_above and steady
         else:
             steps = abs(v) >= thr and abs(z) >= spec.z_above
         entry = {
@@ -313,6 +311,8 @@ def _steps(
             "median": st[0],
             "spread": st[1],
         }
+        if score is not None:
+            entry["score"], entry["steady"] = score, steady
         # Against the reference of the last few lines the range must show the step too
         # (same sign, comparable size), or the "step" only undoes an odd previous line.
         ref = float(getattr(m, f"{ch}_step_ref"))
@@ -526,6 +526,61 @@ def _departure(
     return found
 
 
+def _touch_pair(
+    spec: ResonanceJumpSpec, m: LineMetrics, seen: Mapping[str, Any], recent: list[Any]
+) -> dict[str, Any] | None:
+    """A common-mode departure and its return, each too weak alone, that together are a
+    touch: the pending record of the return (already reverted), or None.
+
+    The current line's common-mode step goes back over pixels where one of the last few
+    lines of the same direction stepped the other way (each by at least ``hold_fraction``
+    of the other and past the size threshold); that departure was credible against its
+    own reference and steady before it; each search statistic is at least half of
+    ``center_mean_step_t_above``, and their sum over √2 (Stouffer's combination of two
+    z scores, e.g. Whitlock, J. Evol. Biol. 18, 1368 (2005)) at least
+    ``center_mean_pair_t_above``. The lines of a scan see different noise, so the two
+    statistics are close to independent; taking the best segment of each line makes the
+    combination a ranking rather than a calibrated z, which is why the threshold is a
+    setting measured on clean scans (benchmarks/alert_eval.py).
+    """
+    now = seen.get("center_mean")
+    if now is None:
+        return None
+    thr = spec.center_mean_step_hz_above
+    floor = 0.5 * spec.center_mean_step_t_above
+    best: tuple[float, Mapping[str, Any], int] | None = None
+    for past in recent:
+        if not isinstance(past, Mapping) or past.get("direction") != m.direction:
+            continue
+        if not 0 < m.line_index - int(past["line"]) <= _RECENT_LINES:
+            continue
+        then = past["seen"].get("center_mean")
+        if then is None or not (then.get("credible", True) and then.get("steady", True)):
+            continue
+        s_now, s_then = float(now.get("score", 0.0)), float(then.get("score", 0.0))
+        if min(s_now, s_then) < floor:
+            continue
+        h = spec.hold_fraction
+        if not (_opposes(now, then, h, thr) and _opposes(then, now, h, thr)):
+            continue
+        combined = (s_now + s_then) / math.sqrt(2.0)
+        if combined >= spec.center_mean_pair_t_above and (best is None or combined > best[0]):
+            best = (combined, then, int(past["line"]))
+    if best is None:
+        return None
+    pending: dict[str, Any] = {
+        "line": m.line_index,
+        "direction": m.direction,
+        "channels": {"center_mean": now},
+        "primary": "center_mean",
+        "departed_at": best[2],
+        "reverted_at": m.line_index,
+        "confirmed": True,
+    }
+    pending["verdict"] = _jump_verdict(spec, pending, m.line_index)
+    return pending
+
+
 def _confirm(
     spec: ResonanceJumpSpec,
     pending: dict[str, Any],
@@ -624,21 +679,20 @@ def _resonance_jump(spec: ResonanceJumpSpec) -> Detector:
                 text=msg,
                 clear_message=msg,
             )
-        excursion = _excursion(spec, m, undoing, last)
-        if excursion is not None:  # the previous line departed and this one returned
-            memo["pending"] = excursion
+        # The previous line departed and this one returned (an excursion), or a weak
+        # departure of the last lines and a weak return here together pass (a pair).
+        touch = _excursion(spec, m, undoing, last)
+        if touch is None and pending is None:
+            touch = _touch_pair(spec, m, seen, recent)
+        if touch is not None:
+            memo["pending"] = touch
             obs = _jump_obs(
-                excursion,
-                m,
-                raise_cond=True,
-                clear_cond=False,
-                clear_now=False,
-                text=excursion["verdict"],
+                touch, m, raise_cond=True, clear_cond=False, clear_now=False, text=touch["verdict"]
             )
             return replace(obs, run_lines=2)
-        if pending is None:
-            return _new_pending(spec, m, flagged, memo, fresh=False) if flagged else None
-        return _confirm(spec, pending, m, flagged, memo)
+        if pending is not None:
+            return _confirm(spec, pending, m, flagged, memo)
+        return _new_pending(spec, m, flagged, memo, fresh=False) if flagged else None
 
     return detect
 

@@ -149,6 +149,13 @@ class ResonanceJumpSpec(RuleSpec):
     before it (``center_mean_step_before``) must not already show the step's sign past
     ``center_mean_before_fraction_below`` of the step. A feature coming into view raises
     (f₋ + f₊)/2 over a few lines, through its transverse field; a touch steps at once.
+
+    Pairs: a touch too weak to step on either of its ends is raised on its return when a
+    common-mode step goes back over pixels where one of the last four lines of the same
+    direction stepped the other way (credible and steady, each at least
+    ``hold_fraction`` of the other and past the size threshold), each statistic at least
+    half of ``center_mean_step_t_above`` and (t₁ + t₂)/√2 at least
+    ``center_mean_pair_t_above``.
     """
 
     name: str = Field(default="resonance_jump", pattern=r"^[a-z][a-z0-9_]*$")
@@ -166,6 +173,7 @@ class ResonanceJumpSpec(RuleSpec):
     pl_drop_fraction_for_crash: float = Field(default=0.1, gt=0.0, lt=1.0)
     hold_fraction: float = Field(default=0.5, gt=0.0, lt=1.0)
     center_mean_before_fraction_below: float = Field(default=0.4, gt=0.0)
+    center_mean_pair_t_above: float = Field(default=8.0, gt=0.0)
     advice: str = (
         "check the tip (approach, feedback, topography channel); the map after this "
         "line is not comparable with the map before it; consider stopping the scan"

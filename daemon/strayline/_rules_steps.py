@@ -41,6 +41,12 @@ _MAD_TO_SIGMA = 1.482602218505602  # 1 / Φ⁻¹(3/4): MAD of a normal sample �
 _SPLIT_T = 6.0
 # Segment boundaries searched exhaustively; longer lines are searched coarse-then-fine.
 _MAX_GRID = 257
+# With per-pixel σ, a pixel's standardised change counts at most this much in the search
+# statistic (Huber's clipping of residuals: Huber, Ann. Math. Statist. 35, 73 (1964)):
+# one misfitted pixel (a dip taken for the wrong one moves its centre by tens of σ) must
+# not carry a range of min_pixels on its own, while a real shift of many σ still scores
+# about _Z_CLIP·√n over n pixels [cp].
+_Z_CLIP = 6.0
 
 
 @dataclass(frozen=True)
@@ -147,8 +153,11 @@ def best_level_segment(
         weighted means (e.g. Bevington & Robinson, *Data Reduction and Error Analysis*,
         3rd ed., §4.1) — divided by ``max(1, s)``, ``s`` the robust scatter of
         ``change / sigma`` (so that σ that understate the pixel-to-pixel scatter cannot
-        inflate it). Without it every pixel weighs the same and the noise scale is the
-        robust scatter of ``change``.
+        inflate it); in the statistic (not in the reported mean) each pixel's change is
+        clipped to ``±6σ`` (σ times that scatter) so that one misfitted pixel cannot
+        make a range alone.
+        Without it every pixel weighs the same and the noise scale is the robust
+        scatter of ``change``.
 
     Returns
     -------
@@ -161,18 +170,21 @@ def best_level_segment(
         ok &= np.isfinite(sigma) & (sigma > 0)
     if n < min_pixels or ok.sum() < min_pixels:
         return None
+    values = np.where(ok, change, 0.0)
     if sigma is None:
         scale = robust_scatter(change)
         weight = ok.astype(float)
+        clipped = values
     else:
         safe = np.where(ok, sigma, 1.0)
         scale = max(1.0, robust_scatter(np.where(ok, change / safe, np.nan)))
         weight = np.where(ok, 1.0 / safe**2, 0.0)
+        clipped = np.clip(values, -_Z_CLIP * scale * safe, _Z_CLIP * scale * safe)
     if not np.isfinite(scale):
         return None
     scale = max(scale, 1e-300)
-    c = np.where(ok, change, 0.0) * weight
-    cs = np.concatenate([[0.0], np.cumsum(c)])
+    cs = np.concatenate([[0.0], np.cumsum(values * weight)])
+    cc = np.concatenate([[0.0], np.cumsum(clipped * weight)])
     cw = np.concatenate([[0.0], np.cumsum(weight)])
     cn = np.concatenate([[0.0], np.cumsum(ok.astype(float))])
 
@@ -181,11 +193,13 @@ def best_level_segment(
         w_in = cw[b] - cw[a]
         w_out = cw[n] - w_in
         s_in = cs[b] - cs[a]
+        c_in = cc[b] - cc[a]
         with np.errstate(invalid="ignore", divide="ignore"):
             m_in = s_in / w_in
             m_out = np.where(w_out > 0, (cs[n] - s_in) / w_out, 0.0)
             inv = 1.0 / w_in + np.where(w_out > 0, 1.0 / w_out, 0.0)
-            score = np.abs(m_in - m_out) / (scale * np.sqrt(inv))
+            c_out = np.where(w_out > 0, (cc[n] - c_in) / w_out, 0.0)
+            score = np.abs(c_in / w_in - c_out) / (scale * np.sqrt(inv))
         edge = (a == 0) | (b == n)
         whole = (a == 0) & (b == n)
         # A segment inside the line counts only when it, not its surroundings, changed.
@@ -202,7 +216,7 @@ def best_level_segment(
     # significantly (t >= _SPLIT_T); its own score is the t of its mean against zero.
     w_all = float(cw[n])
     m_whole = float(cs[n]) / w_all
-    whole_score = abs(m_whole) * np.sqrt(w_all) / scale
+    whole_score = abs(float(cc[n]) / w_all) * np.sqrt(w_all) / scale
     if score < _SPLIT_T and whole_score > score:
         return Segment(0, n, m_whole, whole_score)
     if score < 0:
