@@ -34,7 +34,7 @@ DZFS_DT_HZ_PER_K = -74.2e3
 class BaselineView(Protocol):
     """What a detector may ask of the baseline."""
 
-    def stats(self, name: str) -> tuple[float, float] | None: ...
+    def stats(self, name: str, *, magnitude: bool = False) -> tuple[float, float] | None: ...
 
     def anchor(self, name: str) -> float | None: ...
 
@@ -289,11 +289,13 @@ def _steps(
     for ch, _unit, _what in _CHANNELS:
         v = float(getattr(m, f"{ch}_step"))
         rng = getattr(m, f"{ch}_step_range")
-        st = base.stats(f"{ch}_step")
+        # Is the step's size unusual among the step sizes of good lines? (Their signs
+        # can split them into two groups, about whose median the MAD collapses.)
+        st = base.stats(f"{ch}_step", magnitude=True)
         if not math.isfinite(v) or rng is None or st is None:
             continue
         thr = float(getattr(spec, _THRESHOLD_FIELD[ch]))
-        z = _z(v, st[0], st[1], 0.1 * thr)
+        z = _z(abs(v), st[0], st[1], 0.1 * thr)
         score = steady = None
         if ch == "center_mean":
             score = float(m.center_mean_step_score)
@@ -301,7 +303,7 @@ def _steps(
             steady = not _already_moving(before, v, spec.center_mean_before_fraction_below)
             steps = abs(v) >= thr and score >= spec.center_mean_step_t_above and steady
         else:
-            steps = abs(v) >= thr and abs(z) >= spec.z_above
+            steps = abs(v) >= thr and z >= spec.z_above
         entry = {
             "value": v,
             "range": [int(rng[0]), int(rng[1])],
@@ -400,10 +402,11 @@ def _overlap(a: list[int], b: list[int]) -> bool:
     return a[0] < b[1] and b[0] < a[1]
 
 
-def _reverts(pending: Mapping[str, Any], m: LineMetrics) -> bool:
-    """A step of opposite sign and at least half the size, in a channel that stepped
-    before, over the same pixels (the way back needs no threshold of its own: it is
+def _reverts(pending: Mapping[str, Any], m: LineMetrics) -> set[str]:
+    """The channels that stepped before and now step back: opposite sign, at least half
+    the size, over the same pixels (the way back needs no threshold of its own: it is
     looked for only where a step was seen)."""
+    out = set()
     for ch, old in pending["channels"].items():
         v = float(getattr(m, f"{ch}_step"))
         rng = getattr(m, f"{ch}_step_range")
@@ -411,8 +414,8 @@ def _reverts(pending: Mapping[str, Any], m: LineMetrics) -> bool:
             continue
         back = v * old["value"] < 0 and abs(v) >= 0.5 * abs(old["value"])
         if back and _overlap([int(rng[0]), int(rng[1])], old["range"]):
-            return True
-    return False
+            out.add(ch)
+    return out
 
 
 def _hold(spec: ResonanceJumpSpec, pending: Mapping[str, Any], m: LineMetrics) -> str:
@@ -602,7 +605,11 @@ def _confirm(
                 for ch, old in pending["channels"].items()
             )
         )
-        hold = "reverted" if _reverts(pending, m) else "held" if again else "unconfirmed"
+        back = _reverts(pending, m)
+        if back.intersection(_TRANSIENT_CHANNELS):
+            hold = "reverted"
+        else:  # a roughness change that came and went is no touch (see _hold)
+            hold = "held" if again and not back else "unconfirmed"
     if hold == "unconfirmed":
         memo.pop("pending", None)
         if flagged:
