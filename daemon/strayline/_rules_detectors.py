@@ -34,7 +34,7 @@ DZFS_DT_HZ_PER_K = -74.2e3
 class BaselineView(Protocol):
     """What a detector may ask of the baseline."""
 
-    def stats(self, name: str, *, magnitude: bool = False) -> tuple[float, float] | None: ...
+    def stats(self, name: str) -> tuple[float, float] | None: ...
 
     def anchor(self, name: str) -> float | None: ...
 
@@ -289,13 +289,11 @@ def _steps(
     for ch, _unit, _what in _CHANNELS:
         v = float(getattr(m, f"{ch}_step"))
         rng = getattr(m, f"{ch}_step_range")
-        # Is the step's size unusual among the step sizes of good lines? (Their signs
-        # can split them into two groups, about whose median the MAD collapses.)
-        st = base.stats(f"{ch}_step", magnitude=True)
+        st = base.stats(f"{ch}_step")
         if not math.isfinite(v) or rng is None or st is None:
             continue
         thr = float(getattr(spec, _THRESHOLD_FIELD[ch]))
-        z = _z(abs(v), st[0], st[1], 0.1 * thr)
+        z = _z(v, st[0], st[1], 0.1 * thr)
         score = steady = None
         if ch == "center_mean":
             score = float(m.center_mean_step_score)
@@ -303,7 +301,7 @@ def _steps(
             steady = not _already_moving(before, v, spec.center_mean_before_fraction_below)
             steps = abs(v) >= thr and score >= spec.center_mean_step_t_above and steady
         else:
-            steps = abs(v) >= thr and z >= spec.z_above
+            steps = abs(v) >= thr and abs(z) >= spec.z_above
         entry = {
             "value": v,
             "range": [int(rng[0]), int(rng[1])],

@@ -113,9 +113,8 @@ class ContrastCollapsedSpec(RuleSpec):
 class ResonanceJumpSpec(RuleSpec):
     """A step against the previous line over a pixel range, confirmed on the next line.
 
-    A channel steps when its value passes the absolute threshold AND the robust z of its
-    size against the step sizes of clean lines (their median and 1.4826·MAD) passes
-    ``z_above``; the common-mode channel, whose
+    A channel steps when its value passes the absolute threshold AND its robust z against
+    the baseline of clean lines passes ``z_above``; the common-mode channel, whose
     narrow steps (a touch over a few pixels) are noisy line to line, instead needs its
     search statistic above ``center_mean_step_t_above``: the two-sample z of the range's
     inverse-variance weighted mean against the rest of the line, each pixel's variance

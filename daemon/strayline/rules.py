@@ -212,19 +212,12 @@ class RollingBaseline:
             if len(anchor) < self.anchor_lines:
                 anchor.append(float(v))
 
-    def stats(self, name: str, *, magnitude: bool = False) -> tuple[float, float] | None:
-        """(median, 1.4826·MAD) over the window, or None with too few finite values.
-
-        ``magnitude=True``: of the absolute values, for a change of either sign (a step)
-        whose good values can fall in two groups, one of each sign, where the MAD about
-        a median inside the larger group collapses; the question asked of a step is then
-        whether its size is unusual among the sizes of the steps of good lines.
-        """
+    def stats(self, name: str) -> tuple[float, float] | None:
+        """(median, 1.4826·MAD) over the window, or None with too few finite values."""
         values = self._values.get(name)
         if values is None:
             return None
         a = np.asarray(values, dtype=float)
-        a = np.abs(a) if magnitude else a
         a = a[np.isfinite(a)]
         if a.size < self.min_lines:
             return None
