@@ -830,6 +830,25 @@ def test_a_step_where_the_common_mode_was_already_moving_its_way_is_not_a_step(
     assert [(e.state, e.line_index) for e in events] == ([("raised", 13)] if raised else [])
 
 
+@pytest.mark.parametrize(("t_departure", "t_back"), [(2.5, 20.0), (4.0, 6.5)])
+def test_a_one_line_excursion_must_pass_as_a_pair(t_departure: float, t_back: float) -> None:
+    """The same one-line excursion as below raises nothing when its departure is under
+    half the single-line statistic (2.5 < 3) or the two together stay under the pair
+    threshold ((4.0 + 6.5)/√2 = 7.4 < 8): a wall that steps and steps back is as sharp on
+    its way back as a touch (common practice; Stouffer's combination: Whitlock, J. Evol.
+    Biol. 18, 1368 (2005))."""
+    weak = {**_STEP_AT_12, "center_mean_step_score": t_departure}
+    back = {
+        "center_mean_step": -3e6,
+        "center_mean_step_score": t_back,
+        "center_mean_step_range": (62, 118),
+        "center_mean_step_first_pixel": 62,
+        "center_mean_step_ref": 0.05e6,
+        "center_mean_step_before": 3e6,
+    }
+    assert _jump_events(back, line_12=weak) == []
+
+
 def test_a_one_line_excursion_is_raised_from_its_way_back() -> None:
     """A 3 MHz common-mode excursion of line 12 alone, too weak on its own (t = 5 < 6),
     is raised as a transient touch on line 13, whose step back (t = 20) is about 0

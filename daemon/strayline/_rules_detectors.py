@@ -366,8 +366,13 @@ def _excursion(
         thr = float(getattr(spec, _THRESHOLD_FIELD[ch]))
         # The previous line's departure must have been one against its own reference
         # too: a line that only returned from an odd line before it made no excursion.
-        if before.get("credible", True) and _opposes(now, before, spec.hold_fraction, thr):
-            out[ch] = before
+        if not (before.get("credible", True) and _opposes(now, before, spec.hold_fraction, thr)):
+            continue
+        # A common-mode excursion must pass as a pair too: a wall that steps and steps
+        # back is as sharp on its way back as a touch.
+        if ch == "center_mean" and _combined(spec, now, before) < spec.center_mean_pair_t_above:
+            continue
+        out[ch] = before
     if not out:
         return None
     primary = max(out, key=lambda c: out[c]["ratio"])
@@ -527,6 +532,15 @@ def _departure(
     return found
 
 
+def _combined(spec: ResonanceJumpSpec, now: Mapping[str, Any], then: Mapping[str, Any]) -> float:
+    """(t₁ + t₂)/√2 of two common-mode steps' search statistics, 0 if either is under
+    half of ``center_mean_step_t_above`` (see :func:`_touch_pair`)."""
+    s_now, s_then = float(now.get("score", 0.0)), float(then.get("score", 0.0))
+    if min(s_now, s_then) < 0.5 * spec.center_mean_step_t_above:
+        return 0.0
+    return (s_now + s_then) / math.sqrt(2.0)
+
+
 def _touch_pair(
     spec: ResonanceJumpSpec, m: LineMetrics, seen: Mapping[str, Any], recent: list[Any]
 ) -> dict[str, Any] | None:
@@ -548,7 +562,6 @@ def _touch_pair(
     if now is None:
         return None
     thr = spec.center_mean_step_hz_above
-    floor = 0.5 * spec.center_mean_step_t_above
     best: tuple[float, Mapping[str, Any], int] | None = None
     for past in recent:
         if not isinstance(past, Mapping) or past.get("direction") != m.direction:
@@ -558,13 +571,10 @@ def _touch_pair(
         then = past["seen"].get("center_mean")
         if then is None or not (then.get("credible", True) and then.get("steady", True)):
             continue
-        s_now, s_then = float(now.get("score", 0.0)), float(then.get("score", 0.0))
-        if min(s_now, s_then) < floor:
-            continue
         h = spec.hold_fraction
         if not (_opposes(now, then, h, thr) and _opposes(then, now, h, thr)):
             continue
-        combined = (s_now + s_then) / math.sqrt(2.0)
+        combined = _combined(spec, now, then)
         if combined >= spec.center_mean_pair_t_above and (best is None or combined > best[0]):
             best = (combined, then, int(past["line"]))
     if best is None:
