@@ -412,6 +412,28 @@ def _confirm(
     )
 
 
+def _after_raise(
+    raised: Mapping[str, Any], m: LineMetrics, flagged: Mapping[str, Any], clear_when_quiet: bool
+) -> Observation:
+    """A line after the raise: cleared at once when the step reverts, or when it had
+    reverted already and nothing new steps; otherwise kept (cleared after quiet lines
+    only with ``clear_when_quiet``)."""
+    clear = now = True
+    if _reverts(raised, m):
+        msg = (
+            f"the step from line {raised['line']} reverted at line {m.line_index}: "
+            "transient, consistent with the sample being touched"
+        )
+    elif raised.get("reverted_at") is not None and not flagged:
+        msg = f"no new step since line {raised['reverted_at']}"
+    else:
+        msg = f"no new step for the last lines; the shift from line {raised['line']} has persisted"
+        clear, now = not flagged and clear_when_quiet, False
+    return _jump_obs(
+        raised, m, raise_cond=False, clear_cond=clear, clear_now=now, text=msg, clear_message=msg
+    )
+
+
 def resonance_jump_detector(spec: ResonanceJumpSpec) -> Detector:
     """The line detector of a resonance-jump rule."""
     clear_when_quiet = spec.clear_when_quiet
@@ -425,45 +447,7 @@ def resonance_jump_detector(spec: ResonanceJumpSpec) -> Detector:
         pending = memo.get("pending")
         raised = memo.get("raised")
         if raised is not None:  # the engine has raised: look for recovery or more steps
-            if _reverts(raised, m):
-                msg = (
-                    f"the step from line {raised['line']} reverted at line {m.line_index}: "
-                    "transient, consistent with the sample being touched"
-                )
-                return _jump_obs(
-                    raised,
-                    m,
-                    raise_cond=False,
-                    clear_cond=True,
-                    clear_now=True,
-                    text=msg,
-                    clear_message=msg,
-                )
-            if raised.get("reverted_at") is not None and not flagged:
-                msg = f"no new step since line {raised['reverted_at']}"
-                return _jump_obs(
-                    raised,
-                    m,
-                    raise_cond=False,
-                    clear_cond=True,
-                    clear_now=True,
-                    text=msg,
-                    clear_message=msg,
-                )
-            quiet = not flagged
-            msg = (
-                f"no new step for the last lines; the shift from line {raised['line']} "
-                "has persisted"
-            )
-            return _jump_obs(
-                raised,
-                m,
-                raise_cond=False,
-                clear_cond=quiet and clear_when_quiet,
-                clear_now=False,
-                text=msg,
-                clear_message=msg,
-            )
+            return _after_raise(raised, m, flagged, clear_when_quiet)
         # The previous line departed and this one returned (an excursion), or a weak
         # departure of the last lines and a weak return here together pass (a pair).
         touch = _excursion(spec, m, undoing, last)
