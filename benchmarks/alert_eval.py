@@ -17,6 +17,9 @@ fit, field, store, metrics, rules, alerts — processes them with the built-in r
   lattice; a current-carrying wire; the weak µT antiferromagnet-like domains under the
   thin-film antiferromagnet profile).
 
+Scenes that are drawn at random (labyrinths, weak domains) are drawn anew with each
+scan's seed, so the scans explore samples as well as noise.
+
 ``acquisition_stalled`` is time-based, so it is evaluated with a **fake clock**: the
 scan's files are re-stamped on a simulated instrument timeline (one line every
 ``n_pixels × n_freq × dwell_s``, ±2 % jitter, the stall inserted as ``pause_lines`` line
@@ -37,6 +40,7 @@ from __future__ import annotations
 
 import argparse
 import dataclasses
+import inspect
 import logging
 import math
 import os
@@ -56,6 +60,7 @@ from typing import Any
 import numpy as np
 
 import demo_stream as ds
+from demo_stream.scenes import SCENES as SCENE_FACTORIES
 from strayline.alerts import AlertSink, read_alert_log
 from strayline.config import Config, config_from_mapping
 from strayline.lines import read_line_file, write_line_file
@@ -92,8 +97,12 @@ class SceneSpec:
     params: tuple[tuple[str, float], ...] = ()
     pixel_m: float = 30e-9
 
-    def build(self) -> ds.Scene:
-        return ds.make_scene(self.factory, **dict(self.params))
+    def build(self, seed: int) -> ds.Scene:
+        """The scene; one drawn with ``seed`` where its factory draws (labyrinths)."""
+        params: dict[str, float] = dict(self.params)
+        if "seed" in inspect.signature(SCENE_FACTORIES[self.factory]).parameters:
+            params["seed"] = seed
+        return ds.make_scene(self.factory, **params)
 
 
 SCENES: dict[str, SceneSpec] = {
@@ -202,7 +211,7 @@ def _demo(case: Case) -> ds.DemoConfig:
     scene = SCENES[case.scene]
     faults = (ds.parse_fault(case.fault),) if case.fault else ()
     return ds.DemoConfig(
-        scene=scene.build(),
+        scene=scene.build(case.seed),
         tip=case.setup.tip_model(),
         n_lines=case.n_lines,
         n_pixels=case.n_pixels,
