@@ -287,18 +287,28 @@ def _departure(
     ``hold_fraction`` of the step. The latest such line is returned.
     """
     found = None
-    for past in recent:
-        if not isinstance(past, Mapping) or past.get("direction") != pending["direction"]:
-            continue
-        if not 0 < pending["line"] - int(past["line"]) <= _RECENT_LINES:
-            continue
+    for line, seen in _recent_steps(recent, pending["direction"], pending["line"]):
         for ch in _TRANSIENT_CHANNELS:
-            now, then = pending["channels"].get(ch), past["seen"].get(ch)
+            now, then = pending["channels"].get(ch), seen.get(ch)
             if now is None or then is None:
                 continue
             if _opposes(now, then, spec.hold_fraction, 0.0):
-                found = int(past["line"])
+                found = line
     return found
+
+
+def _recent_steps(
+    recent: list[Any], direction: str, line: int
+) -> list[tuple[int, Mapping[str, Any]]]:
+    """(line, steps seen) of the remembered lines of ``direction`` within the
+    ``_RECENT_LINES`` before ``line``, oldest first."""
+    return [
+        (int(past["line"]), past["seen"])
+        for past in recent
+        if isinstance(past, Mapping)
+        and past.get("direction") == direction
+        and 0 < line - int(past["line"]) <= _RECENT_LINES
+    ]
 
 
 def _combined(spec: ResonanceJumpSpec, now: Mapping[str, Any], then: Mapping[str, Any]) -> float:
@@ -330,22 +340,17 @@ def _touch_pair(
     now = seen.get("center_mean")
     if now is None:
         return None
-    thr = spec.center_mean_step_hz_above
-    best: tuple[float, Mapping[str, Any], int] | None = None
-    for past in recent:
-        if not isinstance(past, Mapping) or past.get("direction") != m.direction:
-            continue
-        if not 0 < m.line_index - int(past["line"]) <= _RECENT_LINES:
-            continue
-        then = past["seen"].get("center_mean")
+    thr, h = spec.center_mean_step_hz_above, spec.hold_fraction
+    best: tuple[float, int] | None = None
+    for line, past in _recent_steps(recent, m.direction, m.line_index):
+        then = past.get("center_mean")
         if then is None or not (then.get("credible", True) and then.get("steady", True)):
             continue
-        h = spec.hold_fraction
         if not (_opposes(now, then, h, thr) and _opposes(then, now, h, thr)):
             continue
         combined = _combined(spec, now, then)
         if combined >= spec.center_mean_pair_t_above and (best is None or combined > best[0]):
-            best = (combined, then, int(past["line"]))
+            best = (combined, line)
     if best is None:
         return None
     pending: dict[str, Any] = {
@@ -353,7 +358,7 @@ def _touch_pair(
         "direction": m.direction,
         "channels": {"center_mean": now},
         "primary": "center_mean",
-        "departed_at": best[2],
+        "departed_at": best[1],
         "reverted_at": m.line_index,
         "confirmed": True,
     }
