@@ -120,8 +120,9 @@ def _excursion(
     The current line steps (past the thresholds) back to the reference of the last lines
     over pixels where the previous line of the same direction stepped the other way, by
     at least ``hold_fraction`` of this step and past the size threshold: the previous
-    line departed and returned, as a touched sample does. Returns the pending record of
-    that previous line (already reverted), or None.
+    line departed and returned, as a touched sample does. A common-mode excursion must
+    also pass as a pair (:func:`_combined`). Returns the pending record of that previous
+    line (already reverted), or None.
     """
     if not undoing or not isinstance(last, Mapping):
         return None

@@ -142,7 +142,8 @@ class ResonanceJumpSpec(RuleSpec):
     thresholds to the reference, over pixels where the line before it stepped the other
     way by at least ``hold_fraction`` of that and past the size threshold (and against
     its own reference, so a return from an odd line is no excursion), raises that
-    one-line excursion as a touch at once.
+    one-line excursion as a touch at once (a common-mode one only if it also passes as a
+    pair, below).
 
     Steadiness: a common-mode step counts only where the common mode was steady before
     it: over the step's pixels, the previous line against the reference of the lines

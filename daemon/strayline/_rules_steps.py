@@ -155,9 +155,8 @@ def best_level_segment(
         ``change / sigma`` (so that σ that understate the pixel-to-pixel scatter cannot
         inflate it); in the statistic (not in the reported mean) each pixel's change is
         clipped to ``±6σ`` (σ times that scatter) so that one misfitted pixel cannot
-        make a range alone.
-        Without it every pixel weighs the same and the noise scale is the robust
-        scatter of ``change``.
+        make a range alone. Without it every pixel weighs the same and the noise scale
+        is the robust scatter of ``change``.
 
     Returns
     -------
@@ -174,7 +173,7 @@ def best_level_segment(
     if sigma is None:
         scale = robust_scatter(change)
         weight = ok.astype(float)
-        clipped = values
+        clipped = None
     else:
         safe = np.where(ok, sigma, 1.0)
         scale = max(1.0, robust_scatter(np.where(ok, change / safe, np.nan)))
@@ -184,7 +183,8 @@ def best_level_segment(
         return None
     scale = max(scale, 1e-300)
     cs = np.concatenate([[0.0], np.cumsum(values * weight)])
-    cc = np.concatenate([[0.0], np.cumsum(clipped * weight)])
+    # Sums of the clipped changes, for the statistic (the same sums when nothing clips).
+    cc = cs if clipped is None else np.concatenate([[0.0], np.cumsum(clipped * weight)])
     cw = np.concatenate([[0.0], np.cumsum(weight)])
     cn = np.concatenate([[0.0], np.cumsum(ok.astype(float))])
 
