@@ -5,7 +5,7 @@ Run: ``/work/venv/bin/python benchmarks/alert_eval.py [--quick] [--seeds 20] [--
 For every sample-type profile (the base config alone, and each profile in
 ``config/profiles``) the demo instrument (:mod:`demo_stream`) writes small scans of that
 profile's kind of sample at pace 0 into a scratch folder, and
-:func:`strayline.service.process_folder` — the daemon's own per-line pipeline: validate,
+:func:`strayline.pipeline.process_folder` — the daemon's own per-line pipeline: validate,
 fit, field, store, metrics, rules, alerts — processes them with the built-in rules of
 ``config/rules.yaml``. The alert log is then compared with the fault schedule:
 
@@ -65,9 +65,8 @@ from strayline.alerts import AlertSink, read_alert_log
 from strayline.config import Config, config_from_mapping
 from strayline.lines import read_line_file, write_line_file
 from strayline.logs import configure_logging
-from strayline.physics.hamiltonian import nv_axis
-from strayline.pipeline import LinePipeline
-from strayline.service import process_folder
+from strayline.physics import nv_axis
+from strayline.pipeline import LinePipeline, process_folder
 
 PROFILES_DIR = Path(__file__).resolve().parents[1] / "config" / "profiles"
 SCAN_ID = "eval"

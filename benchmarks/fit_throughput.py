@@ -30,10 +30,10 @@ import numba
 import numpy as np
 from scipy.optimize import OptimizeWarning, curve_fit
 
-from strayline._fit_guess import guess_dips
-from strayline._fit_kernel import fused_pass_batch
-from strayline.fit import FitModel, FitStatus, _start, fit_line
-from strayline.physics.spectrum import lorentzian_dips
+from strayline.fit._guess import guess_dips
+from strayline.fit._kernel import fused_pass_batch
+from strayline.fit.line_fit import FitModel, FitStatus, _start, fit_line
+from strayline.physics import lorentzian_dips
 
 FREQ_HZ = np.linspace(2.77e9, 2.97e9, 201)
 D_HZ = 2.870e9

@@ -40,7 +40,7 @@ import yaml
 import demo_stream as ds
 
 INSTRUMENT_LINE_S = 5.0  # a fast real instrument: one line per 5 s
-LEDGER = Path("ledger") / "records.jsonl"  # the store's ledger file (strayline._store_layout)
+LEDGER = Path("ledger") / "records.jsonl"  # the store's ledger file (strayline.store._layout)
 
 
 class LedgerTail:

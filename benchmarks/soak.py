@@ -35,7 +35,7 @@ import yaml
 
 import demo_stream as ds
 
-LEDGER = Path("ledger") / "records.jsonl"  # the store's ledger file (strayline._store_layout)
+LEDGER = Path("ledger") / "records.jsonl"  # the store's ledger file (strayline.store._layout)
 
 
 @dataclass(frozen=True)

@@ -372,7 +372,7 @@ def wire(*, current_a: float = 1e-3, x0_m: float = 0.0) -> Scene:
         raise ValueError(f"scene 'wire': current_a must be finite; found {current_a}")
 
     def field_t(x_m: np.ndarray, y_m: np.ndarray, standoff_m: float) -> np.ndarray:
-        from strayline.physics.strayfield import line_current_field_t
+        from strayline.physics import line_current_field_t
 
         x = np.asarray(x_m, dtype=float)
         bx, bz = line_current_field_t(x, standoff_m, current_a, x0_m)

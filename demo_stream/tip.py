@@ -44,10 +44,14 @@ import numpy as np
 
 from demo_stream.faults import PIXEL_FAULTS, Fault, fault_mask
 from demo_stream.scenes import Scene
-from strayline.physics.constants import zfs_hz
-from strayline.physics.hamiltonian import nv_axis, to_nv_frame, transition_frequencies_hz
-from strayline.physics.spectrum import lorentzian_dips
-from strayline.physics.strayfield import stray_field_t
+from strayline.physics import (
+    lorentzian_dips,
+    nv_axis,
+    stray_field_t,
+    to_nv_frame,
+    transition_frequencies_hz,
+    zfs_hz,
+)
 
 __all__ = [
     "NV_100_PHI_RAD",

@@ -144,7 +144,7 @@ class DemoConfig:
                     f"demo config: fault {fault.kind!r} must start at a pixel < "
                     f"{self.n_pixels}; found pixel {fault.start_pixel}"
                 )
-        from strayline._h5check import NAME_PATTERN, NAME_RULE
+        from strayline.lines import NAME_PATTERN, NAME_RULE
 
         for key in ("scan_id", "profile"):
             value = getattr(self, key)

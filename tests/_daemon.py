@@ -199,8 +199,8 @@ def wait_until(
 
 def ledger_events(store: Path) -> list[dict[str, Any]]:
     """The ledger records of a store, in order."""
-    from strayline._ledger import parse_records
-    from strayline._store_layout import LEDGER_FILE
+    from strayline.store._layout import LEDGER_FILE
+    from strayline.store._ledger import parse_records
 
     records, _ = parse_records((store / LEDGER_FILE).read_bytes(), "ledger")
     return records
@@ -216,8 +216,8 @@ def pending_lines(records: list[dict[str, Any]]) -> set[tuple[int, str]]:
 
 def committed_keys(store: Path) -> set[tuple[int, str]]:
     """(line, direction) committed in a store's ledger (empty while there is none); cheap."""
-    from strayline._ledger import LedgerState, parse_records
-    from strayline._store_layout import LEDGER_FILE
+    from strayline.store._layout import LEDGER_FILE
+    from strayline.store._ledger import LedgerState, parse_records
 
     try:
         data = (store / LEDGER_FILE).read_bytes()

@@ -14,8 +14,7 @@ import pytest
 from structlog.testing import capture_logs
 
 from strayline import alerts
-from strayline.alerts import AlertSink, format_alert, read_alert_log
-from strayline.rules import AlertEvent
+from strayline.alerts import AlertEvent, AlertSink, format_alert, read_alert_log
 
 EVENT = AlertEvent(
     time="2026-03-01T23:14:05.120+00:00",
@@ -226,7 +225,7 @@ def test_failed_stop_request_leaves_the_old_file_and_no_temp(
     def broken_replace(src: str, dst: str) -> None:
         raise OSError(28, "No space left on device")
 
-    monkeypatch.setattr(alerts.os, "replace", broken_replace)
+    monkeypatch.setattr(os, "replace", broken_replace)
     with capture_logs() as logs:
         AlertSink(None, stop_request_file=stop).deliver(EVENT)
     assert json.loads(stop.read_text(encoding="utf-8")) == {"old": True}

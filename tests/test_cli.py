@@ -12,14 +12,13 @@ import pytest
 import yaml
 
 import demo_stream as ds
-from strayline._ledger import parse_records
-from strayline._store_layout import LEDGER_FILE
-from strayline.alerts import AlertSink, format_alert
+from strayline.alerts import AlertEvent, AlertSink, format_alert
 from strayline.cli import build_parser, main
 from strayline.config import load_config
 from strayline.errors import EXIT_CONFIG
-from strayline.rules import AlertEvent
-from strayline.service import process_folder
+from strayline.pipeline import process_folder
+from strayline.store._layout import LEDGER_FILE
+from strayline.store._ledger import parse_records
 
 REPO = Path(__file__).resolve().parents[1]
 SCAN = "cli-scan"

@@ -13,10 +13,10 @@ import pytest
 import zarr
 
 import demo_stream as ds
-from strayline._ledger import parse_records
-from strayline._store_layout import LEDGER_FILE
 from strayline.config import load_config
-from strayline.service import process_folder
+from strayline.pipeline import process_folder
+from strayline.store._layout import LEDGER_FILE
+from strayline.store._ledger import parse_records
 from tests._daemon import (
     json_records,
     start_daemon,

@@ -9,8 +9,7 @@ from hypothesis import strategies as st
 
 from strayline.field import field_from_fit
 from strayline.fit import FitStatus, LineFit
-from strayline.physics.constants import GAMMA_NV_HZ_PER_T
-from strayline.physics.hamiltonian import transition_frequencies_hz
+from strayline.physics import GAMMA_NV_HZ_PER_T, transition_frequencies_hz
 
 D_HZ = 2.870e9
 

@@ -10,8 +10,7 @@ from scipy.optimize import curve_fit
 
 from strayline.field import field_from_fit
 from strayline.fit import FitModel, FitStatus, LineFit, fit_line
-from strayline.physics.hamiltonian import transition_frequencies_hz
-from strayline.physics.spectrum import lorentzian_dips
+from strayline.physics import lorentzian_dips, transition_frequencies_hz
 
 FREQ_HZ = np.linspace(2.77e9, 2.97e9, 201)
 D_HZ = 2.870e9

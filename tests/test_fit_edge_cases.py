@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 
 from strayline.fit import FitModel, FitStatus, fit_line
-from strayline.physics.spectrum import lorentzian_dips
+from strayline.physics import lorentzian_dips
 
 FREQ_HZ = np.linspace(2.77e9, 2.97e9, 201)
 PAIR_HZ = np.array([2.84e9, 2.90e9])

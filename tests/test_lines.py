@@ -22,8 +22,6 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from strayline import lines as lines_module
-from strayline._h5check import parse_utc_time
 from strayline.errors import LineFileError
 from strayline.lines import (
     FORMAT_NAME,
@@ -37,6 +35,8 @@ from strayline.lines import (
     read_line_file,
     write_line_file,
 )
+from strayline.lines import scan_line as lines_module
+from strayline.lines._h5check import parse_utc_time
 
 T0 = datetime(2025, 3, 14, 9, 26, 53, 250000, tzinfo=UTC)
 NAME = "line_00042_fwd.h5"

@@ -1,4 +1,4 @@
-"""Tests for strayline.metrics: per-line levels, line-to-line changes and step location."""
+"""Tests for strayline.rules.metrics: per-line levels, line-to-line changes and step location."""
 
 from __future__ import annotations
 
@@ -13,21 +13,21 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.stats import median_abs_deviation
 
-from strayline._rules_steps import best_level_segment
 from strayline.field import LineField
 from strayline.fit import FitStatus, LineFit
 from strayline.lines import ScanLine
-from strayline.metrics import (
+from strayline.physics import D_ROOM_HZ, GAMMA_NV_HZ_PER_T
+from strayline.rules._steps import best_level_segment
+from strayline.rules.metrics import (
     ROW_KEYS,
     LineMetrics,
     MetricsOptions,
     MetricsTracker,
     _pixel_median,
     common_mode_sigma,
+    comparison_rows,
     line_metrics,
-    line_rows,
 )
-from strayline.physics.constants import D_ROOM_HZ, GAMMA_NV_HZ_PER_T
 
 T0 = datetime(2026, 3, 2, 1, 0, tzinfo=UTC)
 N = 256
@@ -143,7 +143,7 @@ def test_pl_drop_from_pixel_128_is_located() -> None:
     before = records(seed=1)
     pl = np.full(N, 1.5e5) * (1 + np.random.default_rng(2).normal(0, 0.01, N))
     pl[128:] *= 0.7
-    m = line_metrics(*records(pl_per_s=pl, seed=2), previous_rows=line_rows(*before))
+    m = line_metrics(*records(pl_per_s=pl, seed=2), previous_rows=comparison_rows(*before))
     assert m.pl_step_range == (128, N)
     assert m.pl_step_first_pixel == 128
     assert m.pl_step == pytest.approx(-0.30, abs=0.01)
@@ -159,7 +159,7 @@ def test_backward_line_steps_run_toward_lower_x() -> None:
     pl = np.full(N, 1.5e5)
     pl[:101] *= 0.5
     m = line_metrics(
-        *records(direction="backward", pl_per_s=pl, seed=2), previous_rows=line_rows(*before)
+        *records(direction="backward", pl_per_s=pl, seed=2), previous_rows=comparison_rows(*before)
     )
     assert m.pl_step_range == (0, 101)
     assert m.pl_step_first_pixel == 100
@@ -171,7 +171,7 @@ def test_bounded_common_mode_shift_is_found_inside_the_line() -> None:
     before = records(seed=1)
     cm = np.full(N, 2.8702e9) + np.random.default_rng(3).normal(0, 10e3, N)
     cm[60:120] += 3e6
-    m = line_metrics(*records(center_mean_hz=cm, seed=3), previous_rows=line_rows(*before))
+    m = line_metrics(*records(center_mean_hz=cm, seed=3), previous_rows=comparison_rows(*before))
     assert m.center_mean_step_range == (60, 120)
     assert m.center_mean_step == pytest.approx(3e6, rel=0.01)
     assert m.center_mean_step_to_end == 0.0
@@ -193,7 +193,7 @@ def test_field_roughness_falls_as_exp_minus_2k_delta_with_standoff() -> None:
     opts = MetricsOptions(min_step_pixels=16)
     m = line_metrics(
         *records(field_t=now_b, x_m=x),
-        previous_rows=line_rows(*records(field_t=prev_b, x_m=x)),
+        previous_rows=comparison_rows(*records(field_t=prev_b, x_m=x)),
         options=opts,
     )
     g_prev = np.diff(prev_b) ** 2 - 2 * (2e-6) ** 2
@@ -214,13 +214,13 @@ def test_change_fraction_uses_the_difference_sigma() -> None:
     now_b = np.full(N, 1e-3)
     now_b[:32] += 5.5 * np.sqrt(2) * 2e-6  # just above 5 σ of the difference
     now_b[32:64] += 4.5 * np.sqrt(2) * 2e-6  # just below
-    m = line_metrics(*records(field_t=now_b), previous_rows=line_rows(*prev))
+    m = line_metrics(*records(field_t=now_b), previous_rows=comparison_rows(*prev))
     assert m.field_change_fraction == pytest.approx(32 / N)
 
 
 def test_rows_with_another_pixel_count_are_ignored() -> None:
     """Rows of a line with a different number of pixels give no line-to-line numbers."""
-    rows = {k: v[:100] for k, v in line_rows(*records()).items()}
+    rows = {k: v[:100] for k, v in comparison_rows(*records()).items()}
     m = line_metrics(*records(), previous_rows=rows)
     assert math.isnan(m.field_change_median_t)
     assert m.pl_step_range is None
@@ -250,7 +250,7 @@ def test_tracker_seed_restores_rows_and_checks_keys() -> None:
     """Seeding rows (as rebuilt from a store) makes the next line compare against them;
     rows lacking a key are refused with the key named."""
     tracker = MetricsTracker()
-    tracker.seed("forward", line_rows(*records(seed=1)))
+    tracker.seed("forward", comparison_rows(*records(seed=1)))
     pl = np.full(N, 1.5e5)
     pl[200:] *= 0.5
     assert tracker.update(*records(pl_per_s=pl)).pl_step_range == (200, N)
@@ -340,7 +340,7 @@ def test_rows_kept_for_the_next_line_drop_failed_fits() -> None:
     status[40] = FitStatus.NOT_CONVERGED
     field = np.full(N, 2e-3)
     field[40] = 0.5
-    rows = line_rows(*records(field_t=field, status=status))
+    rows = comparison_rows(*records(field_t=field, status=status))
     assert np.isnan(rows["field_nv_t"][40])
     assert np.isnan(rows["center_mean_hz"][40])
     assert np.isfinite(rows["pl_per_s"][40])
@@ -369,7 +369,7 @@ def test_narrow_common_mode_shift_is_found_where_the_field_stayed_put() -> None:
     cm = np.full(N, 2.8702e9) + np.random.default_rng(2).normal(0, 10e3, N)
     cm[100:106] += 3e6
     now = records(index=1, center_mean_hz=cm, seed=2)
-    m = line_metrics(*now, previous_rows=line_rows(*prev))
+    m = line_metrics(*now, previous_rows=comparison_rows(*prev))
     assert m.center_mean_step == pytest.approx(3e6, rel=0.05)
     assert m.center_mean_step_range == (100, 106)
 
@@ -493,7 +493,7 @@ def test_seeding_the_last_lines_restores_the_references_exactly() -> None:
         cm[a:b] += shift_hz
         all_records.append(records(index=k, center_mean_hz=cm, seed=100 + k))
     for rec in all_records[1:5]:
-        seeded.seed("forward", line_rows(*rec))
+        seeded.seed("forward", comparison_rows(*rec))
     got = seeded.update(*all_records[5]).numeric()
     want = continuous[5].numeric()
     for name in ("center_mean_step_ref", "center_mean_step_held", "field_step_held"):

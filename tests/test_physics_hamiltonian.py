@@ -7,8 +7,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from strayline.physics.constants import GAMMA_NV_HZ_PER_T
-from strayline.physics.hamiltonian import nv_axis, to_nv_frame, transition_frequencies_hz
+from strayline.physics import GAMMA_NV_HZ_PER_T, nv_axis, to_nv_frame, transition_frequencies_hz
 
 D_HZ = 2.870e9
 

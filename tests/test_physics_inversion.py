@@ -7,11 +7,11 @@ import pytest
 from hypothesis import assume, given, settings
 from hypothesis import strategies as st
 
-from strayline.physics.constants import GAMMA_NV_HZ_PER_T
-from strayline.physics.hamiltonian import transition_frequencies_hz
-from strayline.physics.inversion import (
+from strayline.physics import (
+    GAMMA_NV_HZ_PER_T,
     field_along_axis_from_resonances,
     field_from_resonances,
+    transition_frequencies_hz,
 )
 
 D_HZ = 2.870e9

@@ -7,8 +7,7 @@ import math
 import numpy as np
 import pytest
 
-from strayline.physics.constants import GAMMA_NV_HZ_PER_T
-from strayline.physics.sensitivity import LINESHAPE_FACTOR, shot_noise_sensitivity_t_per_rthz
+from strayline.physics import GAMMA_NV_HZ_PER_T, LINESHAPE_FACTOR, shot_noise_sensitivity_t_per_rthz
 
 
 def test_worked_example_three_microtesla():

@@ -6,8 +6,7 @@ import numpy as np
 import pytest
 from scipy.integrate import quad
 
-from strayline.physics.constants import HF_14N_HZ, HF_15N_HZ
-from strayline.physics.spectrum import hyperfine_pattern, lorentzian, lorentzian_dips
+from strayline.physics import HF_14N_HZ, HF_15N_HZ, hyperfine_pattern, lorentzian, lorentzian_dips
 
 F0, F1 = 2.80e9, 2.94e9
 

@@ -8,13 +8,13 @@ import numpy as np
 import pytest
 import scipy.constants
 
-from strayline.physics.constants import MU0
-from strayline.physics.hamiltonian import nv_axis
-from strayline.physics.strayfield import (
+from strayline.physics import (
+    MU0,
     bz_from_projection,
     dipole_field_t,
     film_edge_field_t,
     line_current_field_t,
+    nv_axis,
     project_on_axis,
     sheet_moment_from_bz_a,
     stray_field_t,

@@ -15,14 +15,13 @@ import numpy as np
 import pytest
 
 import demo_stream as ds
-from strayline.alerts import read_alert_log
+from strayline.alerts import AlertEvent, read_alert_log
 from strayline.config import Config, config_from_mapping
 from strayline.errors import ConfigError, StoreError
 from strayline.field import field_from_fit
 from strayline.fit import fit_line
 from strayline.lines import ScanLine, read_line_file
-from strayline.metrics import ROW_KEYS, LineMetrics, MetricsTracker, line_rows
-from strayline.physics.constants import D_ROOM_HZ, zfs_hz
+from strayline.physics import D_ROOM_HZ, zfs_hz
 from strayline.pipeline import (
     PROFILE_RULE,
     LinePipeline,
@@ -32,7 +31,7 @@ from strayline.pipeline import (
     profile_event,
     zfs_rule,
 )
-from strayline.rules import AlertEvent
+from strayline.rules import ROW_KEYS, LineMetrics, MetricsTracker, comparison_rows
 from strayline.store import ScanStore
 
 SCAN = "pipe-scan"
@@ -261,7 +260,7 @@ def test_a_store_that_cannot_be_reopened_is_dropped_and_reopened_later(
 ) -> None:
     """If switching raw spectra cannot reopen a store, set_raw_spectra raises StoreError,
     the scan is dropped, and its next line reopens it with the new setting."""
-    import strayline.store as store_module
+    import strayline.store.scan_store as store_module
 
     folder = _copy_scan(scan_files, tmp_path)
     files = _files(folder)
@@ -531,7 +530,7 @@ def test_metrics_after_a_restart_equal_those_of_an_uninterrupted_run(
         fit = fit_line(line.freq_hz, line.counts, model)
         fld = field_from_fit(fit, zfs_hz=_zfs_hz(line), sign=1.0, branch="upper")
         if line.line_index == 3:
-            rows3 = line_rows(line, fit, fld)
+            rows3 = comparison_rows(line, fit, fld)
         expected = continuous.update(line, fit, fld)
     assert expected is not None
 
@@ -671,7 +670,7 @@ def test_seeded_rows_of_a_backward_trace_follow_its_acquisition_order(
     tmp_path: Path,
 ) -> None:
     """After a restart, the remembered backward row is in the backward trace's own pixel
-    order (decreasing x), as metrics.line_rows made it, although the store keeps maps in
+    order (decreasing x), as metrics.comparison_rows made it, although the store keeps maps in
     increasing x (common practice for trace/retrace scans)."""
     root = tmp_path / "demo"
     scan = ds.DemoConfig(
@@ -683,7 +682,7 @@ def test_seeded_rows_of_a_backward_trace_follow_its_acquisition_order(
     model = fit_model_from_config(config)
     backward2 = read_line_file(folder / "line_00002_bwd.h5")
     fit = fit_line(backward2.freq_hz, backward2.counts, model)
-    expected = line_rows(backward2, fit, field_from_fit(fit, zfs_hz=_zfs_hz(backward2)))
+    expected = comparison_rows(backward2, fit, field_from_fit(fit, zfs_hz=_zfs_hz(backward2)))
     first = LinePipeline(config)
     try:
         for index in range(3):

@@ -22,14 +22,14 @@ from structlog.testing import capture_logs
 
 import demo_stream as ds
 import strayline
-from strayline._products_maps import assemble_trace, fill_nearest, reconstruct_vector
+from strayline.alerts import AlertEvent
 from strayline.cli import main
 from strayline.config import config_from_mapping
 from strayline.errors import ConfigError, StoreError
 from strayline.field import LineField
 from strayline.fit import FitStatus, LineFit
 from strayline.lines import ScanLine
-from strayline.physics.hamiltonian import nv_axis
+from strayline.physics import nv_axis
 from strayline.pipeline import LinePipeline
 from strayline.products import (
     REPORT_JSON,
@@ -39,7 +39,7 @@ from strayline.products import (
     products_dir,
     remake_products,
 )
-from strayline.rules import AlertEvent
+from strayline.products._maps import assemble_trace, fill_nearest, reconstruct_vector
 from strayline.store import ScanStore
 
 # Forward-modelled sample: a square film patch, sheet moment 1 mA, magnetised along +z,

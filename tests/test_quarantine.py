@@ -11,11 +11,11 @@ from hypothesis import given
 from hypothesis import strategies as st
 
 from strayline.errors import LineFileError
-from strayline.lines import line_file_name
-from strayline.quarantine import (
+from strayline.lines import (
     BAD_FILE_RULE,
     QUARANTINE_DIR,
     bad_file_event,
+    line_file_name,
     line_key_from_name,
     quarantine_file,
 )

@@ -1,7 +1,7 @@
 """End-to-end rule tests: demo scans with one fault each, through the real pipeline.
 
 Each test writes a small scan with the demo instrument (:mod:`demo_stream`) at pace 0 and
-runs :func:`strayline.service.process_folder` over it (validate, fit, field, store,
+runs :func:`strayline.pipeline.process_folder` over it (validate, fit, field, store,
 metrics, rules, alerts: the daemon's own per-line path), then reads the alert log. These
 complement the unit tests of ``test_rules.py``, which feed synthetic records to the
 engine. The faults' signatures are those of PHYSICS.md §7 (common practice).
@@ -19,8 +19,7 @@ import demo_stream as ds
 from strayline.alerts import AlertEvent, AlertSink, read_alert_log
 from strayline.config import Config, config_from_mapping
 from strayline.lines import read_line_file, write_line_file
-from strayline.pipeline import LinePipeline
-from strayline.service import process_folder
+from strayline.pipeline import LinePipeline, process_folder
 
 SCAN = "rules-demo"
 N_LINES = 20

@@ -21,7 +21,7 @@ from typing import Any
 import pytest
 
 import demo_stream as ds
-from strayline._sdnotify import Notifier, _watchdog_interval_s
+from strayline.service._sdnotify import Notifier, _watchdog_interval_s
 from tests._daemon import (
     NotifyListener,
     committed_lines,

@@ -24,7 +24,8 @@ import yaml
 import demo_stream as ds
 from strayline.alerts import read_alert_log
 from strayline.config import load_config
-from strayline.service import DiskGuard, Service, free_disk_bytes
+from strayline.service import Service
+from strayline.service._guards import DiskGuard, free_disk_bytes
 from tests._daemon import (
     NotifyListener,
     committed_keys,
@@ -80,37 +81,15 @@ def test_disk_guard_raises_once_and_clears_above_the_hysteresis(tmp_path: Path) 
     space exceeds the floor plus max(10 %, 64 MiB) (hysteresis against flapping: common
     practice)."""
     free = {"bytes": 5000 * MIB}
-    clock = _FakeClock()
-    guard = DiskGuard(
-        tmp_path, 1024 * MIB, free_bytes=lambda _p: free["bytes"], clock=clock, interval_s=5.0
-    )
+    guard = DiskGuard(tmp_path, 1024 * MIB, free_bytes=lambda _p: free["bytes"])
     seen = []
     for free_mib in (5000, 1000, 900, 1030, 1100, 1200):
         free["bytes"] = free_mib * MIB
-        clock.now_s += 5.0
         seen.append(guard.check())
     # clear threshold: 1024 + max(102.4, 64) MiB = 1126.4 MiB
     assert seen == [None, "raised", None, None, None, "cleared"]
     assert guard.clear_bytes == 1024 * MIB + (1024 * MIB) // 10
     assert guard.last_free_bytes == 1200 * MIB
-
-
-def test_disk_guard_looks_at_the_disk_at_most_once_per_interval(tmp_path: Path) -> None:
-    """Checks within the interval do not call the free-space function (cheap checks)."""
-    calls = []
-    clock = _FakeClock()
-
-    def free(path: Path) -> int:
-        calls.append(path)
-        return 10_000 * MIB
-
-    guard = DiskGuard(tmp_path, MIB, free_bytes=free, clock=clock, interval_s=5.0)
-    for _ in range(10):
-        guard.check()
-        clock.now_s += 1.0
-    assert len(calls) == 2  # at t = 0 s and t = 5 s
-    guard.check(force=True)
-    assert len(calls) == 3
 
 
 def test_disk_guard_measures_the_nearest_existing_folder_and_ignores_errors(
@@ -127,9 +106,9 @@ def test_disk_guard_measures_the_nearest_existing_folder_and_ignores_errors(
         return 0
 
     guard = DiskGuard(tmp_path / "not" / "yet", MIB, free_bytes=free)
-    assert guard.check(force=True) == "raised"
+    assert guard.check() == "raised"
     assert asked == [tmp_path]
-    assert guard.check(force=True) is None
+    assert guard.check() is None
     assert guard.low
     assert guard.last_error is not None
     assert "Permission denied" in guard.last_error

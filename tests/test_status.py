@@ -13,8 +13,6 @@ import pytest
 import yaml
 
 import demo_stream as ds
-from strayline._ledger import parse_records, parse_time
-from strayline._store_layout import LEDGER_FILE
 from strayline.alerts import format_alert, read_alert_log
 from strayline.cli import main
 from strayline.config import Config, config_from_mapping
@@ -24,6 +22,8 @@ from strayline.lines import read_line_file
 from strayline.pipeline import LinePipeline
 from strayline.status import format_scan_status, scan_status, scan_statuses
 from strayline.store import ScanStore
+from strayline.store._layout import LEDGER_FILE
+from strayline.store._ledger import parse_records, parse_time
 
 SCAN = "status-scan"
 N_LINES = 8

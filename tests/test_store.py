@@ -19,12 +19,12 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 import strayline
-from strayline._ledger import Ledger, format_time, parse_records, parse_time
 from strayline.errors import LineFileError, StoreError
 from strayline.field import LineField
 from strayline.fit import FitStatus, LineFit
 from strayline.lines import ScanLine
-from strayline.store import MAP_NAMES, ScanStore, StoreMismatch, line_rows
+from strayline.store._ledger import Ledger, format_time, parse_records, parse_time
+from strayline.store.scan_store import MAP_NAMES, ScanStore, StoreMismatch, line_rows
 
 N_LINES = 5
 N_PIXELS = 6

@@ -32,7 +32,7 @@ from hypothesis.stateful import RuleBasedStateMachine, initialize, invariant, ru
 from strayline.field import LineField
 from strayline.fit import FitStatus, LineFit
 from strayline.lines import ScanLine
-from strayline.store import MAP_NAMES, ScanStore, line_rows
+from strayline.store.scan_store import MAP_NAMES, ScanStore, line_rows
 
 N_LINES = 4
 N_PIXELS = 3

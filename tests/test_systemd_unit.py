@@ -518,7 +518,7 @@ _JIT_PROBE = textwrap.dedent(
     import scipy.linalg  # scipy's OpenBLAS asks mbind() for NUMA placement
     from numba import njit, prange
 
-    from strayline._sdnotify import Notifier
+    from strayline.service._sdnotify import Notifier
 
 
     @njit(cache=True, parallel=True)
@@ -571,7 +571,7 @@ _FIT_PROBE = textwrap.dedent(
     import numpy as np
 
     from strayline.fit import FitStatus, fit_line
-    from strayline.physics.spectrum import lorentzian_dips
+    from strayline.physics import lorentzian_dips
 
     rng = np.random.default_rng(20240611)
     freq_hz = np.linspace(2.77e9, 2.97e9, 201)

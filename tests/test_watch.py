@@ -27,10 +27,10 @@ from watchdog.events import (
     FileSystemEventHandler,
 )
 
-from strayline._watch_candidates import Candidates
-from strayline._watch_tree import LineNames
 from strayline.lines import is_temporary_name
-from strayline.watch import LineWatcher, ReadyFile, WatchOptions, default_probe
+from strayline.watch._candidates import Candidates
+from strayline.watch._tree import LineNames
+from strayline.watch.watcher import LineWatcher, ReadyFile, WatchOptions, default_probe
 
 SETTLE_S = 2.0
 GIVE_UP_S = 30.0

@@ -223,7 +223,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
 
 
 def _cmd_process(args: argparse.Namespace) -> int:
-    from strayline.service import process_folder
+    from strayline.pipeline import process_folder
 
     config = _load(args)
     _configure_logs(config)

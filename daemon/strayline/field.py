@@ -37,8 +37,7 @@ from typing import Literal
 import numpy as np
 
 from strayline.fit import FitStatus, LineFit
-from strayline.physics.constants import GAMMA_NV_HZ_PER_T
-from strayline.physics.inversion import field_from_resonances
+from strayline.physics import GAMMA_NV_HZ_PER_T, field_from_resonances
 
 __all__ = ["LineField", "field_from_fit"]
 

@@ -16,7 +16,6 @@ the store is closed again (releasing its writer's lock) and the next line starts
 
 from __future__ import annotations
 
-import json
 import math
 import os
 import time
@@ -31,26 +30,26 @@ import numpy as np
 import structlog
 
 from strayline import __version__
-from strayline._atomic import write_text_atomic
-from strayline.alerts import AlertSink
+from strayline.alerts import ACTIVE_ALERTS_FILE, ActiveAlerts, AlertEvent, AlertSink
 from strayline.config import Config, config_digest, select_profile
 from strayline.errors import ConfigError, LineFileError, StoreError
 from strayline.field import field_from_fit
 from strayline.fit import FitModel, FitStatus, fit_line
-from strayline.lines import LineLimits, ScanLine, read_line_file
-from strayline.metrics import ROW_KEYS, MetricsTracker, field_perp
-from strayline.physics.constants import D_ROOM_HZ, zfs_hz
+from strayline.lines import LineLimits, ScanLine, bad_file_event, quarantine_file, read_line_file
+from strayline.physics import D_ROOM_HZ, zfs_hz
 from strayline.products import make_products, products_dir
-from strayline.quarantine import bad_file_event, quarantine_file
-from strayline.rules import AlertEvent, RuleEngine, load_rules
+from strayline.rules import ROW_KEYS, MetricsTracker, RuleEngine, field_perp
 from strayline.store import ScanStore
+from strayline.watch import LineNames, list_tree
 
 __all__ = [
     "PROFILE_RULE",
     "LineOutcome",
     "LinePipeline",
     "PipelineStatistics",
+    "ProcessSummary",
     "fit_model_from_config",
+    "process_folder",
     "profile_event",
     "zfs_rule",
 ]
@@ -60,7 +59,6 @@ PROFILE_RULE = "profile_unusable"
 
 #: File (in ``paths.state_dir``) keeping the alerts raised through
 #: :meth:`LinePipeline.deliver` that are still active, so a restart remembers them.
-_DELIVERED_STATE = "delivered_alerts.json"
 
 OutcomeKind = Literal["written", "duplicate", "quarantined", "vanished"]
 
@@ -212,6 +210,9 @@ class LinePipeline:
         The daemon's base configuration; each scan gets its profile overlay.
     sink : AlertSink or None
         Where alert events go; None builds one from ``config``.
+    active : ActiveAlerts or None
+        The record of alerts raised outside the rule engine, shared with the service;
+        None loads it from ``paths.state_dir``.
     clock : callable returning float, optional
         Wall-clock seconds (``time.time``) for the rule engine's stall detection.
     """
@@ -221,6 +222,7 @@ class LinePipeline:
         config: Config,
         *,
         sink: AlertSink | None = None,
+        active: ActiveAlerts | None = None,
         clock: Callable[[], float] = time.time,
     ) -> None:
         self.config = config
@@ -233,10 +235,13 @@ class LinePipeline:
         self._output_root = config.paths.output_root
         self._state_path = config.paths.state_dir / "rules_state.json"
         self._sink = sink if sink is not None else AlertSink.from_config(config)
-        self._engine = RuleEngine.restore(load_rules(config), self._state_path, clock=clock)
+        self._engine = RuleEngine.restore(config.rule_set, self._state_path, clock=clock)
         self._clock = clock
-        self._delivered_path = config.paths.state_dir / _DELIVERED_STATE
-        self._delivered = _load_delivered(self._delivered_path)
+        self._active = (
+            active
+            if active is not None
+            else ActiveAlerts(config.paths.state_dir / ACTIVE_ALERTS_FILE)
+        )
         self._raw_spectra: bool | None = None  # None: as each scan's config says
         self._scans: dict[str, _Scan] = {}  # open scans, least recently used first
         self._closed_progress: dict[str, tuple[int, int]] = {}
@@ -346,18 +351,12 @@ class LinePipeline:
             If the remembered state cannot be saved (the event was delivered).
         """
         self._sink.deliver(event)
-        key = f"{event.scan_id}\u0000{event.rule}"
-        if event.state == "raised":
-            changed = self._delivered.get(key) != event
-            self._delivered[key] = event
-        else:
-            changed = self._delivered.pop(key, None) is not None
-        if changed:
-            _save_delivered(self._delivered_path, self._delivered)
+        self._active.note(event)
+        self._active.save()
 
     def active_alerts(self) -> tuple[AlertEvent, ...]:
         """Raise events still active: the rule engine's, then those from :meth:`deliver`."""
-        return tuple(self._engine.active()) + tuple(self._delivered.values())
+        return tuple(self._engine.active()) + self._active.active()
 
     def set_raw_spectra(self, enabled: bool) -> None:
         """Turn the writing of raw spectra off or on for every open and future scan.
@@ -404,7 +403,7 @@ class LinePipeline:
             last_scan_id=c.last_scan_id,
             last_line_index=c.last_line_index,
             last_line_s=c.last_line_s,
-            active_alerts=len(self._engine.active()) + len(self._delivered),
+            active_alerts=len(self._engine.active()) + len(self._active),
         )
 
     def scan_progress(self) -> dict[str, tuple[int, int]]:
@@ -563,6 +562,7 @@ class LinePipeline:
             x_m=line.x_m,
             config_json=_store_config(config, profile),
             config_digest=config_digest(config),
+            nv_axis_rad=(line.nv_theta_rad, line.nv_phi_rad),
             compression_level=config.store.compression_level,
             chunk_lines=config.store.chunk_lines,
         )
@@ -593,7 +593,7 @@ class LinePipeline:
             store.close()  # release the writer's lock: the next line opens it afresh
             raise
         # The scan is judged by its profile's rule set (rules, rule_overrides).
-        self._engine.use_rules(line.scan_id, load_rules(config))
+        self._engine.use_rules(line.scan_id, config.rule_set)
         if store.recovered_lines:
             self._log.warning(
                 "store_recovered",
@@ -747,7 +747,7 @@ def _stored_rows(
 
     ok = row("status") == FitStatus.OK
     rows = {key: row(name) for key, name in _ROW_FROM_MAP.items()}
-    for key in ("field_nv_t", "center_mean_hz"):  # as metrics.line_rows keeps them
+    for key in ("field_nv_t", "center_mean_hz"):  # as metrics.comparison_rows keeps them
         rows[key] = np.where(ok, rows[key], np.nan)
     rows["center_mean_sigma_hz"] = center_mean_sigma_from_maps(
         rows["center_mean_hz"],
@@ -761,26 +761,47 @@ def _stored_rows(
     return {key: rows[key] for key in ROW_KEYS}
 
 
-def _load_delivered(path: Path) -> dict[str, AlertEvent]:
-    """Active delivered alerts saved by :func:`_save_delivered` (none if unreadable)."""
-    try:
-        data = json.loads(path.read_text(encoding="utf-8"))
-        events = [AlertEvent.from_dict(item) for item in data["active"]]
-    except FileNotFoundError:
-        return {}
-    except (OSError, ValueError, KeyError, TypeError) as error:
-        structlog.get_logger("strayline.pipeline").warning(
-            "delivered_alerts_unreadable", path=str(path), problem=str(error)
-        )
-        return {}
-    return {f"{e.scan_id}\u0000{e.rule}": e for e in events}
+@dataclass(frozen=True)
+class ProcessSummary:
+    """What one ``process`` pass did."""
+
+    files: int
+    written: int
+    duplicates: int
+    quarantined: int
+    vanished: int
+    pixels_failed: int
+    alerts: int
 
 
-def _save_delivered(path: Path, active: dict[str, AlertEvent]) -> None:
-    """Write the active delivered alerts atomically (temporary file, fsync, rename)."""
-    text = json.dumps({"active": [e.to_dict() for e in active.values()]})
+def _summarise(outcomes: list[LineOutcome]) -> ProcessSummary:
+    kinds = [o.kind for o in outcomes]
+    return ProcessSummary(
+        files=len(outcomes),
+        written=kinds.count("written"),
+        duplicates=kinds.count("duplicate"),
+        quarantined=kinds.count("quarantined"),
+        vanished=kinds.count("vanished"),
+        pixels_failed=sum(o.failures for o in outcomes),
+        alerts=sum(len(o.events) for o in outcomes),
+    )
+
+
+def process_folder(config: Config, folder: Path) -> ProcessSummary:
+    """Process every line file below ``folder`` once (sorted by name), then return.
+
+    The same pipeline as the daemon: already committed identical files are skipped, bad
+    files are quarantined.
+    """
+    folder = Path(folder).absolute()
+    listing = list_tree(folder, LineNames(folder, config.watch.pattern))
+    if listing.error is not None and not listing.files:
+        raise FileNotFoundError(f"{folder}: {listing.error}")
+    pipeline = LinePipeline(config)
+    outcomes: list[LineOutcome] = []
     try:
-        path.parent.mkdir(parents=True, exist_ok=True)
-        write_text_atomic(path, text)
-    except OSError as error:
-        raise StoreError(f"{path}: delivered alerts could not be saved: {error}") from error
+        for path in sorted(listing.files, key=lambda p: (p.parent, p.name)):
+            outcomes.append(pipeline.process(path))
+    finally:
+        pipeline.close()
+    return _summarise(outcomes)

@@ -13,14 +13,10 @@ from datetime import UTC, datetime, timedelta
 from pathlib import Path
 from typing import Any
 
-import numpy as np
-import zarr
-
-from strayline._ledger import LedgerState, read_ledger_state
-from strayline._store_layout import DIRECTIONS, STATUS_FILL
-from strayline.alerts import format_alert, read_alert_log
+from strayline.alerts import AlertEvent, format_alert, read_alert_log
 from strayline.fit import FitStatus
-from strayline.rules import AlertEvent
+from strayline.lines import DIRECTIONS
+from strayline.store import STATUS_FILL, LedgerState, NotAScanStore, open_store_reader
 
 __all__ = ["ScanStatus", "format_scan_status", "scan_status", "scan_statuses"]
 
@@ -86,18 +82,15 @@ def scan_status(store_path: Path, alerts: Sequence[AlertEvent] | None = None) ->
 
     Raises
     ------
-    FileNotFoundError
-        If ``store_path`` is not a zarr group (zarr's GroupNotFoundError).
-    KeyError
-        If the group lacks the store's attributes (not a scan store).
+    NotAScanStore
+        If ``store_path`` is not (yet) a readable scan store.
     StoreError
-        If the ledger exists but cannot be read.
+        If the ledger exists but cannot be read, or a map is missing.
     """
-    group = zarr.open_group(store_path, mode="r")
-    attrs = group.attrs.asdict()
-    scan_id = str(attrs["scan_id"])
-    n_planned = int(attrs["n_lines_planned"])  # type: ignore[arg-type]
-    state = read_ledger_state(store_path)
+    reader = open_store_reader(store_path)
+    scan_id = reader.scan_id
+    n_planned = reader.n_lines_planned
+    state = reader.ledger
     done = {d: sum(1 for (_, dd) in state.committed if dd == d) for d in DIRECTIONS}
     busiest = max(DIRECTIONS, key=lambda d: done[d])
     times = _commit_times(state, busiest)[-_RATE_WINDOW:]
@@ -113,10 +106,7 @@ def scan_status(store_path: Path, alerts: Sequence[AlertEvent] | None = None) ->
     for direction in DIRECTIONS:
         if done[direction] == 0:
             continue
-        array = group[f"{direction}/status"]
-        if not isinstance(array, zarr.Array):
-            raise KeyError(f"{direction}/status")
-        status = np.asarray(array[:])
+        status = reader.read_array("status", direction)
         written = status != STATUS_FILL
         pixels += int(written.sum())
         failed += int((written & (status != FitStatus.OK)).sum())
@@ -155,7 +145,7 @@ def scan_statuses(output_root: Path, alert_log: Path | None = None) -> list[Scan
             continue
         try:
             status = scan_status(path, alerts)
-        except (FileNotFoundError, KeyError):
+        except NotAScanStore:
             continue
         if problem is not None:
             status = replace(status, last_alerts=(problem,))

@@ -1,0 +1,31 @@
+"""Numbers shared across stages, each defined once: the robust spread, unit factors.
+
+Pure functions over numpy arrays; no I/O.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+__all__ = ["HZ_PER_MHZ", "MAD_TO_SIGMA", "MIB", "finite_or_none", "median_and_spread"]
+
+#: 1 / Φ⁻¹(3/4): the median absolute deviation of a normal sample times this is its σ
+#: (common practice; e.g. Huber, *Robust Statistics*, 1981, §5.1).
+MAD_TO_SIGMA = 1.482602218505602
+#: Bytes in one mebibyte (config keys in MiB are converted at the edge).
+MIB = 1024 * 1024
+#: Hz in one MHz (config keys in MHz are converted at the edge).
+HZ_PER_MHZ = 1e6
+
+
+def median_and_spread(a: np.ndarray) -> tuple[float, float]:
+    """Median and robust σ (``MAD_TO_SIGMA`` · MAD) of a non-empty 1-D array of finite values."""
+    med = float(np.median(a))
+    return med, float(MAD_TO_SIGMA * np.median(np.abs(a - med)))
+
+
+def finite_or_none(value: float | None) -> float | None:
+    """``value`` as a float, or None when it is None, NaN or infinite (JSON has no NaN)."""
+    return None if value is None or not math.isfinite(value) else float(value)

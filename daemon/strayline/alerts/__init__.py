@@ -1,0 +1,24 @@
+"""Alerts: the event record, its delivery (log, hook, stop request) and the log read back.
+
+An :class:`AlertEvent` is made by the rule engine, the quarantine or the service, delivered
+by one :class:`AlertSink`, and read back by :func:`read_alert_log` (``strayline alerts``,
+``status``, the products' report).
+"""
+
+from strayline.alerts.event import AlertEvent
+from strayline.alerts.log import follow_alerts, format_alert, read_alert_log
+from strayline.alerts.registry import ACTIVE_ALERTS_FILE, ActiveAlerts
+from strayline.alerts.sink import HOOK_PLACEHOLDERS, AlertSink, SinkStatistics, write_stop_request
+
+__all__ = [
+    "ACTIVE_ALERTS_FILE",
+    "HOOK_PLACEHOLDERS",
+    "ActiveAlerts",
+    "AlertEvent",
+    "AlertSink",
+    "SinkStatistics",
+    "follow_alerts",
+    "format_alert",
+    "read_alert_log",
+    "write_stop_request",
+]

@@ -1,0 +1,153 @@
+"""The alert log read back: parse it, format one event, print and follow it (``alerts``)."""
+
+from __future__ import annotations
+
+import sys
+import threading
+import time
+from datetime import UTC, datetime
+from os import PathLike
+from pathlib import Path
+from typing import TextIO
+
+from strayline.alerts.event import AlertEvent
+
+__all__ = ["follow_alerts", "format_alert", "read_alert_log"]
+
+
+def read_alert_log(
+    path: str | PathLike[str],
+    *,
+    scan_id: str | None = None,
+    since: datetime | None = None,
+) -> list[AlertEvent]:
+    """Events from an alert log, oldest first, optionally one scan's or since a time.
+
+    Blank lines and a partial last line (being written) are skipped; any other line that
+    is not an event raises ``ValueError`` naming the file and line number.
+    """
+    p = Path(path)
+    if not p.exists():
+        return []
+    lines = p.read_text(encoding="utf-8").split("\n")
+    out = []
+    for number, text in enumerate(lines, start=1):
+        if not text.strip():
+            continue
+        try:
+            event = AlertEvent.from_json(text)
+        except (ValueError, KeyError, TypeError) as exc:
+            if number == len(lines):  # no newline yet: a writer is mid-line
+                continue
+            raise ValueError(
+                f"{p.name}: line {number} must be one alert event as JSON; found "
+                f"{text[:60]!r} ({exc.__class__.__name__})"
+            ) from None
+        if scan_id is not None and event.scan_id != scan_id:
+            continue
+        if since is not None and event.datetime < since:
+            continue
+        out.append(event)
+    return out
+
+
+def format_alert(event: AlertEvent) -> str:
+    """One readable line: time, severity, state, scan/line/pixels, rule, message."""
+    where = event.scan_id
+    if event.line_index is not None:
+        where += f" line {event.line_index}"
+        if event.direction:
+            where += f" ({event.direction})"
+    if event.pixel_range is not None:
+        where += f" px {event.pixel_range[0]}–{event.pixel_range[1] - 1}"
+    mark = "RAISED " if event.state == "raised" else "cleared"
+    text = f"{event.time} {event.severity.upper():8} {mark} {where} [{event.rule}] "
+    text += event.message
+    if event.state == "raised" and event.advice:
+        text += f" — {event.advice}"
+    return text
+
+
+def follow_alerts(
+    path: str | PathLike[str],
+    *,
+    scan_id: str | None = None,
+    since: str | datetime | None = None,
+    as_json: bool = False,
+    follow: bool = False,
+    last: int = 20,
+    poll_s: float = 0.5,
+    out: TextIO | None = None,
+    stop: threading.Event | None = None,
+) -> int:
+    """Print the last ``last`` alerts (readable, or the stored JSON lines), then optionally
+    keep printing new ones until interrupted; returns a process exit code.
+
+    ``since`` is an ISO 8601 time (a time without zone is taken as UTC). ``stop`` ends
+    following (tests); Ctrl-C ends it too. A bad ``since`` prints the problem and
+    returns 2.
+    """
+    stream = out if out is not None else sys.stdout
+    since_dt: datetime | None
+    if isinstance(since, str):
+        try:
+            since_dt = datetime.fromisoformat(since)
+        except ValueError:
+            print(
+                f"--since must be an ISO 8601 time such as 2026-03-01T22:00:00Z; found {since!r}",
+                file=sys.stderr,
+            )
+            return 2
+    else:
+        since_dt = since
+    if since_dt is not None and since_dt.tzinfo is None:
+        since_dt = since_dt.replace(tzinfo=UTC)
+
+    def show(event: AlertEvent) -> None:
+        stream.write((event.to_json() if as_json else format_alert(event)) + "\n")
+
+    p = Path(path)
+    try:
+        events = read_alert_log(p, scan_id=scan_id, since=since_dt)
+    except ValueError as exc:
+        print(str(exc), file=sys.stderr)
+        return 1
+    for event in events[-last:] if last > 0 else []:
+        show(event)
+    stream.flush()
+    if not follow:
+        return 0
+    offset = p.stat().st_size if p.exists() else 0
+    pending = b""
+    try:
+        while not (stop is not None and stop.is_set()):
+            size = p.stat().st_size if p.exists() else 0
+            if size < offset:  # rotated or truncated: start again from its beginning
+                offset, pending = 0, b""
+            if size > offset:
+                with open(p, "rb") as fh:
+                    fh.seek(offset)
+                    data = fh.read()
+                offset += len(data)
+                *complete, pending = (pending + data).split(b"\n")
+                for raw in complete:
+                    text = raw.decode("utf-8", "replace")
+                    if not text.strip():
+                        continue
+                    try:
+                        event = AlertEvent.from_json(text)
+                    except (ValueError, KeyError, TypeError):
+                        continue
+                    if scan_id is not None and event.scan_id != scan_id:
+                        continue
+                    if since_dt is not None and event.datetime < since_dt:
+                        continue
+                    show(event)
+                stream.flush()
+            if stop is not None:
+                stop.wait(poll_s)
+            else:
+                time.sleep(poll_s)
+    except KeyboardInterrupt:
+        pass
+    return 0

@@ -1,0 +1,9 @@
+"""The fitter: every ODMR spectrum of a line at once, batched Levenberg–Marquardt.
+
+:func:`fit_line` takes arrays and returns a frozen :class:`LineFit`; a failed fit is a
+:class:`FitStatus` code, never an exception. No I/O, no clock.
+"""
+
+from strayline.fit.line_fit import FitModel, FitStatus, LineFit, fit_line
+
+__all__ = ["FitModel", "FitStatus", "LineFit", "fit_line"]

@@ -1,0 +1,158 @@
+"""Quarantine: move a file that breaks the contract out of the way, never delete it.
+
+The file goes to ``<scan folder>/_quarantine/`` with a JSON sidecar that says exactly what
+was wrong (file, field, expected, found, when). Names never collide: a second file of the
+same name gets a numbered suffix, so nothing is overwritten. :func:`bad_file_event` is the
+alert that tells the operator about it.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import re
+from dataclasses import asdict, dataclass
+from datetime import UTC, datetime
+from pathlib import Path
+
+from strayline._atomic import write_text_atomic
+from strayline.alerts import AlertEvent
+from strayline.errors import LineFileError
+
+__all__ = [
+    "BAD_FILE_RULE",
+    "QUARANTINE_DIR",
+    "QuarantineRecord",
+    "bad_file_event",
+    "line_key_from_name",
+    "quarantine_file",
+]
+
+QUARANTINE_DIR = "_quarantine"
+
+#: Rule name of the alert raised for a quarantined file.
+BAD_FILE_RULE = "bad_file"
+
+#: The canonical line-file name (:func:`strayline.lines.line_file_name`), e.g.
+#: ``line_00042_fwd.h5``; the direction tag is optional here.
+_LINE_NAME = re.compile(r"line_(?P<index>\d{1,9})(?:_(?P<tag>fwd|bwd))?\.h5")
+_TAG_DIRECTION = {"fwd": "forward", "bwd": "backward"}
+
+
+def line_key_from_name(name: str) -> tuple[int | None, str | None]:
+    """The line index and direction a file name reveals, (None, None) if it reveals none.
+
+    ``line_00042_fwd.h5`` → ``(42, "forward")``; ``line_00042.h5`` → ``(42, None)``;
+    ``scan.h5`` → ``(None, None)``.
+    """
+    match = _LINE_NAME.fullmatch(name)
+    if match is None:
+        return None, None
+    tag = match.group("tag")
+    return int(match.group("index")), (_TAG_DIRECTION[tag] if tag else None)
+
+
+def bad_file_event(path: Path, error: LineFileError, moved_to: str, now: datetime) -> AlertEvent:
+    """The warning alert for a quarantined line file.
+
+    Parameters
+    ----------
+    path : Path
+        Where the file was (inside its scan folder, whose name is taken as the scan id).
+    error : LineFileError
+        Why it was rejected.
+    moved_to : str
+        Where it went; empty if it vanished before it could be moved.
+    now : datetime
+        Aware time of the decision.
+
+    Returns
+    -------
+    AlertEvent
+        Rule :data:`BAD_FILE_RULE`, state "raised" (a bad file is a one-off, never cleared),
+        with the line index and direction when the file name reveals them.
+    """
+    line_index, direction = line_key_from_name(path.name)
+    where = moved_to or "nowhere (it vanished before it could be moved)"
+    return AlertEvent(
+        time=now.astimezone(UTC).isoformat(timespec="milliseconds"),
+        scan_id=path.parent.name,
+        rule=BAD_FILE_RULE,
+        severity="warning",
+        state="raised",
+        line_index=line_index,
+        direction=direction,
+        pixel_range=None,
+        seen_value=None,
+        seen_unit="",
+        baseline_value=None,
+        baseline_spread=None,
+        confidence_z=None,
+        message=f"line file quarantined: {error}",
+        advice=(
+            f"the file was moved to {where} with a note beside it; check the acquisition "
+            "software's writer; the line is missing from the map until a good file arrives"
+        ),
+    )
+
+
+@dataclass(frozen=True)
+class QuarantineRecord:
+    """What the sidecar says about one quarantined file."""
+
+    file: str
+    moved_to: str
+    field: str
+    expected: str
+    found: str
+    message: str
+    time: str
+
+
+def _free_name(folder: Path, name: str) -> Path:
+    target = folder / name
+    n = 1
+    while target.exists() or target.with_name(target.name + ".error.json").exists():
+        target = folder / f"{name}.{n}"
+        n += 1
+    return target
+
+
+def quarantine_file(
+    path: Path, *, field: str, expected: str, found: str, message: str
+) -> QuarantineRecord:
+    """Move ``path`` into its folder's ``_quarantine/`` and write the sidecar.
+
+    Parameters
+    ----------
+    path : Path
+        The offending file (inside a scan folder).
+    field, expected, found, message : str
+        What was wrong, as named by the error that rejected it.
+
+    Returns
+    -------
+    QuarantineRecord
+        The sidecar's content. If the file vanished meanwhile, ``moved_to`` is empty and
+        only the sidecar is written.
+    """
+    folder = path.parent / QUARANTINE_DIR
+    folder.mkdir(exist_ok=True)
+    target = _free_name(folder, path.name)
+    try:
+        os.replace(path, target)
+        moved_to = str(target)
+    except FileNotFoundError:
+        moved_to = ""
+    record = QuarantineRecord(
+        file=str(path),
+        moved_to=moved_to,
+        field=field,
+        expected=expected,
+        found=found,
+        message=message,
+        time=datetime.now(UTC).isoformat(timespec="seconds"),
+    )
+    sidecar = target.with_name(target.name + ".error.json")
+    write_text_atomic(sidecar, json.dumps(asdict(record), indent=2) + "\n")
+    return record

@@ -1,0 +1,100 @@
+"""Read a scan store for the products stage, through the store's read-only reader.
+
+The reader replays the ledger before any map is read: a line committed in between is
+left out, a line being written (begun, not committed) is masked, so a half-written row
+never reaches a product.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from strayline.errors import LineFileError
+from strayline.lines import DIRECTIONS, read_line_file
+from strayline.products._maps import TraceMaps, assemble_trace
+from strayline.store import MAP_NAMES, StoreReader, open_store_reader
+
+__all__ = ["StoreSnapshot", "nv_axis_from_store", "read_snapshot"]
+
+
+@dataclass(frozen=True, eq=False)
+class StoreSnapshot:
+    """What the products need from one store.
+
+    Attributes
+    ----------
+    path : Path
+    attrs : dict
+        The store's root attributes (scan id, sizes, NV axis, config, digest, version).
+    traces : dict of str to TraceMaps
+        Directions with at least one committed line.
+    committed : dict of str to list of int
+        Committed line indices per direction.
+    sources : list of str
+        Source files of the committed lines, in ledger order.
+    reader : StoreReader
+        The read-only view the snapshot was taken from.
+    """
+
+    path: Path
+    attrs: dict[str, Any]
+    traces: dict[str, TraceMaps]
+    committed: dict[str, list[int]]
+    sources: list[str]
+    reader: StoreReader
+
+    @property
+    def scan_id(self) -> str:
+        return str(self.attrs["scan_id"])
+
+
+def read_snapshot(store_path: Path) -> StoreSnapshot:
+    """Read the committed part of every trace of a store.
+
+    Raises
+    ------
+    StoreError
+        If ``store_path`` is not a readable scan store.
+    """
+    reader = open_store_reader(Path(store_path))
+    committed = {d: reader.committed_lines(d) for d in DIRECTIONS}
+    traces: dict[str, TraceMaps] = {}
+    for direction in DIRECTIONS:
+        lines = committed[direction]
+        if not lines:
+            continue
+        maps = {name: reader.read_array(name, direction) for name in MAP_NAMES}
+        trace = assemble_trace(
+            direction,
+            reader.read_array("x", direction).astype(np.float64),
+            reader.read_array("y", direction).astype(np.float64),
+            np.asarray(lines),
+            maps,
+        )
+        if trace is not None:
+            traces[direction] = trace
+    sources = [entry.source for entry in reader.ledger.committed.values()]
+    return StoreSnapshot(reader.path, reader.attrs, traces, committed, sources, reader)
+
+
+def nv_axis_from_store(snapshot: StoreSnapshot) -> tuple[float, float] | None:
+    """The NV axis (θ, φ) in rad recorded for the scan, or None if nowhere to be found.
+
+    The store records it (:meth:`StoreReader.nv_axis_rad`); for a store written before
+    stores recorded it and without raw spectra, the committed lines' source files that
+    still exist are read (validated as line files).
+    """
+    axis = snapshot.reader.nv_axis_rad()
+    if axis is not None:
+        return axis
+    for source in snapshot.sources:
+        try:
+            line_file = read_line_file(source)
+        except (OSError, LineFileError):
+            continue
+        return line_file.nv_theta_rad, line_file.nv_phi_rad
+    return None

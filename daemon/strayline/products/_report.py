@@ -1,0 +1,205 @@
+"""The scan report's content: summary statistics as plain JSON-ready values, and its
+short Markdown rendering. Pure functions; :mod:`strayline.products` writes the files.
+
+Statistics are over committed pixels only; field values are in SI units (T, A, counts/s,
+Hz) with the unit stated beside each block, so the JSON is read without guessing.
+"""
+
+from __future__ import annotations
+
+import math
+from collections import Counter
+from collections.abc import Mapping, Sequence
+from typing import Any
+
+import numpy as np
+
+from strayline.alerts import AlertEvent
+from strayline.fit import FitStatus
+from strayline.products._maps import TraceMaps, VectorField, contrast_map
+
+__all__ = [
+    "REPORT_FORMAT",
+    "REPORT_FORMAT_VERSION",
+    "alert_summary",
+    "distribution",
+    "report_markdown",
+    "status_fractions",
+    "trace_summary",
+    "vector_summary",
+]
+
+REPORT_FORMAT = "strayline-products-report"
+REPORT_FORMAT_VERSION = 1
+_PERCENTILES = (5.0, 25.0, 50.0, 75.0, 95.0)
+
+
+def distribution(values: np.ndarray, unit: str) -> dict[str, Any] | None:
+    """Median, 5/25/75/95th percentiles, min, max and count of the finite values.
+
+    Returns None when there is no finite value.
+    """
+    finite = np.asarray(values, dtype=np.float64)
+    finite = finite[np.isfinite(finite)]
+    if finite.size == 0:
+        return None
+    p5, p25, p50, p75, p95 = (float(v) for v in np.percentile(finite, _PERCENTILES))
+    return {
+        "unit": unit,
+        "count": int(finite.size),
+        "median": p50,
+        "p5": p5,
+        "p25": p25,
+        "p75": p75,
+        "p95": p95,
+        "min": float(finite.min()),
+        "max": float(finite.max()),
+    }
+
+
+def _median(values: np.ndarray) -> float | None:
+    finite = np.asarray(values, dtype=np.float64)
+    finite = finite[np.isfinite(finite)]
+    return float(np.median(finite)) if finite.size else None
+
+
+def status_fractions(status: np.ndarray) -> dict[str, float]:
+    """Fraction of pixels per fit status (every :class:`FitStatus` named, zeros included).
+
+    Parameters
+    ----------
+    status : ndarray of uint8, shape (n,)
+        Status codes of written pixels.
+    """
+    codes = np.asarray(status).ravel()
+    total = codes.size
+    return {
+        member.name.lower(): (float(np.count_nonzero(codes == member)) / total if total else 0.0)
+        for member in FitStatus
+    }
+
+
+def trace_summary(trace: TraceMaps) -> dict[str, Any]:
+    """Lines, pixels, fit outcome and medians of one trace's committed pixels."""
+    rows = trace.committed
+    maps = {name: np.asarray(values)[rows] for name, values in trace.maps.items()}
+    fractions = status_fractions(maps["status"])
+    return {
+        "lines_committed": trace.n_lines_committed,
+        "line_range": [int(trace.line_index.min()), int(trace.line_index.max())],
+        "pixels_per_line": trace.shape[1],
+        "pixels_committed": int(maps["status"].size),
+        "x_range_m": [float(trace.x_m[0]), float(trace.x_m[-1])],
+        "y_range_m": [float(trace.y_m[0]), float(trace.y_m[-1])],
+        "pixel_m": {"y": trace.pixel_m[0], "x": trace.pixel_m[1]},
+        "fit_ok_fraction": fractions["ok"],
+        "fit_status_fractions": fractions,
+        "field_nv_t": distribution(maps["field_nv_t"], "T"),
+        "field_nv_sigma_t_median": _median(maps["field_nv_sigma_t"]),
+        "pl_rate_cps_median": _median(maps["pl_rate_cps"]),
+        "contrast_median": _median(contrast_map(trace)[rows]),
+        "contrast_lo_median": _median(maps["contrast_lo"]),
+        "contrast_hi_median": _median(maps["contrast_hi"]),
+        "fwhm_hz_median": _median(maps["fwhm_hz"]),
+        "chi2_red_median": _median(maps["chi2_red"]),
+    }
+
+
+def vector_summary(vector: VectorField) -> dict[str, Any]:
+    """Spread of the reconstructed components (and m_z), and how much was filled in."""
+    measured = ~vector.filled
+    out: dict[str, Any] = {
+        "filled_fraction": float(np.mean(vector.filled)),
+        "uniform_part": "removed (not recoverable from one projection)",
+    }
+    for name, values in zip(("bx_t", "by_t", "bz_t"), vector.b_xyz_t, strict=True):
+        out[name] = distribution(values[measured], "T")
+    if vector.m_z_a is not None and vector.k_cut_rad_per_m is not None:
+        out["m_z_a"] = distribution(vector.m_z_a[measured], "A")
+        out["k_cut_rad_per_m"] = vector.k_cut_rad_per_m
+        out["resolution_m"] = 2.0 * math.pi / vector.k_cut_rad_per_m
+    return out
+
+
+def alert_summary(events: Sequence[AlertEvent]) -> dict[str, Any]:
+    """Counts per state and per rule (raised events), and every event as a dict."""
+    raised = [e for e in events if e.state == "raised"]
+    return {
+        "raised": len(raised),
+        "cleared": len(events) - len(raised),
+        "raised_by_rule": dict(sorted(Counter(e.rule for e in raised).items())),
+        "raised_by_severity": dict(sorted(Counter(e.severity for e in raised).items())),
+        "events": [e.to_dict() for e in events],
+    }
+
+
+def _fmt(value: float | None, scale: float, unit: str, digits: int = 4) -> str:
+    return "n/a" if value is None else f"{value * scale:.{digits}g} {unit}"
+
+
+def _field_line(stats: Mapping[str, Any] | None) -> str:
+    if stats is None:
+        return "no field values"
+    scale, unit = (1e3, "mT") if max(abs(stats["p5"]), abs(stats["p95"])) >= 1e-3 else (1e6, "µT")
+    return (
+        f"median {stats['median'] * scale:.4g} {unit}, 5–95 % "
+        f"{stats['p5'] * scale:.4g} … {stats['p95'] * scale:.4g} {unit}"
+    )
+
+
+def report_markdown(report: Mapping[str, Any]) -> str:
+    """A short human-readable rendering of a report dict (see :func:`strayline.products`)."""
+    axis = report["nv_axis"]
+    lines = [
+        f"# Scan {report['scan_id']} — products",
+        "",
+        f"- store: `{report['store']}` ({report['n_lines_planned']} lines planned × "
+        f"{report['n_pixels']} pixels)",
+        f"- made {report['made_time']} by strayline {report['software_version']}; "
+        f"store written by {report['store_software_version']}, config digest "
+        f"`{str(report['config_digest'])[:12]}`",
+        f"- NV axis θ = {axis['theta_deg']:.2f}°, φ = {axis['phi_deg']:.2f}°; standoff "
+        + ("unknown" if report["standoff_m"] is None else f"{report['standoff_m'] * 1e9:.1f} nm"),
+        "",
+    ]
+    for direction, trace in report["traces"].items():
+        lines += [
+            f"## {direction.capitalize()} trace",
+            "",
+            f"- {trace['lines_committed']} lines committed, {trace['pixels_committed']} pixels; "
+            f"fits OK {100 * trace['fit_ok_fraction']:.1f} %",
+            f"- field along NV: {_field_line(trace['field_nv_t'])}",
+            f"- PL {_fmt(trace['pl_rate_cps_median'], 1e-3, 'kcounts/s')}, contrast "
+            f"{_fmt(trace['contrast_median'], 100, '%', 3)}, linewidth "
+            f"{_fmt(trace['fwhm_hz_median'], 1e-6, 'MHz', 3)} (medians)",
+        ]
+        failed = {k: v for k, v in trace["fit_status_fractions"].items() if k != "ok" and v > 0}
+        if failed:
+            listing = ", ".join(f"{k.replace('_', ' ')} {100 * v:.1f} %" for k, v in failed.items())
+            lines.append(f"- not OK: {listing}")
+        vector = trace.get("vector")
+        if vector is not None:
+            lines.append(
+                f"- vector field: {100 * vector['filled_fraction']:.1f} % of pixels filled; "
+                f"Bz {_field_line(vector['bz_t'])}"
+            )
+            if "m_z_a" in vector and vector["m_z_a"] is not None:
+                m = vector["m_z_a"]
+                lines.append(
+                    f"- sheet moment m_z: 5–95 % {m['p5'] * 1e3:.3g} … {m['p95'] * 1e3:.3g} mA "
+                    f"(resolution ≈ {vector['resolution_m'] * 1e9:.0f} nm, mean lost)"
+                )
+        lines.append("")
+    alerts = report["alerts"]
+    lines += ["## Alerts", ""]
+    if alerts.get("problem"):
+        lines.append(f"- alert log not read: {alerts['problem']}")
+    elif alerts["raised"] == 0:
+        lines.append("- none raised")
+    else:
+        by_rule = ", ".join(f"{k} ×{v}" for k, v in alerts["raised_by_rule"].items())
+        lines.append(f"- {alerts['raised']} raised, {alerts['cleared']} cleared: {by_rule}")
+    lines += ["", "## Products", ""]
+    lines += [f"- `{p['path']}` — {p['description']}" for p in report["products"]]
+    lines += [f"- skipped {s['product']}: {s['reason']}" for s in report["skipped"]]
+    return "\n".join(lines) + "\n"

@@ -1,0 +1,230 @@
+"""Line detectors: one per rule kind, built once from its spec, evaluated on each line.
+
+A detector turns a line's metrics and the scan's baseline into an :class:`Observation`
+(raise condition, clear condition, what was seen, against what, where). Counting lines
+for persistence and hysteresis is the engine's job, not the detector's. Detectors keep
+any memory they need in the plain ``memo`` dict the engine stores (JSON-serialisable, so
+it survives restarts). The resonance-jump detector, the largest, is in
+:mod:`strayline.rules._jump`.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable
+from typing import Any
+
+from strayline.physics import DD_DT_HZ_PER_K
+from strayline.rules._jump import resonance_jump_detector
+from strayline.rules._observation import (
+    BaselineView,
+    Detector,
+    Observation,
+    pixel_text,
+    robust_z,
+)
+from strayline.rules.metrics import LineMetrics
+from strayline.rules.spec import (
+    ContrastCollapsedSpec,
+    FitFailuresRisingSpec,
+    FluorescenceLostSpec,
+    RuleSpec,
+    ThresholdSpec,
+    ZfsDriftSpec,
+)
+
+__all__ = ["BaselineView", "Observation", "build_detector"]
+
+
+def _fluorescence_lost(spec: FluorescenceLostSpec) -> Detector:
+    below, clear_above = spec.pl_fraction_below, spec.pl_fraction_clear_above
+
+    def detect(m: LineMetrics, base: BaselineView, memo: dict[str, Any]) -> Observation | None:
+        st = base.stats("pl_median_per_s")
+        if st is None or not math.isfinite(m.pl_median_per_s) or st[0] <= 0:
+            return None
+        med, spread = st
+        level, rng, first = m.pl_median_per_s, None, -1
+        if m.pl_step < 0 and m.pl_step_range is not None and m.pl_step_level_per_s < level:
+            level, rng, first = m.pl_step_level_per_s, m.pl_step_range, m.pl_step_first_pixel
+        ratio = level / med
+        return Observation(
+            raise_cond=ratio < below,
+            clear_cond=m.pl_median_per_s / med > clear_above,
+            seen_value=level,
+            seen_unit="counts/s",
+            baseline_value=med,
+            baseline_spread=spread,
+            confidence_z=robust_z(level, med, spread, 1e-3 * med),
+            pixel_range=rng,
+            message=(
+                f"PL fell to {ratio:.0%} of the running median ({med:.3g} counts/s) "
+                f"{pixel_text(first, rng, m.n_pixels)}"
+            ),
+            clear_message=(
+                f"PL is back to {m.pl_median_per_s / med:.0%} of the running median "
+                f"({med:.3g} counts/s)"
+            ),
+        )
+
+    return detect
+
+
+def _contrast_collapsed(spec: ContrastCollapsedSpec) -> Detector:
+    def detect(m: LineMetrics, base: BaselineView, memo: dict[str, Any]) -> Observation | None:
+        c_st, pl_st = base.stats("contrast_median"), base.stats("pl_median_per_s")
+        if c_st is None or pl_st is None or c_st[0] <= 0 or pl_st[0] <= 0:
+            return None
+        if not math.isfinite(m.contrast_median):
+            return None
+        c_ratio = m.contrast_median / c_st[0]
+        pl_ratio = m.pl_median_per_s / pl_st[0]
+        return Observation(
+            raise_cond=c_ratio < spec.contrast_fraction_below
+            and pl_ratio >= spec.pl_fraction_normal_above,
+            clear_cond=c_ratio > spec.contrast_fraction_clear_above,
+            seen_value=m.contrast_median,
+            seen_unit="fraction",
+            baseline_value=c_st[0],
+            baseline_spread=c_st[1],
+            confidence_z=robust_z(m.contrast_median, c_st[0], c_st[1], 1e-3 * c_st[0]),
+            message=(
+                f"ODMR contrast fell to {c_ratio:.0%} of the running median "
+                f"({c_st[0]:.1%}) while PL stayed at {pl_ratio:.0%}"
+            ),
+            clear_message=f"ODMR contrast is back to {c_ratio:.0%} of the running median",
+        )
+
+    return detect
+
+
+def _fit_failures_rising(spec: FitFailuresRisingSpec) -> Detector:
+    def detect(m: LineMetrics, base: BaselineView, memo: dict[str, Any]) -> Observation | None:
+        st = base.stats("fit_failure_fraction")
+        if st is None or not math.isfinite(m.fit_failure_fraction):
+            return None
+        v, (med, spread) = m.fit_failure_fraction, st
+        return Observation(
+            raise_cond=v >= spec.failure_fraction_above and v - med >= spec.rise_fraction_above,
+            clear_cond=v - med < spec.rise_fraction_clear_below,
+            seen_value=v,
+            seen_unit="fraction",
+            baseline_value=med,
+            baseline_spread=spread,
+            confidence_z=robust_z(v, med, spread, 0.01),
+            message=f"{v:.0%} of the line's fits failed (running median {med:.0%})",
+            clear_message=f"fit failures are back to {v:.0%} (running median {med:.0%})",
+        )
+
+    return detect
+
+
+def _zfs_drift(spec: ZfsDriftSpec) -> Detector:
+    metric = "center_mean_p10_hz"
+    factor = spec.anchor_spread_factor
+
+    def detect(m: LineMetrics, base: BaselineView, memo: dict[str, Any]) -> Observation | None:
+        anchor = base.anchor_stats(metric)
+        v = m.center_mean_p10_hz
+        if anchor is None or not math.isfinite(v):
+            return None
+        ref, anchor_spread = anchor
+        delta = v - ref
+        kelvin = delta / DD_DT_HZ_PER_K
+        # What the sample itself does to the statistic (scaled) sets a floor under both
+        # thresholds, keeping their ratio.
+        raise_hz = max(spec.drift_hz_above, factor * anchor_spread)
+        clear_hz = raise_hz * spec.drift_hz_clear_below / spec.drift_hz_above
+        return Observation(
+            raise_cond=abs(delta) > raise_hz,
+            clear_cond=abs(delta) < clear_hz,
+            seen_value=delta,
+            seen_unit="Hz",
+            baseline_value=ref,
+            baseline_spread=anchor_spread,
+            confidence_z=robust_z(v, ref, anchor_spread, 1e3),
+            message=(
+                f"the mean of the two resonances (10th percentile over the line) moved by "
+                f"{delta / 1e6:+.2f} MHz since the scan's first lines (≈ {kelvin:+.1f} K if "
+                "it is temperature, at −74.2 kHz/K; strain and the transverse field move it "
+                "too)"
+            ),
+            clear_message=(
+                f"the mean of the two resonances (10th percentile over the line) is back "
+                f"within {abs(delta) / 1e6:.2f} MHz of the scan's first lines"
+            ),
+        )
+
+    return detect
+
+
+def _threshold(spec: ThresholdSpec) -> Detector:
+    above = spec.above
+    below = spec.below
+    clear_above = spec.clear_above if spec.clear_above is not None else above
+    clear_below = spec.clear_below if spec.clear_below is not None else below
+    ref = spec.reference
+    unit = spec.unit if ref in ("absolute", "baseline_delta") else ref.removeprefix("baseline_")
+
+    def detect(m: LineMetrics, base: BaselineView, memo: dict[str, Any]) -> Observation | None:
+        try:
+            v = m.value(spec.metric)
+        except KeyError:
+            return None
+        if not math.isfinite(v):
+            return None
+        st = base.stats(spec.metric)
+        med: float | None = None
+        spread: float | None = None
+        z: float | None = None
+        x = v
+        if st is not None:
+            med, spread = st
+            z = robust_z(v, med, spread, 1e-12 * abs(med))
+        if ref != "absolute":
+            if med is None or z is None:
+                return None
+            if ref == "baseline_ratio":
+                if med == 0:
+                    return None
+                x = v / med
+            elif ref == "baseline_delta":
+                x = v - med
+            else:
+                x = z
+        hi = above is not None and x > above
+        lo = below is not None and x < below
+        ok_hi = clear_above is None or x < clear_above
+        ok_lo = clear_below is None or x > clear_below
+        return Observation(
+            raise_cond=hi or lo,
+            clear_cond=ok_hi and ok_lo,
+            seen_value=x,
+            seen_unit=unit,
+            baseline_value=med,
+            baseline_spread=spread,
+            confidence_z=z,
+            message=f"{spec.metric} = {x:.4g} {unit}".rstrip()
+            + (f" (above {above:g})" if hi else f" (below {below:g})" if lo else ""),
+            clear_message=f"{spec.metric} = {x:.4g} {unit} is back within limits".replace(
+                "  ", " "
+            ),
+        )
+
+    return detect
+
+
+_BUILDERS: dict[str, Callable[[Any], Detector]] = {
+    "fluorescence_lost": _fluorescence_lost,
+    "contrast_collapsed": _contrast_collapsed,
+    "fit_failures_rising": _fit_failures_rising,
+    "zfs_drift": _zfs_drift,
+    "threshold": _threshold,
+    "resonance_jump": resonance_jump_detector,
+}
+
+
+def build_detector(spec: RuleSpec) -> Detector | None:
+    """The line detector for ``spec`` (None for tick-only kinds such as stalls)."""
+    builder = _BUILDERS.get(spec.kind)
+    return None if builder is None else builder(spec)

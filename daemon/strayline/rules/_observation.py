@@ -1,0 +1,65 @@
+"""What a line detector reads (the baseline) and returns (an observation).
+
+Shared by the detectors of :mod:`strayline.rules._detectors` and
+:mod:`strayline.rules._jump`.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass
+from typing import Any, Protocol
+
+from strayline.rules.metrics import LineMetrics
+
+__all__ = ["BaselineView", "Detector", "Observation", "pixel_text", "robust_z"]
+
+
+class BaselineView(Protocol):
+    """What a detector may ask of the baseline."""
+
+    def stats(self, name: str) -> tuple[float, float] | None: ...
+
+    def anchor(self, name: str) -> float | None: ...
+
+    def anchor_stats(self, name: str) -> tuple[float, float] | None: ...
+
+
+@dataclass(frozen=True)
+class Observation:
+    """One detector's reading of one line.
+
+    ``confidence_z`` is a robust z-score: (value − baseline median) / baseline spread.
+    ``run_lines``: when set, the number of lines in a row (this one included) the raise
+    condition is known to have held, replacing the engine's count: 1 when the lines
+    counted so far were about something that did not hold, 2 when this line confirms
+    what the previous one showed.
+    """
+
+    raise_cond: bool
+    clear_cond: bool
+    seen_value: float
+    seen_unit: str
+    message: str
+    clear_now: bool = False
+    baseline_value: float | None = None
+    baseline_spread: float | None = None
+    confidence_z: float | None = None
+    pixel_range: tuple[int, int] | None = None
+    clear_message: str = ""
+    run_lines: int | None = None
+
+
+Detector = Callable[[LineMetrics, BaselineView, dict[str, Any]], Observation | None]
+
+
+def robust_z(value: float, median: float, spread: float, floor: float) -> float:
+    """(value − median) / spread, the spread at least ``floor``."""
+    return (value - median) / max(spread, floor, 1e-300)
+
+
+def pixel_text(first_pixel: int, rng: tuple[int, int] | None, n_pixels: int) -> str:
+    """Where on the line, in words: the whole line, or from a pixel on (a range)."""
+    if rng is None or rng[1] - rng[0] >= n_pixels:
+        return "over the whole line"
+    return f"from pixel {first_pixel} on (pixels {rng[0]}–{rng[1] - 1})"

@@ -1,0 +1,604 @@
+"""Alert rules: data-driven detectors over line metrics, with persistence and hysteresis.
+
+Rules are data (``config/rules.yaml``, validated by :class:`RulesConfig`). Each line's
+:class:`~strayline.rules.metrics.LineMetrics` is judged against a :class:`RollingBaseline` of the
+scan's previous *good* lines (a line is good when no rule is active on the scan and none
+of the rules' raise conditions held on it). :class:`RuleEngine` counts lines for each
+rule: it raises after ``persistence_lines`` lines in a row with the raise condition and
+clears after ``clear_lines`` lines in a row with the (separate, hysteretic) clear
+condition. A raise and a clear are each one :class:`AlertEvent`; a fault lasting a
+hundred lines gives exactly one of each. Stalls are judged on clock ticks
+(:meth:`RuleEngine.evaluate_tick`); the clock is injected. The engine's whole state is a
+plain JSON-serialisable dict (:meth:`RuleEngine.state_dict`), so a restart mid-alert
+neither raises the alert again nor forgets it.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import math
+import os
+import time
+from collections import deque
+from collections.abc import Callable, Iterable, Mapping
+from dataclasses import dataclass, replace
+from datetime import UTC, datetime
+from os import PathLike
+from pathlib import Path
+from typing import Any, Literal
+
+import numpy as np
+import structlog
+from pydantic import ValidationError
+
+from strayline._atomic import write_text_atomic
+from strayline._numbers import finite_or_none, median_and_spread
+from strayline.alerts import AlertEvent
+from strayline.errors import StoreError
+from strayline.rules._detectors import Observation, build_detector
+from strayline.rules.metrics import LineMetrics
+from strayline.rules.spec import (
+    AcquisitionStalledSpec,
+    RulesConfig,
+    RuleSpec,
+)
+
+__all__ = ["RollingBaseline", "RuleEngine"]
+
+_STATE_VERSION = 1
+_MAX_SCANS_KEPT = 8
+
+
+class RollingBaseline:
+    """Median and spread of each metric over the last good lines of one scan.
+
+    Also keeps an *anchor*: the median of the first ``anchor_lines`` good lines, a fixed
+    reference for slow drifts that a rolling window would follow.
+
+    Parameters
+    ----------
+    window_lines : int
+        Good lines kept.
+    min_lines : int
+        Good lines needed before :meth:`stats` answers.
+    anchor_lines : int
+        Good lines forming the anchor.
+    """
+
+    def __init__(self, window_lines: int = 30, min_lines: int = 5, anchor_lines: int = 10) -> None:
+        self.window_lines = int(window_lines)
+        self.min_lines = int(min_lines)
+        self.anchor_lines = int(anchor_lines)
+        self._values: dict[str, deque[float]] = {}
+        self._anchor: dict[str, list[float]] = {}
+        self._count = 0
+
+    @property
+    def count(self) -> int:
+        """Good lines added so far (not capped by the window)."""
+        return self._count
+
+    def add(self, values: Mapping[str, float]) -> None:
+        """Add one good line's metrics (name → value; NaN allowed)."""
+        self._count += 1
+        for name, v in values.items():
+            self._values.setdefault(name, deque(maxlen=self.window_lines)).append(float(v))
+            anchor = self._anchor.setdefault(name, [])
+            if len(anchor) < self.anchor_lines:
+                anchor.append(float(v))
+
+    def stats(self, name: str) -> tuple[float, float] | None:
+        """(median, 1.4826·MAD) over the window, or None with too few finite values."""
+        values = self._values.get(name)
+        if values is None:
+            return None
+        a = np.asarray(values, dtype=float)
+        a = a[np.isfinite(a)]
+        if a.size < self.min_lines:
+            return None
+        return median_and_spread(a)
+
+    def anchor_stats(self, name: str) -> tuple[float, float] | None:
+        """(median, 1.4826·MAD) of the first ``anchor_lines`` good values, once complete."""
+        a = np.asarray(self._anchor.get(name, []), dtype=float)
+        a = a[np.isfinite(a)]
+        if a.size < self.anchor_lines:
+            return None
+        return median_and_spread(a)
+
+    def state_dict(self) -> dict[str, Any]:
+        """JSON-serialisable state (NaN stored as None)."""
+
+        def clean(seq: Iterable[float]) -> list[float | None]:
+            return [finite_or_none(v) for v in seq]
+
+        return {
+            "window_lines": self.window_lines,
+            "min_lines": self.min_lines,
+            "anchor_lines": self.anchor_lines,
+            "count": self._count,
+            "values": {k: clean(v) for k, v in self._values.items()},
+            "anchor": {k: clean(v) for k, v in self._anchor.items()},
+        }
+
+    @classmethod
+    def from_state(cls, state: Mapping[str, Any]) -> RollingBaseline:
+        """Rebuild from :meth:`state_dict`."""
+        out = cls(state["window_lines"], state["min_lines"], state["anchor_lines"])
+        out._count = int(state["count"])
+
+        def restore(seq: Iterable[float | None]) -> list[float]:
+            return [math.nan if v is None else float(v) for v in seq]
+
+        for k, v in state["values"].items():
+            out._values[k] = deque(restore(v), maxlen=out.window_lines)
+        out._anchor = {k: restore(v) for k, v in state["anchor"].items()}
+        return out
+
+
+@dataclass
+class _RuleState:
+    active: bool = False
+    true_count: int = 0
+    clear_count: int = 0
+    raised: dict[str, Any] | None = None
+    memo: dict[str, Any] | None = None
+
+
+def _iso(t_s: float) -> str:
+    return datetime.fromtimestamp(t_s, UTC).isoformat(timespec="milliseconds")
+
+
+class _RuleSet:
+    """One rule set, ready to run: its enabled specs, line detectors and stall rules."""
+
+    def __init__(self, config: RulesConfig) -> None:
+        self.config = config
+        self.specs: dict[str, RuleSpec] = {r.name: r for r in config.rules if r.enabled}
+        self.detectors = {
+            name: det for name, spec in self.specs.items() if (det := build_detector(spec))
+        }
+        self.stall_specs = [s for s in self.specs.values() if isinstance(s, AcquisitionStalledSpec)]
+
+
+class _ScanState:
+    def __init__(self, rule_set: _RuleSet) -> None:
+        self.rule_set = rule_set
+        baseline = rule_set.config.baseline
+        self.baseline = RollingBaseline(
+            baseline.window_lines, baseline.min_lines, baseline.anchor_lines
+        )
+        self.rules = {name: _RuleState(memo={}) for name in rule_set.specs}
+        self.last_arrival_s: float | None = None
+        self.last_line_index: int | None = None
+        self.last_direction: str | None = None
+        self.n_lines_planned: int | None = None
+        self.lines_seen = 0
+        self.intervals_s: deque[float] = deque(maxlen=20)
+
+    def complete(self) -> bool:
+        return (
+            self.n_lines_planned is not None
+            and self.last_line_index is not None
+            and self.last_line_index >= self.n_lines_planned - 1
+        )
+
+    def state_dict(self, default: _RuleSet) -> dict[str, Any]:
+        own = self.rule_set is not default
+        return {
+            "baseline": self.baseline.state_dict(),
+            "rule_set": self.rule_set.config.model_dump(mode="json") if own else None,
+            "rules": {
+                name: {
+                    "active": st.active,
+                    "true_count": st.true_count,
+                    "clear_count": st.clear_count,
+                    "raised": st.raised,
+                    "memo": st.memo,
+                }
+                for name, st in self.rules.items()
+            },
+            "last_arrival_s": self.last_arrival_s,
+            "last_line_index": self.last_line_index,
+            "last_direction": self.last_direction,
+            "n_lines_planned": self.n_lines_planned,
+            "lines_seen": self.lines_seen,
+            "intervals_s": list(self.intervals_s),
+        }
+
+    @classmethod
+    def from_state(cls, state: Mapping[str, Any], default: _RuleSet) -> _ScanState:
+        own = state.get("rule_set")  # absent in states saved before per-scan rule sets
+        rule_set = default
+        if own is not None:
+            with contextlib.suppress(ValidationError):  # from another version: the default
+                rule_set = _RuleSet(RulesConfig.model_validate(own))
+        out = cls(rule_set)
+        out.baseline = RollingBaseline.from_state(state["baseline"])
+        for name, st in state["rules"].items():
+            if name in out.rules:  # rules removed from the config are forgotten
+                out.rules[name] = _RuleState(
+                    active=bool(st["active"]),
+                    true_count=int(st["true_count"]),
+                    clear_count=int(st["clear_count"]),
+                    raised=st["raised"],
+                    memo=dict(st["memo"] or {}),
+                )
+        out.last_arrival_s = state["last_arrival_s"]
+        out.last_line_index = state["last_line_index"]
+        out.last_direction = state["last_direction"]
+        out.n_lines_planned = state["n_lines_planned"]
+        out.lines_seen = int(state["lines_seen"])
+        out.intervals_s.extend(float(v) for v in state["intervals_s"])
+        return out
+
+
+class RuleEngine:
+    """Evaluates rule sets line by line and on clock ticks; one engine for all scans.
+
+    Each scan is judged by its own rule set (its sample-type profile's, given with
+    :meth:`use_rules`; ``rules`` otherwise), which the saved state keeps.
+
+    Parameters
+    ----------
+    rules : RulesConfig
+        The rule set of scans given none of their own (disabled rules are skipped).
+    clock : callable returning POSIX seconds
+        Time source for event times and stall detection (inject a fake one in tests).
+    """
+
+    def __init__(self, rules: RulesConfig, *, clock: Callable[[], float] = time.time) -> None:
+        self._default = _RuleSet(rules)
+        self._clock = clock
+        self._scans: dict[str, _ScanState] = {}
+        self._latest: str | None = None
+
+    @property
+    def config(self) -> RulesConfig:
+        """The rule set of scans that were given none of their own."""
+        return self._default.config
+
+    def use_rules(self, scan_id: str, rules: RulesConfig) -> None:
+        """Judge ``scan_id`` by ``rules`` from now on (its sample-type profile's set).
+
+        The state of rules that keep their name carries over (an active alert stays
+        active); rules no longer in the set are forgotten; the baseline is kept.
+        """
+        scan = self._scan(scan_id, rules)
+        if scan.rule_set.config == rules:
+            return
+        scan.rule_set = self._default if rules == self._default.config else _RuleSet(rules)
+        scan.rules = {
+            name: scan.rules.get(name) or _RuleState(memo={}) for name in scan.rule_set.specs
+        }
+
+    # -- events -------------------------------------------------------------------------
+
+    def _event(
+        self,
+        scan_id: str,
+        spec: RuleSpec,
+        state: Literal["raised", "cleared"],
+        *,
+        obs: Observation | None,
+        line_index: int | None,
+        direction: str | None,
+        now_s: float,
+        message: str,
+    ) -> AlertEvent:
+        return AlertEvent(
+            time=_iso(now_s),
+            scan_id=scan_id,
+            rule=spec.name,
+            severity=spec.severity,
+            state=state,
+            line_index=line_index,
+            direction=direction,
+            pixel_range=None if obs is None else obs.pixel_range,
+            seen_value=None if obs is None else finite_or_none(obs.seen_value),
+            seen_unit="" if obs is None else obs.seen_unit,
+            baseline_value=None if obs is None else finite_or_none(obs.baseline_value),
+            baseline_spread=None if obs is None else finite_or_none(obs.baseline_spread),
+            confidence_z=None if obs is None else finite_or_none(obs.confidence_z),
+            message=message,
+            advice=spec.advice,
+        )
+
+    def _raise(self, st: _RuleState, event: AlertEvent) -> AlertEvent:
+        st.active, st.clear_count, st.true_count = True, 0, 0
+        st.raised = event.to_dict()
+        memo = st.memo if st.memo is not None else {}
+        if "pending" in memo:
+            memo["raised"] = memo.pop("pending")
+        st.memo = memo
+        return event
+
+    def _clear(self, st: _RuleState, event: AlertEvent) -> AlertEvent:
+        st.active, st.clear_count, st.true_count, st.raised = False, 0, 0, None
+        st.memo = {}
+        return event
+
+    # -- evaluation ---------------------------------------------------------------------
+
+    def _scan(self, scan_id: str, rules: RulesConfig | None = None) -> _ScanState:
+        scan = self._scans.get(scan_id)
+        if scan is None:
+            if rules is None or rules == self._default.config:
+                scan = _ScanState(self._default)
+            else:
+                scan = _ScanState(_RuleSet(rules))
+            self._scans[scan_id] = scan
+            while len(self._scans) > _MAX_SCANS_KEPT:
+                oldest = next(iter(self._scans))
+                if oldest == scan_id:
+                    break
+                del self._scans[oldest]
+        return scan
+
+    def _clear_stalls(
+        self, scan_id: str, scan: _ScanState, now_s: float, why: str
+    ) -> list[AlertEvent]:
+        out = []
+        for spec in scan.rule_set.stall_specs:
+            st = scan.rules[spec.name]
+            if st.active:
+                out.append(
+                    self._clear(
+                        st,
+                        self._event(
+                            scan_id,
+                            spec,
+                            "cleared",
+                            obs=None,
+                            line_index=scan.last_line_index,
+                            direction=scan.last_direction,
+                            now_s=now_s,
+                            message=why,
+                        ),
+                    )
+                )
+        return out
+
+    def evaluate_line(self, scan_id: str, metrics: LineMetrics) -> list[AlertEvent]:
+        """Judge one processed line; returns the raise/clear events it causes (often none)."""
+        now_s = float(self._clock())
+        events: list[AlertEvent] = []
+        if self._latest is not None and self._latest != scan_id and self._latest in self._scans:
+            events += self._clear_stalls(
+                self._latest,
+                self._scans[self._latest],
+                now_s,
+                f"a new scan {scan_id!r} started",
+            )
+        self._latest = scan_id
+        scan = self._scan(scan_id)
+        if scan.last_arrival_s is not None:
+            events += self._clear_stalls(scan_id, scan, now_s, f"line {metrics.line_index} arrived")
+        observed: dict[str, Observation] = {}
+        for name, detect in scan.rule_set.detectors.items():
+            st = scan.rules[name]
+            memo = st.memo if st.memo is not None else {}
+            st.memo = memo
+            obs = detect(metrics, scan.baseline, memo)
+            if obs is not None:
+                observed[name] = obs
+        any_raise_cond = any(obs.raise_cond for obs in observed.values())
+        # A rule explained by another (its suppressed_by) is not raised while that one
+        # holds: raise condition on this line, or already active. Judged on the states
+        # before this line, so the order of the rules does not matter.
+        holding = {
+            name
+            for name, st in scan.rules.items()
+            if st.active or (name in observed and observed[name].raise_cond)
+        }
+        for name, seen in observed.items():
+            spec, st = scan.rule_set.specs[name], scan.rules[name]
+            explained = holding.intersection(spec.suppressed_by)
+            obs = replace(seen, raise_cond=False) if explained and not st.active else seen
+            ev = self._step(scan_id, spec, st, obs, m=metrics, now_s=now_s)
+            if ev is not None:
+                events.append(ev)
+        if not any_raise_cond and not any(st.active for st in scan.rules.values()):
+            scan.baseline.add(metrics.numeric())
+        dt = metrics.time_since_previous_s
+        if math.isfinite(dt) and dt > 0:
+            scan.intervals_s.append(dt)
+        scan.last_arrival_s = now_s
+        scan.last_line_index = metrics.line_index
+        scan.last_direction = metrics.direction
+        scan.n_lines_planned = metrics.n_lines_planned
+        scan.lines_seen += 1
+        return events
+
+    def _step(
+        self,
+        scan_id: str,
+        spec: RuleSpec,
+        st: _RuleState,
+        obs: Observation,
+        *,
+        m: LineMetrics,
+        now_s: float,
+    ) -> AlertEvent | None:
+        if not st.active:
+            run = st.true_count + 1 if obs.run_lines is None else obs.run_lines
+            st.true_count = run if obs.raise_cond else 0
+            if st.true_count >= spec.persistence_lines:
+                ev = self._event(
+                    scan_id,
+                    spec,
+                    "raised",
+                    obs=obs,
+                    line_index=m.line_index,
+                    direction=m.direction,
+                    now_s=now_s,
+                    message=obs.message,
+                )
+                return self._raise(st, ev)
+            if not obs.raise_cond and st.memo:
+                st.memo.pop("pending", None)
+            return None
+        if obs.clear_now:
+            st.clear_count = spec.clear_lines
+        elif obs.clear_cond:
+            st.clear_count += 1
+        else:
+            st.clear_count = 0
+        if st.clear_count >= spec.clear_lines:
+            text = obs.clear_message or obs.message
+            ev = self._event(
+                scan_id,
+                spec,
+                "cleared",
+                obs=obs,
+                line_index=m.line_index,
+                direction=m.direction,
+                now_s=now_s,
+                message=text,
+            )
+            return self._clear(st, ev)
+        return None
+
+    def evaluate_tick(self, now: float | None = None) -> list[AlertEvent]:
+        """Stall check for the most recent scan at time ``now`` (default: the clock)."""
+        now_s = float(self._clock() if now is None else now)
+        if self._latest is None or self._latest not in self._scans:
+            return []
+        scan = self._scans[self._latest]
+        if scan.last_arrival_s is None or scan.complete():
+            return []
+        events = []
+        waited = now_s - scan.last_arrival_s
+        usual = float(np.median(scan.intervals_s)) if scan.intervals_s else None
+        for spec in scan.rule_set.stall_specs:
+            st = scan.rules[spec.name]
+            interval = usual if usual is not None else spec.fallback_interval_s
+            if st.active or interval is None:
+                continue
+            limit = max(spec.interval_factor * interval, spec.min_stall_s)
+            if waited > limit:
+                obs = Observation(
+                    raise_cond=True,
+                    clear_cond=False,
+                    seen_value=waited,
+                    seen_unit="s",
+                    baseline_value=interval,
+                    message="",
+                    confidence_z=None,
+                )
+                message = (
+                    f"no new line for {waited:.0f} s (lines usually every {interval:.0f} s; "
+                    f"last was line {scan.last_line_index} at {_iso(scan.last_arrival_s)})"
+                )
+                ev = self._event(
+                    self._latest,
+                    spec,
+                    "raised",
+                    obs=obs,
+                    line_index=scan.last_line_index,
+                    direction=scan.last_direction,
+                    now_s=now_s,
+                    message=message,
+                )
+                events.append(self._raise(st, ev))
+        return events
+
+    # -- inspection and persistence -----------------------------------------------------
+
+    def active(self) -> list[AlertEvent]:
+        """The raise events of every alert still active, oldest scan first."""
+        out = []
+        for scan in self._scans.values():
+            for st in scan.rules.values():
+                if st.active and st.raised is not None:
+                    out.append(AlertEvent.from_dict(st.raised))
+        return out
+
+    def state_dict(self) -> dict[str, Any]:
+        """The whole state as plain JSON-serialisable data."""
+        return {
+            "version": _STATE_VERSION,
+            "latest_scan": self._latest,
+            "scans": {sid: scan.state_dict(self._default) for sid, scan in self._scans.items()},
+        }
+
+    def save(self, path: str | PathLike[str]) -> None:
+        """Write :meth:`state_dict` as JSON atomically and durably (the one atomic writer:
+        temporary file, fsync, rename, folder fsync).
+
+        Raises
+        ------
+        StoreError
+            If the state cannot be written (disk full, folder not writable).
+        """
+        p = Path(path)
+        text = json.dumps(self.state_dict(), separators=(",", ":"))
+        try:
+            p.parent.mkdir(parents=True, exist_ok=True)
+            write_text_atomic(p, text)
+        except OSError as exc:
+            raise StoreError(f"{p}: rule state could not be written: {exc.strerror}") from exc
+
+    @classmethod
+    def restore(
+        cls,
+        rules: RulesConfig,
+        path: str | PathLike[str],
+        *,
+        clock: Callable[[], float] = time.time,
+    ) -> RuleEngine:
+        """An engine continuing from the state saved at ``path`` (fresh if there is none).
+
+        A state file that cannot be parsed or belongs to another state version is moved
+        aside to ``<name>.unreadable`` (never deleted), logged, and a fresh engine starts.
+        """
+        p = Path(path)
+        try:
+            state = json.loads(p.read_text(encoding="utf-8"))
+        except FileNotFoundError:
+            return cls(rules, clock=clock)
+        except (OSError, ValueError) as exc:
+            return cls._fresh_after(p, rules, clock, f"{type(exc).__name__}: {exc}")
+        try:
+            return cls.from_state(rules, state, clock=clock)
+        except (KeyError, TypeError, ValueError, AttributeError) as exc:
+            return cls._fresh_after(p, rules, clock, f"{type(exc).__name__}: {exc}")
+
+    @classmethod
+    def _fresh_after(
+        cls, p: Path, rules: RulesConfig, clock: Callable[[], float], why: str
+    ) -> RuleEngine:
+        aside = p.with_name(p.name + ".unreadable")
+        with contextlib.suppress(OSError):
+            os.replace(p, aside)
+        structlog.get_logger("strayline.rules").warning(
+            "rule_state_unreadable", path=str(p), moved_to=str(aside), problem=why
+        )
+        return cls(rules, clock=clock)
+
+    @classmethod
+    def from_state(
+        cls,
+        rules: RulesConfig,
+        state: Mapping[str, Any],
+        *,
+        clock: Callable[[], float] = time.time,
+    ) -> RuleEngine:
+        """An engine for ``rules`` that continues from a :meth:`state_dict`.
+
+        Raises
+        ------
+        ValueError
+            If the state was written by an incompatible version.
+        """
+        version = state.get("version")
+        if version != _STATE_VERSION:
+            raise ValueError(
+                f"rule engine state must have version {_STATE_VERSION}; found {version!r}"
+            )
+        engine = cls(rules, clock=clock)
+        for sid, scan_state in state["scans"].items():
+            engine._scans[sid] = _ScanState.from_state(scan_state, engine._default)
+        engine._latest = state["latest_scan"]
+        return engine

@@ -1,0 +1,716 @@
+"""Per-line numbers the rules look at: :class:`LineMetrics`.
+
+Pure functions over the stage records (:class:`~strayline.lines.ScanLine`,
+:class:`~strayline.fit.LineFit`, :class:`~strayline.field.LineField`); no I/O, no clock.
+
+Line-to-line comparisons are made at the same pixel against the previous line of the
+*same direction* (a backward trace is compared with the previous backward trace). The
+per-pixel rows needed for that are produced by :func:`comparison_rows`; they hold exactly the
+quantities the scan store keeps (field, PL rate, centre mean and their 1σ), so after a
+restart the caller can rebuild them from the store. :class:`MetricsTracker` does that
+bookkeeping for a running daemon.
+
+Step search (see :mod:`strayline.rules._steps`): three channels are searched, in
+acquisition order, for the pixel range that changed most against the previous line —
+
+- ``pl``: relative PL change, ``PL_now / PL_prev − 1``;
+- ``center_mean``: shift of (f₋ + f₊)/2, Hz (common mode: temperature, strain);
+- ``field``: log ratio of the field's fast-axis roughness, ``Σ (ΔₓB)²`` with the noise
+  floor removed. The stray field of a thin magnetic film is the source pattern low-pass
+  filtered by ``exp(−k d)`` (Beardsley 1989, eq. for the Fourier-space field; PHYSICS.md
+  §4), so raising the stand-off d by δ scales every Fourier component by ``exp(−k δ)`` and
+  the roughness falls from the pixel where it happened; a wall that moves carries its
+  roughness with it and leaves the sums unchanged.
+
+Confirmation against a reference: a step found against the previous line may be the
+previous line's oddity, or a sample feature that moved. The tracker therefore keeps the
+last few lines of each direction; the per-pixel median of ``reference_lines`` of them is a
+reference that one odd line cannot move. Each step range is measured again against the
+reference of the lines up to the previous one (``{ch}_step_ref``), and the next line is
+measured over that same range against the reference from *before* the step
+(``{ch}_step_held``): the rules raise a step only when it is still there, with the same
+sign and a comparable size (or when it has cleanly reverted: a touched sample).
+
+Acquisition order: forward lines are acquired toward increasing x, backward lines toward
+decreasing x, whatever order the arrays are stored in. Reported ranges are in storage
+indices, half-open, and ``*_step_first_pixel`` is the first pixel acquired in the range.
+
+References
+----------
+.. [1] J. A. Beardsley, "Reconstruction of the magnetization in a thin film by a
+   combination of Lorentz microscopy and external field measurements", IEEE Trans. Magn.
+   25, 671 (1989).
+"""
+
+from __future__ import annotations
+
+from collections import deque
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field, fields
+from types import MappingProxyType
+
+import numpy as np
+
+from strayline._numbers import median_and_spread
+from strayline.field import LineField
+from strayline.fit import FitStatus, LineFit
+from strayline.lines import ScanLine
+from strayline.physics import D_ROOM_HZ, GAMMA_NV_HZ_PER_T
+from strayline.rules._steps import (
+    Segment,
+    best_energy_segment,
+    best_level_segment,
+)
+
+__all__ = [
+    "ROW_KEYS",
+    "LineMetrics",
+    "MetricsOptions",
+    "MetricsTracker",
+    "common_mode_sigma",
+    "comparison_rows",
+    "field_perp",
+    "line_metrics",
+    "metric_names",
+]
+
+
+#: Keys of the per-pixel rows kept from one line to compare the next (all shape (n_pixels,)).
+ROW_KEYS = (
+    "field_nv_t",
+    "field_nv_sigma_t",
+    "field_perp_t",
+    "pl_per_s",
+    "pl_sigma_per_s",
+    "center_mean_hz",
+    "center_mean_sigma_hz",
+    "x_m",
+)
+
+_STEP_CHANNELS = ("pl", "center_mean", "field")
+
+_AUX_STATS = ("median", "p10", "p90", "min", "max", "spread")
+
+
+@dataclass(frozen=True)
+class MetricsOptions:
+    """How line metrics are computed; settled once, shared by every line.
+
+    Attributes
+    ----------
+    change_sigma : float
+        A pixel's field change counts as significant above this many 1σ of the difference.
+    reference_lines : int
+        Lines of the same direction whose per-pixel median forms the *reference* a step is
+        checked against (``{ch}_step_ref``, ``{ch}_step_held``): the median of three lines
+        ignores one odd line among them, the previous line included.
+    min_step_pixels : int
+        Smallest pixel range (and remainder of the line) the field-roughness step search
+        considers (a roughness sum needs many pixels to be stable).
+        Also the smallest range of the PL step search.
+    min_level_pixels : int
+        Smallest pixel range (and remainder) the centre-mean step search considers: a
+        touch of the sample can shift the resonances over only a few pixels.
+    transverse_change_ratio : float
+        Assumed |ΔB⊥| / |ΔB∥| of the sample's own field change between two lines, for the
+        common-mode noise model (see :func:`common_mode_sigma`): the stray field of a
+        planar source has in-plane and out-of-plane Fourier components of equal size,
+        |b̃ₓ|² + |b̃ᵧ|² = |b̃_z|² (Casola, van der Sar & Yacoby, Nat. Rev. Mater. 3, 17088
+        (2018), Box 2), so the two changes are of the same order.
+    """
+
+    change_sigma: float = 5.0
+    reference_lines: int = 3
+    min_step_pixels: int = 16
+    min_level_pixels: int = 4
+    transverse_change_ratio: float = 1.0
+
+
+@dataclass(frozen=True)
+class LineMetrics:
+    """Numbers describing one processed line (NaN where a value cannot be computed).
+
+    Identity: ``scan_id``, ``line_index``, ``direction``, ``n_lines_planned``, ``n_pixels``,
+    ``end_time_s`` (line end, POSIX s, UTC).
+
+    Levels (over the line's pixels): ``pl_median_per_s`` and ``pl_p10_per_s`` (PL rate =
+    fitted baseline / dwell, counts/s), ``contrast_median`` (fraction; pixels whose fit
+    found no dip count as 0), ``fwhm_median_hz``, ``fit_failure_fraction`` (status != OK),
+    ``field_median_t`` and ``field_spread_t`` (1.4826·MAD), ``center_mean_median_hz``
+    ((f₋+f₊)/2), ``chi2_red_median``, ``field_sigma_median_t`` (fit-reported 1σ),
+    ``center_mean_p10_hz`` (10th percentile of (f₋+f₊)/2 over the line's good fits: a
+    field transverse to the NV axis only raises (f₋+f₊)/2, by about 3(γB⊥)²/(2D) [num,
+    PHYSICS.md §2], so the lowest centres of a line track D with the least bias from the
+    sample's field).
+
+    Against the previous line of the same direction, at the same pixel:
+    ``field_change_median_t`` (median |ΔB|), ``field_change_fraction`` (fraction of pixels
+    with |ΔB| above ``change_sigma`` σ of the difference), ``pl_change_median`` (signed
+    median of PL_now/PL_prev − 1), ``center_mean_change_median_hz`` (signed median).
+
+    Steps (see module notes): for channel in (``pl``, ``center_mean``, ``field``):
+    ``{ch}_step`` (value of the changed range: relative PL change; Hz; log roughness
+    ratio), ``{ch}_step_score``, ``{ch}_step_range`` (storage indices, half-open, or None),
+    ``{ch}_step_first_pixel`` (first acquired pixel of the range, -1 if none),
+    ``{ch}_step_to_end`` (1.0 if the range runs to the end of the acquisition, else 0.0).
+    ``pl_step_level_per_s``: median PL over the PL step range.
+    ``center_mean_step_before``: the previous line over this line's common-mode step range
+    against the reference of the lines before it (Hz; NaN without them): near 0 when the
+    pixels were steady before the step, comparable with the step when the common mode
+    there was already moving (a feature coming into view).
+
+    Against a *reference* (per pixel, the median of the last ``reference_lines`` lines of
+    the same direction before the line it is compared with; see module notes):
+    ``{ch}_step_ref``, the value of this line's own step range against the reference of
+    the lines up to the previous one (a step that only undoes an odd previous line is
+    near 0 here); ``{ch}_step_held``, the value of this line over the *previous* line's
+    step range against the reference of the lines before the previous one, i.e. from
+    before that step (a tip event keeps its value; a transient returns to 0; a feature
+    that moves on does not keep the same value over the same pixels). Same units as
+    ``{ch}_step``; NaN without a range or a reference.
+
+    Timing: ``time_since_previous_s`` (end of this line − end of the line before, any
+    direction).
+
+    ``aux_stats``: per auxiliary channel, ``median``, ``p10``, ``p90``, ``min``, ``max``,
+    ``spread`` in the channel's unit (``aux_units``).
+    """
+
+    scan_id: str
+    line_index: int
+    direction: str
+    n_lines_planned: int
+    n_pixels: int
+    end_time_s: float
+    pl_median_per_s: float
+    pl_p10_per_s: float
+    contrast_median: float
+    fwhm_median_hz: float
+    fit_failure_fraction: float
+    field_median_t: float
+    field_spread_t: float
+    center_mean_median_hz: float
+    chi2_red_median: float
+    field_sigma_median_t: float
+    center_mean_p10_hz: float = float("nan")
+    time_since_previous_s: float = float("nan")
+    field_change_median_t: float = float("nan")
+    field_change_fraction: float = float("nan")
+    pl_change_median: float = float("nan")
+    center_mean_change_median_hz: float = float("nan")
+    pl_step: float = float("nan")
+    pl_step_score: float = float("nan")
+    pl_step_range: tuple[int, int] | None = None
+    pl_step_first_pixel: int = -1
+    pl_step_to_end: float = float("nan")
+    pl_step_level_per_s: float = float("nan")
+    center_mean_step: float = float("nan")
+    center_mean_step_score: float = float("nan")
+    center_mean_step_range: tuple[int, int] | None = None
+    center_mean_step_first_pixel: int = -1
+    center_mean_step_to_end: float = float("nan")
+    center_mean_step_before: float = float("nan")
+    field_step: float = float("nan")
+    field_step_score: float = float("nan")
+    field_step_range: tuple[int, int] | None = None
+    field_step_first_pixel: int = -1
+    field_step_to_end: float = float("nan")
+    pl_step_ref: float = float("nan")
+    pl_step_held: float = float("nan")
+    center_mean_step_ref: float = float("nan")
+    center_mean_step_held: float = float("nan")
+    field_step_ref: float = float("nan")
+    field_step_held: float = float("nan")
+    aux_stats: Mapping[str, Mapping[str, float]] = field(
+        default_factory=lambda: MappingProxyType({})
+    )
+    aux_units: Mapping[str, str] = field(default_factory=lambda: MappingProxyType({}))
+
+    def value(self, name: str) -> float:
+        """Numeric value by name: a float field, or ``aux.<channel>.<stat>``.
+
+        Raises
+        ------
+        KeyError
+            If the name is not a numeric metric of this line.
+        """
+        if name.startswith("aux."):
+            _, channel, stat = name.split(".", 2)
+            return float(self.aux_stats[channel][stat])
+        if name not in _NUMERIC_FIELDS:
+            raise KeyError(name)
+        return float(getattr(self, name))
+
+    def numeric(self) -> dict[str, float]:
+        """All numeric metrics by name (float fields and ``aux.<channel>.<stat>``)."""
+        out = {name: float(getattr(self, name)) for name in _NUMERIC_FIELDS}
+        for channel, stats in self.aux_stats.items():
+            for stat, v in stats.items():
+                out[f"aux.{channel}.{stat}"] = float(v)
+        return out
+
+
+_NUMERIC_FIELDS = tuple(f.name for f in fields(LineMetrics) if f.type in ("float", "int"))
+
+
+def metric_names() -> tuple[str, ...]:
+    """Names of the numeric :class:`LineMetrics` fields a rule may refer to."""
+    return _NUMERIC_FIELDS
+
+
+def comparison_rows(line: ScanLine, fit: LineFit, field_: LineField) -> dict[str, np.ndarray]:
+    """Per-pixel rows of one line, kept to compare the next line of the same direction.
+
+    Returns
+    -------
+    dict
+        Keys :data:`ROW_KEYS`, each an ndarray of shape (n_pixels,): ``field_nv_t`` and
+        ``field_nv_sigma_t`` (T), ``field_perp_t`` (field across the NV axis,
+        |B|·|sin θ|, T; NaN without two resonances), ``pl_per_s`` and ``pl_sigma_per_s`` (counts/s),
+        ``center_mean_hz`` and ``center_mean_sigma_hz`` (Hz), ``x_m`` (m). Field and
+        centre rows are NaN where the fit status is not OK: a failed fit's resonances
+        are not a measurement, and one such pixel would otherwise dominate the next
+        line's roughness comparison.
+    """
+    dwell_s = float(line.dwell_s)
+    ok = np.asarray(fit.status) == FitStatus.OK
+    return {
+        "field_nv_t": np.where(ok, np.asarray(field_.field_nv_t, dtype=float), np.nan),
+        "field_nv_sigma_t": np.asarray(field_.field_nv_sigma_t, dtype=float).copy(),
+        "field_perp_t": field_perp(field_.field_abs_t, field_.angle_rad, ok),
+        "pl_per_s": np.asarray(fit.baseline, dtype=float) / dwell_s,
+        "pl_sigma_per_s": np.asarray(fit.baseline_sigma, dtype=float) / dwell_s,
+        "center_mean_hz": np.where(ok, np.asarray(field_.center_mean_hz, dtype=float), np.nan),
+        "center_mean_sigma_hz": np.asarray(field_.center_mean_sigma_hz, dtype=float).copy(),
+        "x_m": np.asarray(line.x_m, dtype=float).copy(),
+    }
+
+
+def field_perp(field_abs_t: np.ndarray, angle_rad: np.ndarray, ok: np.ndarray) -> np.ndarray:
+    """Field across the NV axis, |B|·|sin θ| (T), NaN where ``ok`` is False."""
+    perp = np.asarray(field_abs_t, dtype=float) * np.abs(np.sin(np.asarray(angle_rad, float)))
+    return np.where(ok, perp, np.nan)
+
+
+def common_mode_sigma(
+    rows: Mapping[str, np.ndarray], prev: Mapping[str, np.ndarray], transverse_ratio: float
+) -> np.ndarray:
+    """1σ of the line-to-line change of (f₋ + f₊)/2 that the sample alone explains, Hz.
+
+    ``σ² = σ²_now + σ²_prev + (3γ² B⊥ |ΔB⊥| / D)²`` with ``|ΔB⊥| = transverse_ratio ·
+    |ΔB∥|``, ``B⊥`` the mean of the two lines' (where known) and ``D`` the
+    room-temperature zero-field splitting: the fit errors of the two centre means, plus
+    the shift a change of the transverse field gives, from f± ≈ D + 3(γB⊥)²/(2D) ± γB∥
+    (PHYSICS.md §2): (3γ²/2D)(B⊥,now² − B⊥,prev²) = (3γ²/D) B̄⊥ ΔB⊥ exactly, B̄⊥ being the
+    mean. A moving domain wall changes B∥ and B⊥ together and is down-weighted where it
+    does; a touch shifts D alone, leaves B∥ where it was and keeps the fit errors alone
+    as its noise (the B⊥ the inversion reads into its shift then multiplies ΔB∥ ≈ 0).
+    """
+    perp = _row_mean(np.stack([rows["field_perp_t"], prev["field_perp_t"]], axis=1))
+    perp = np.where(np.isfinite(perp), perp, 0.0)
+    d_par = np.abs(rows["field_nv_t"] - prev["field_nv_t"])
+    d_par = np.where(np.isfinite(d_par), d_par, 0.0)
+    sample = 3.0 * GAMMA_NV_HZ_PER_T**2 * perp * transverse_ratio * d_par / D_ROOM_HZ
+    fit = rows["center_mean_sigma_hz"] ** 2 + prev["center_mean_sigma_hz"] ** 2
+    return np.sqrt(fit + sample**2)
+
+
+def _nanmedian(a: np.ndarray) -> float:
+    a = a[np.isfinite(a)]
+    return float(np.median(a)) if a.size else float("nan")
+
+
+def _nanpercentile(a: np.ndarray, q: float) -> float:
+    a = a[np.isfinite(a)]
+    return float(np.percentile(a, q)) if a.size else float("nan")
+
+
+def _row_mean(a: np.ndarray) -> np.ndarray:
+    """Mean of the finite values of each row, NaN for a row with none, shape (n_rows,).
+
+    The same numbers as ``np.nanmean(a, axis=1)`` (sum of the finite values over their
+    count) without its "Mean of empty slice" warning on rows where every value is NaN
+    (e.g. both dips of a failed fit). A 1-D input is one value per row already.
+    """
+    a = np.asarray(a, dtype=float)
+    if a.ndim == 1:
+        return np.where(np.isfinite(a), a, np.nan)
+    ok = np.isfinite(a)
+    count = ok.sum(axis=1)
+    total = np.where(ok, a, 0.0).sum(axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(count > 0, total / np.maximum(count, 1), np.nan)
+
+
+def _spread(a: np.ndarray) -> float:
+    a = a[np.isfinite(a)]
+    if a.size == 0:
+        return float("nan")
+    return median_and_spread(a)[1]
+
+
+def _acquisition_order(direction: str, x_m: np.ndarray) -> np.ndarray:
+    """Storage indices in the order the pixels were acquired."""
+    idx = np.arange(x_m.shape[0])
+    increasing = x_m.shape[0] < 2 or bool(x_m[-1] >= x_m[0])
+    forward = direction == "forward"
+    return idx if forward == increasing else idx[::-1]
+
+
+def _roughness(b_t: np.ndarray, sigma_t: np.ndarray) -> np.ndarray:
+    """Fast-axis roughness ``(B[p+1] − B[p])² − σ²_p − σ²_{p+1}``, floored at 0, T²."""
+    g = np.diff(b_t)
+    noise = sigma_t[1:] ** 2 + sigma_t[:-1] ** 2
+    noise = np.where(np.isfinite(noise), noise, 0.0)
+    return np.maximum(g * g - noise, 0.0)
+
+
+def _step_fields(
+    prefix: str, seg: Segment | None, order: np.ndarray, n_pixels: int
+) -> dict[str, object]:
+    if seg is None:
+        return {}
+    stop = min(seg.stop, n_pixels)
+    acq = order[seg.start : stop]
+    first = int(acq[0])
+    rng = (int(acq.min()), int(acq.max()) + 1)
+    return {
+        f"{prefix}_step": seg.value,
+        f"{prefix}_step_score": seg.score,
+        f"{prefix}_step_range": rng,
+        f"{prefix}_step_first_pixel": first,
+        f"{prefix}_step_to_end": 1.0 if stop >= n_pixels - 1 else 0.0,
+    }
+
+
+def _aux_stats(line: ScanLine) -> dict[str, Mapping[str, float]]:
+    out: dict[str, Mapping[str, float]] = {}
+    for name, values in line.aux.items():
+        v = np.asarray(values, dtype=float)
+        finite = v[np.isfinite(v)]
+        stats = dict.fromkeys(_AUX_STATS, float("nan"))
+        if finite.size:
+            stats.update(
+                median=float(np.median(finite)),
+                p10=float(np.percentile(finite, 10)),
+                p90=float(np.percentile(finite, 90)),
+                min=float(finite.min()),
+                max=float(finite.max()),
+                spread=_spread(finite),
+            )
+        out[name] = MappingProxyType(stats)
+    return out
+
+
+def _pixel_median(stack: list[np.ndarray]) -> np.ndarray:
+    """Per-pixel median of the finite values of a few rows, NaN where none, shape (n,).
+
+    (``np.nanmedian`` without its warning on all-NaN columns.)
+    """
+    a = np.stack(stack)
+    n = a.shape[1]
+    count = np.isfinite(a).sum(axis=0)
+    ordered = np.sort(a, axis=0)  # NaN sorts last
+    lo = np.maximum((count - 1) // 2, 0)
+    hi = np.maximum(count // 2 - (count == 0), 0)
+    cols = np.arange(n)
+    return np.where(count > 0, 0.5 * (ordered[lo, cols] + ordered[hi, cols]), np.nan)
+
+
+def _range_against(
+    rows: Mapping[str, np.ndarray],
+    refs: Sequence[Mapping[str, np.ndarray]],
+    ranges: Mapping[str, tuple[int, int] | None],
+    eps_t2: float,
+) -> dict[str, float]:
+    """Value of each channel of ``rows`` over its given pixel range against ``refs``.
+
+    ``pl``: median over the range of ``PL / PL_ref − 1`` (clipped to ±1); ``center_mean``:
+    median of ``cm − cm_ref`` (Hz); ``field``: ``ln((E + ε) / (E_ref + ε))`` with ``E`` the
+    fast-axis roughness summed over the range and ``E_ref`` the median of the reference
+    lines' sums, ``ε = eps_t2`` (T²). The reference of the level channels is the per-pixel
+    median of ``refs``. Ranges are storage indices, half-open.
+    """
+    out: dict[str, float] = {}
+    n = rows["pl_per_s"].shape[0]
+    for ch, rng in ranges.items():
+        if rng is None or not refs:
+            continue
+        a, b = max(int(rng[0]), 0), min(int(rng[1]), n)
+        if b - a < 2:
+            continue
+        if ch == "field":
+            e_now = _roughness(rows["field_nv_t"][a:b], rows["field_nv_sigma_t"][a:b])
+            e_refs = [_roughness(r["field_nv_t"][a:b], r["field_nv_sigma_t"][a:b]) for r in refs]
+            ok = np.isfinite(e_now)
+            for e in e_refs:
+                ok &= np.isfinite(e)
+            if ok.sum() < 2 or not eps_t2 > 0:
+                continue
+            ref_sum = float(np.median([float(e[ok].sum()) for e in e_refs]))
+            out[ch] = float(np.log((float(e_now[ok].sum()) + eps_t2) / (ref_sum + eps_t2)))
+            continue
+        key = "pl_per_s" if ch == "pl" else "center_mean_hz"
+        ref = _pixel_median([r[key][a:b] for r in refs])
+        if ch == "pl":
+            with np.errstate(invalid="ignore", divide="ignore"):
+                change = np.clip(rows[key][a:b] / ref - 1.0, -1.0, 1.0)
+        else:
+            change = rows[key][a:b] - ref
+        out[ch] = _nanmedian(change)
+    return out
+
+
+def _reference_fields(
+    rows: Mapping[str, np.ndarray],
+    history: Sequence[Mapping[str, np.ndarray]],
+    own_ranges: Mapping[str, tuple[int, int] | None],
+    previous_ranges: Mapping[str, tuple[int, int] | None],
+    options: MetricsOptions,
+) -> dict[str, object]:
+    """``{ch}_step_ref`` and ``{ch}_step_held`` (see :class:`LineMetrics`).
+
+    ``history`` holds the rows of the lines of the same direction before this one, oldest
+    first, the previous line last; rows of another pixel count are ignored.
+    """
+    n = rows["pl_per_s"].shape[0]
+    hist = [h for h in history if h["pl_per_s"].shape[0] == n]
+    if not hist:
+        return {}
+    m = options.reference_lines
+    noise = 2.0 * _nanmedian(hist[-1]["field_nv_sigma_t"]) ** 2
+    noise = noise if np.isfinite(noise) else 0.0
+    out: dict[str, object] = {}
+    # Regulariser of the roughness ratio as in the step search: min_step_pixels times the
+    # larger of the reference line's mean roughness per pixel and the noise floor (T²).
+    for name, refs, ranges in (
+        ("ref", hist[-m:], own_ranges),
+        ("held", hist[:-1][-m:], previous_ranges),
+    ):
+        if not refs:
+            continue
+        e = _roughness(refs[-1]["field_nv_t"], refs[-1]["field_nv_sigma_t"])
+        finite = e[np.isfinite(e)]
+        mean_e = float(np.mean(finite)) if finite.size else 0.0
+        eps = max(mean_e, noise) * options.min_step_pixels
+        for ch, v in _range_against(rows, refs, ranges, eps).items():
+            out[f"{ch}_step_{name}"] = v
+    return out
+
+
+def _steady_fields(
+    n: int,
+    history: Sequence[Mapping[str, np.ndarray]],
+    cm_range: object,
+    options: MetricsOptions,
+) -> dict[str, object]:
+    """``center_mean_step_before`` (see :class:`LineMetrics`) for a line of ``n`` pixels;
+    ``history`` oldest first, the previous line last; rows of another pixel count are
+    ignored."""
+    hist = [h for h in history if h["center_mean_hz"].shape[0] == n]
+    if len(hist) < 2 or not isinstance(cm_range, tuple):
+        return {}
+    refs = hist[:-1][-options.reference_lines :]
+    got = _range_against(hist[-1], refs, {"center_mean": cm_range}, 0.0)
+    return {} if "center_mean" not in got else {"center_mean_step_before": got["center_mean"]}
+
+
+def _change_fields(
+    rows: Mapping[str, np.ndarray],
+    prev: Mapping[str, np.ndarray],
+    direction: str,
+    options: MetricsOptions,
+) -> dict[str, object]:
+    b, bp = rows["field_nv_t"], prev["field_nv_t"]
+    if bp.shape != b.shape:
+        return {}
+    n = b.shape[0]
+    out: dict[str, object] = {}
+    db = b - bp
+    sigma_d = np.hypot(rows["field_nv_sigma_t"], prev["field_nv_sigma_t"])
+    finite = np.isfinite(db) & np.isfinite(sigma_d)
+    out["field_change_median_t"] = _nanmedian(np.abs(db))
+    if finite.any():
+        big = np.abs(db[finite]) > options.change_sigma * sigma_d[finite]
+        out["field_change_fraction"] = float(np.mean(big))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        pl_ratio = rows["pl_per_s"] / prev["pl_per_s"] - 1.0
+    pl_ratio = np.where(np.isfinite(pl_ratio), np.clip(pl_ratio, -1.0, 1.0), np.nan)
+    d_cm = rows["center_mean_hz"] - prev["center_mean_hz"]
+    out["pl_change_median"] = _nanmedian(pl_ratio)
+    out["center_mean_change_median_hz"] = _nanmedian(d_cm)
+
+    order = _acquisition_order(direction, rows["x_m"])
+    k = options.min_step_pixels
+    pl_seg = best_level_segment(pl_ratio[order], k)
+    out.update(_step_fields("pl", pl_seg, order, n))
+    pl_range = out.get("pl_step_range")
+    if isinstance(pl_range, tuple):
+        out["pl_step_level_per_s"] = _nanmedian(rows["pl_per_s"][pl_range[0] : pl_range[1]])
+    # The common-mode shift, over ranges down to min_level_pixels (a touch can be that
+    # narrow), each pixel weighted by the noise the fits and the sample's own field
+    # change give it: strain or heat from a touch moves D, i.e. (f₋+f₊)/2, and leaves
+    # B∥ alone, while a wall that moves changes B⊥ *and* B∥ (common_mode_sigma).
+    cm_sigma = common_mode_sigma(rows, prev, options.transverse_change_ratio)
+    cm_seg = best_level_segment(d_cm[order], options.min_level_pixels, cm_sigma[order])
+    out.update(_step_fields("center_mean", cm_seg, order, n))
+    e_now = _roughness(b[order], rows["field_nv_sigma_t"][order])
+    e_prev = _roughness(bp[order], prev["field_nv_sigma_t"][order])
+    # What noise alone puts into one pixel's roughness term: 2σ² of the line (T²).
+    noise = 2.0 * _nanmedian(prev["field_nv_sigma_t"]) ** 2
+    noise = noise if np.isfinite(noise) else 0.0
+    out.update(_step_fields("field", best_energy_segment(e_now, e_prev, k, noise), order, n))
+    return out
+
+
+def line_metrics(
+    line: ScanLine,
+    fit: LineFit,
+    field: LineField,
+    previous: LineMetrics | None = None,
+    previous_rows: Mapping[str, np.ndarray] | None = None,
+    *,
+    options: MetricsOptions | None = None,
+    older_rows: Sequence[Mapping[str, np.ndarray]] = (),
+    previous_ranges: Mapping[str, tuple[int, int] | None] | None = None,
+) -> LineMetrics:
+    """Compute the metrics of one line.
+
+    Parameters
+    ----------
+    line, fit, field
+        The line's records; arrays of shape (n_pixels,) or (n_pixels, 2).
+    previous : LineMetrics, optional
+        Metrics of the line processed just before (any direction): gives
+        ``time_since_previous_s``.
+    previous_rows : mapping, optional
+        :func:`comparison_rows` of the previous line of the *same direction*: gives the
+        line-to-line changes and steps. Ignored if its pixel count differs.
+    options : MetricsOptions, optional
+        Defaults to ``MetricsOptions()``.
+    older_rows : sequence of mappings, optional
+        :func:`comparison_rows` of the lines of the same direction before ``previous_rows``,
+        oldest first: with ``previous_rows`` they form the references of
+        ``{ch}_step_ref`` and ``{ch}_step_held``.
+    previous_ranges : mapping, optional
+        Step ranges (``{ch}_step_range`` by channel ``pl``, ``center_mean``, ``field``) of
+        the line ``previous_rows`` belongs to: where ``{ch}_step_held`` is measured.
+
+    Returns
+    -------
+    LineMetrics
+    """
+    opts = options or MetricsOptions()
+    rows = comparison_rows(line, fit, field)
+    status = np.asarray(fit.status)
+    ok = status == FitStatus.OK
+    pl = rows["pl_per_s"]
+    contrast = _row_mean(fit.contrast)
+    contrast = np.where(status == FitStatus.NO_RESONANCE, 0.0, contrast)
+    fwhm = _row_mean(fit.fwhm_hz)
+    center_ok = np.where(ok, rows["center_mean_hz"], np.nan)
+    b = np.where(ok, rows["field_nv_t"], np.nan)
+    end_time_s = line.end_time.timestamp()
+    values: dict[str, object] = {
+        "scan_id": line.scan_id,
+        "line_index": int(line.line_index),
+        "direction": line.direction,
+        "n_lines_planned": int(line.n_lines_planned),
+        "n_pixels": int(line.n_pixels),
+        "end_time_s": end_time_s,
+        "pl_median_per_s": _nanmedian(pl),
+        "pl_p10_per_s": _nanpercentile(pl, 10.0),
+        "contrast_median": _nanmedian(contrast),
+        "fwhm_median_hz": _nanmedian(np.where(ok, fwhm, np.nan)),
+        "fit_failure_fraction": float(np.mean(~ok)) if ok.size else float("nan"),
+        "field_median_t": _nanmedian(b),
+        "field_spread_t": _spread(b),
+        "center_mean_median_hz": _nanmedian(center_ok),
+        "center_mean_p10_hz": _nanpercentile(center_ok, 10.0),
+        "chi2_red_median": _nanmedian(np.where(ok, fit.chi2_red, np.nan)),
+        "field_sigma_median_t": _nanmedian(np.where(ok, rows["field_nv_sigma_t"], np.nan)),
+        "aux_stats": MappingProxyType(_aux_stats(line)),
+        "aux_units": MappingProxyType(dict(line.aux_units)),
+    }
+    if previous is not None:
+        values["time_since_previous_s"] = end_time_s - previous.end_time_s
+    if previous_rows is not None:
+        values.update(_change_fields(rows, previous_rows, line.direction, opts))
+        own = {ch: values.get(f"{ch}_step_range") for ch in _STEP_CHANNELS}
+        before = {
+            ch: None if previous_ranges is None else previous_ranges.get(ch)
+            for ch in _STEP_CHANNELS
+        }
+        history = [*older_rows, previous_rows]
+        values.update(_reference_fields(rows, history, own, before, opts))  # type: ignore[arg-type]
+        values.update(_steady_fields(pl.shape[0], history, own["center_mean"], opts))
+    return LineMetrics(**values)  # type: ignore[arg-type]
+
+
+class MetricsTracker:
+    """Keeps the previous line's metrics and, per direction, its last rows; not thread-safe.
+
+    ``update(line, fit, field)`` returns the line's metrics and remembers what the next
+    line needs: per direction, the rows of the last ``reference_lines + 1`` lines and the
+    metrics of the last line. ``seed(...)`` restores the memory after a restart (rows from
+    the store).
+    One tracker per scan.
+    """
+
+    def __init__(self, options: MetricsOptions | None = None) -> None:
+        self._options = options or MetricsOptions()
+        self._previous: LineMetrics | None = None
+        self._rows: dict[str, deque[dict[str, np.ndarray]]] = {}
+        self._ranges: dict[str, dict[str, tuple[int, int] | None]] = {}
+
+    def _history(self, direction: str) -> deque[dict[str, np.ndarray]]:
+        return self._rows.setdefault(direction, deque(maxlen=self._options.reference_lines + 1))
+
+    def update(self, line: ScanLine, fit: LineFit, field: LineField) -> LineMetrics:
+        """Metrics of ``line`` against the remembered previous lines; then remember it."""
+        history = self._history(line.direction)
+        metrics = line_metrics(
+            line,
+            fit,
+            field,
+            self._previous,
+            history[-1] if history else None,
+            options=self._options,
+            older_rows=list(history)[:-1],
+            previous_ranges=self._ranges.get(line.direction),
+        )
+        self._previous = metrics
+        self._ranges[line.direction] = {
+            ch: getattr(metrics, f"{ch}_step_range") for ch in _STEP_CHANNELS
+        }
+        history.append(comparison_rows(line, fit, field))
+        return metrics
+
+    def seed(
+        self,
+        direction: str,
+        rows: Mapping[str, np.ndarray],
+        previous: LineMetrics | None = None,
+    ) -> None:
+        """Remember ``rows`` (keys :data:`ROW_KEYS`) as the last line of ``direction``.
+
+        Calling it again for the same direction adds an older-to-newer history (the
+        rows given last are the last line): seeding the last ``reference_lines + 1``
+        lines, oldest first, restores the references exactly. The step ranges of the
+        last line are recomputed from its rows and the rows before it.
+        """
+        missing = [k for k in ROW_KEYS if k not in rows]
+        if missing:
+            raise ValueError(f"rows for direction {direction!r} lack keys {missing}")
+        history = self._history(direction)
+        history.append({k: np.asarray(rows[k], dtype=float) for k in ROW_KEYS})
+        self._ranges.pop(direction, None)
+        if len(history) >= 2:
+            steps = _change_fields(history[-1], history[-2], direction, self._options)
+            ranges: dict[str, tuple[int, int] | None] = {}
+            for ch in _STEP_CHANNELS:
+                rng = steps.get(f"{ch}_step_range")
+                ranges[ch] = rng if isinstance(rng, tuple) else None
+            self._ranges[direction] = ranges
+        if previous is not None:
+            self._previous = previous

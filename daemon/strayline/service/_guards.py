@@ -1,0 +1,137 @@
+"""Resource guards of the service: free disk space, output outages, unreadable inputs.
+
+Private helpers of :mod:`strayline.service` (plain state and checks; the service decides
+what to alert and when to retry).
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Callable
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Literal
+
+from strayline._numbers import MIB
+from strayline.watch import ReadyFile
+
+__all__ = [
+    "RESOURCE_CHECK_INTERVAL_S",
+    "RETRY_FIRST_S",
+    "RETRY_MAX_S",
+    "SERVICE_RULES",
+    "UNREADABLE_ATTEMPTS",
+    "DiskGuard",
+    "Outage",
+    "Unreadable",
+    "free_disk_bytes",
+]
+
+#: Output folder and free space are looked at no more often than this, s.
+RESOURCE_CHECK_INTERVAL_S = 5.0
+#: First retry after an output failure, s; doubled after each failed retry up to the cap.
+RETRY_FIRST_S = 1.0
+RETRY_MAX_S = 60.0
+#: A line file that cannot be read (not a store failure) is retried this many times.
+UNREADABLE_ATTEMPTS = 6
+#: Rules of the alerts the service raises itself (the rule engine raises the others).
+SERVICE_RULES = ("disk_space_low", "output_unavailable")
+
+# --------------------------------------------------------------------------- disk space
+
+
+def free_disk_bytes(folder: Path) -> int:
+    """Bytes an unprivileged writer may still use on the file system of ``folder``.
+
+    ``f_bavail * f_frsize`` from statvfs(3) (blocks free to non-root users times the
+    fundamental block size). Raises OSError if ``folder`` cannot be looked at.
+    """
+    st = os.statvfs(folder)
+    return st.f_bavail * st.f_frsize
+
+
+def _nearest_existing(folder: Path) -> Path:
+    """``folder`` or its closest existing ancestor (the disk it will be created on)."""
+    for candidate in (folder, *folder.parents):
+        if candidate.is_dir():
+            return candidate
+    return folder
+
+
+class DiskGuard:
+    """Free space of the output root against a floor, with hysteresis.
+
+    Parameters
+    ----------
+    folder : Path
+        The output root (measured on its closest existing ancestor while it is missing).
+    min_free_bytes : int
+        Below this the guard turns low.
+    free_bytes : callable, optional
+        ``free_bytes(folder) -> int`` (default :func:`free_disk_bytes`); tests inject one.
+    low : bool
+        Start in the low state (a guard rebuilt on reload keeps its predecessor's state).
+
+    Notes
+    -----
+    Hysteresis (common practice against flapping): once low, the guard clears only when
+    free space is back above ``min_free_bytes`` plus a tenth of it (at least 64 MiB).
+    """
+
+    def __init__(
+        self,
+        folder: Path,
+        min_free_bytes: int,
+        *,
+        free_bytes: Callable[[Path], int] = free_disk_bytes,
+        low: bool = False,
+    ) -> None:
+        self.folder = Path(folder)
+        self.min_free_bytes = int(min_free_bytes)
+        self.clear_bytes = self.min_free_bytes + max(self.min_free_bytes // 10, 64 * MIB)
+        self._free_bytes = free_bytes
+        self.low = low
+        self.last_free_bytes: int | None = None
+        self.last_error: str | None = None
+
+    def check(self) -> Literal["raised", "cleared"] | None:
+        """Look at the disk; return a change of state, else None.
+
+        A disk that cannot be looked at changes nothing (the folder check reports it).
+        The service calls this at most every :data:`RESOURCE_CHECK_INTERVAL_S`.
+        """
+        try:
+            free = int(self._free_bytes(_nearest_existing(self.folder)))
+        except OSError as exc:
+            self.last_error = f"{self.folder}: cannot read free space: {exc}"
+            return None
+        self.last_error = None
+        self.last_free_bytes = free
+        if not self.low and free < self.min_free_bytes:
+            self.low = True
+            return "raised"
+        if self.low and free >= self.clear_bytes:
+            self.low = False
+            return "cleared"
+        return None
+
+
+@dataclass
+class Outage:
+    """The output cannot be written: since when, why, and when to try again."""
+
+    reason: str
+    since_s: float
+    next_try_s: float
+    backoff_s: float
+    attempts: int = 0
+
+
+@dataclass
+class Unreadable:
+    """A line file that could not be read (not a store failure), waiting for a retry."""
+
+    ready: ReadyFile
+    error: str
+    attempts: int
+    next_try_s: float

@@ -1,0 +1,281 @@
+"""On-disk layout of a scan store: array specifications, creation, paths, durability.
+
+The store ``<output_root>/<scan_id>.zarr`` (zarr format 3, local directory)::
+
+    zarr.json                  root group; attributes: see :func:`root_attributes`
+    forward/, backward/        one group per trace direction, each holding
+        <map>                  (n_lines_planned, n_pixels), dims ("y", "x"), one chunk per
+                               ``chunk_lines`` whole lines; see :data:`MAPS`
+        x                      (n_pixels,) fast-axis position, m (set at creation)
+        y                      (n_lines_planned,) slow-axis position, m (NaN until written)
+    raw/forward/, raw/backward/
+        <line_index>/          one group per line with raw spectra (when enabled):
+            counts             (n_pixels, n_freq) photon counts, the file's dtype
+            freq_hz            (n_freq,) Hz
+            x_m                (n_pixels,) m
+            reference_counts   (n_pixels, n_freq), only if the file had it
+    ledger                     zero-length array; its directory holds records.jsonl
+
+Raw spectra are kept per line because n_freq may change from line to line: a line's
+spectra stay self-contained (no padding), and superseding or resetting a line removes one
+group.
+
+Maps are float64. The field's 1σ (~1e-7 T) against fields of up to ~0.1 T would fit float32
+(about 7 significant digits), but float64 keeps the fitter's numbers bit for bit, which
+makes a stored scan refittable and comparable without a precision caveat; Blosc-Zstd with
+byte shuffling takes back most of the size.
+"""
+
+from __future__ import annotations
+
+import os
+import re
+import shutil
+import uuid
+from collections.abc import Iterable, Mapping
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import zarr
+from zarr.codecs import BloscCodec
+
+from strayline.fit import FitStatus
+from strayline.lines import DIRECTIONS
+from strayline.store._ledger import LEDGER_FILE
+
+__all__ = [
+    "DIRECTIONS",
+    "LEDGER_FILE",
+    "MAPS",
+    "STATUS_FILL",
+    "STORE_FORMAT",
+    "STORE_FORMAT_VERSION",
+    "MapSpec",
+    "chunk_file",
+    "compressors",
+    "create_layout",
+    "fsync_tree",
+    "fsync_with_parents",
+    "remove_creation_leftovers",
+    "remove_partials",
+    "status_flags",
+]
+
+STORE_FORMAT = "strayline-store"
+STORE_FORMAT_VERSION = 1
+
+STATUS_FILL = 255  # status code of a pixel whose line was never written
+
+# zarr v3 "default" chunk key encoding with "/" (the spec's default), set explicitly so the
+# chunk of row block r of a 2-D array is the file <array>/c/<r>/0.
+_CHUNK_KEY_ENCODING: dict[str, Any] = {"name": "default", "separator": "/"}
+
+# Temporary files of zarr's local store: "<name>.<32 hex>.partial" (renamed into place
+# when complete; left behind only by a crash).
+_PARTIAL = re.compile(r"\.[0-9a-f]{32}\.partial$")
+
+
+@dataclass(frozen=True)
+class MapSpec:
+    """One per-pixel map of a trace group."""
+
+    name: str
+    units: str
+    long_name: str
+    dtype: str = "float64"
+
+    @property
+    def fill(self) -> float | int:
+        return STATUS_FILL if self.dtype == "uint8" else float("nan")
+
+
+MAPS: tuple[MapSpec, ...] = (
+    MapSpec("field_nv_t", "T", "magnetic field along the NV axis"),
+    MapSpec("field_nv_sigma_t", "T", "1-sigma uncertainty of the field along the NV axis"),
+    MapSpec("field_abs_t", "T", "magnetic field magnitude"),
+    MapSpec("angle_rad", "rad", "angle between the magnetic field and the NV axis"),
+    MapSpec("center_mean_hz", "Hz", "mean of the lower and upper resonance frequencies"),
+    MapSpec("freq_lo_hz", "Hz", "lower resonance frequency"),
+    MapSpec("freq_hi_hz", "Hz", "upper resonance frequency"),
+    MapSpec("freq_lo_sigma_hz", "Hz", "1-sigma uncertainty of the lower resonance"),
+    MapSpec("freq_hi_sigma_hz", "Hz", "1-sigma uncertainty of the upper resonance"),
+    MapSpec("contrast_lo", "1", "fractional depth of the lower resonance dip"),
+    MapSpec("contrast_hi", "1", "fractional depth of the upper resonance dip"),
+    MapSpec("fwhm_hz", "Hz", "resonance linewidth (FWHM), mean over the fitted dips"),
+    MapSpec("pl_rate_cps", "counts/s", "off-resonance photoluminescence rate"),
+    MapSpec("chi2_red", "1", "reduced chi-squared of the spectrum fit"),
+    MapSpec("status", "", "fit status code", dtype="uint8"),
+)
+
+
+def status_flags() -> tuple[list[int], str]:
+    """The status map's ``flag_values`` and ``flag_meanings`` (from :class:`FitStatus`)."""
+    values = [int(member) for member in FitStatus] + [STATUS_FILL]
+    meanings = " ".join([member.name.lower() for member in FitStatus] + ["not_written"])
+    return values, meanings
+
+
+def compressors(level: int) -> list[BloscCodec]:
+    """Blosc-Zstd with byte shuffling at ``level`` (0 = stored uncompressed, 9 = smallest)."""
+    return [BloscCodec(cname="zstd", clevel=level, shuffle="shuffle")]
+
+
+def chunk_file(store_path: Path, array_path: str, chunk_coords: Iterable[int]) -> Path:
+    """File holding one chunk of an array, under the default "/" chunk key encoding."""
+    return store_path.joinpath(array_path, "c", *(str(c) for c in chunk_coords))
+
+
+def create_layout(
+    path: Path,
+    *,
+    attributes: Mapping[str, Any],
+    n_lines_planned: int,
+    n_pixels: int,
+    x_m: np.ndarray,
+    compression_level: int,
+    chunk_lines: int,
+) -> None:
+    """Build an empty store at ``path``, atomically: in a hidden sibling, then renamed.
+
+    A crash during creation leaves only a ``.<name>.creating-<hex>`` directory, which
+    :func:`remove_creation_leftovers` deletes; ``path`` either is complete or does not exist.
+
+    Raises
+    ------
+    FileExistsError
+        If ``path`` appeared meanwhile (another process created it).
+    OSError
+        On disk failures.
+    """
+    tmp = path.with_name(f".{path.name}.creating-{uuid.uuid4().hex}")
+    try:
+        root = zarr.open_group(tmp, mode="w-", zarr_format=3, attributes=dict(attributes))
+        codecs = compressors(compression_level)
+        flag_values, flag_meanings = status_flags()
+        for direction in DIRECTIONS:
+            trace = root.create_group(
+                direction, attributes={"direction": direction, "long_name": f"{direction} trace"}
+            )
+            for spec in MAPS:
+                attrs: dict[str, Any] = {"units": spec.units, "long_name": spec.long_name}
+                if spec.name == "status":
+                    attrs |= {"flag_values": flag_values, "flag_meanings": flag_meanings}
+                trace.create_array(
+                    spec.name,
+                    shape=(n_lines_planned, n_pixels),
+                    chunks=(chunk_lines, n_pixels),
+                    dtype=spec.dtype,
+                    fill_value=spec.fill,
+                    compressors=codecs,
+                    chunk_key_encoding=_CHUNK_KEY_ENCODING,
+                    dimension_names=("y", "x"),
+                    attributes=attrs,
+                )
+            x = trace.create_array(
+                "x",
+                shape=(n_pixels,),
+                chunks=(n_pixels,),
+                dtype="float64",
+                fill_value=float("nan"),
+                chunk_key_encoding=_CHUNK_KEY_ENCODING,
+                dimension_names=("x",),
+                attributes={"units": "m", "long_name": "fast-axis position"},
+            )
+            x[:] = x_m
+            trace.create_array(
+                "y",
+                shape=(n_lines_planned,),
+                chunks=(n_lines_planned,),
+                dtype="float64",
+                fill_value=float("nan"),
+                chunk_key_encoding=_CHUNK_KEY_ENCODING,
+                dimension_names=("y",),
+                attributes={"units": "m", "long_name": "slow-axis position"},
+            )
+        raw = root.create_group("raw", attributes={"long_name": "raw spectra, one group per line"})
+        for direction in DIRECTIONS:
+            raw.create_group(direction)
+        root.create_array(
+            "ledger",
+            shape=(0,),
+            dtype="uint8",
+            dimension_names=("record",),
+            attributes={
+                "long_name": "line ledger",
+                "records_file": LEDGER_FILE.name,
+                "record_format": "JSON lines, append-only; events begin, commit, reset",
+            },
+        )
+        (tmp / LEDGER_FILE).touch()
+        fsync_tree(tmp)
+        os.rename(tmp, path)  # fails if path exists and is not empty
+        _fsync_dir(path.parent)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+
+
+def remove_creation_leftovers(path: Path) -> list[Path]:
+    """Delete hidden half-built stores ``.<name>.creating-*`` left by a crashed creation."""
+    removed = []
+    for leftover in path.parent.glob(f".{path.name}.creating-*"):
+        shutil.rmtree(leftover, ignore_errors=True)
+        removed.append(leftover)
+    return removed
+
+
+def remove_partials(path: Path) -> list[Path]:
+    """Delete zarr's temporary ``*.<hex>.partial`` files left under ``path`` by a crash."""
+    removed = []
+    for dirpath, _dirnames, filenames in os.walk(path):
+        for name in filenames:
+            if _PARTIAL.search(name):
+                leftover = Path(dirpath, name)
+                leftover.unlink(missing_ok=True)
+                removed.append(leftover)
+    return removed
+
+
+def _fsync_dir(path: Path) -> None:
+    fd = os.open(path, os.O_RDONLY | os.O_DIRECTORY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def _fsync_file(path: Path) -> None:
+    fd = os.open(path, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def fsync_with_parents(files: Iterable[Path], stop_at: Path) -> None:
+    """Flush files to disk, then every directory from their parent up to ``stop_at``.
+
+    A file that no longer exists (a chunk zarr deleted because it held only fill values)
+    is skipped; its directory is still flushed so the deletion is durable.
+    """
+    dirs: set[Path] = set()
+    for file in files:
+        if file.is_file():
+            _fsync_file(file)
+        parent = file.parent
+        while parent != stop_at and stop_at in parent.parents:
+            dirs.add(parent)
+            parent = parent.parent
+    for directory in sorted(dirs, key=lambda d: len(d.parts), reverse=True):
+        if directory.is_dir():
+            _fsync_dir(directory)
+
+
+def fsync_tree(path: Path) -> None:
+    """Flush every file and directory under ``path`` (and ``path`` itself) to disk."""
+    for dirpath, _dirnames, filenames in os.walk(path, topdown=False):
+        for name in filenames:
+            _fsync_file(Path(dirpath, name))
+        _fsync_dir(Path(dirpath))

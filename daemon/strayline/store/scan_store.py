@@ -1,0 +1,738 @@
+"""The scan store: one zarr 3 store per scan, written line by line, with a crash-safe ledger.
+
+Each processed line becomes one row of every map in ``<output_root>/<scan_id>.zarr``
+(layout in :mod:`strayline.store._layout`); ``xarray.open_zarr(path, group="forward",
+consolidated=False)`` gives a labelled dataset (dims ``y``, ``x``; coordinates in m) at any
+time, also while the scan runs.
+
+Commit protocol (ledger in :mod:`strayline.store._ledger`)
+----------------------------------------------------
+1. append a ``begin`` record for (line_index, direction) and fsync it;
+2. write the line's rows into every map, its ``y`` and (optionally) its raw spectra; zarr
+   replaces each chunk file atomically (temporary file, then rename); fsync the chunk files
+   and their directories;
+3. append a ``commit`` record and fsync it. Only now is the line committed.
+
+A crash at any instant therefore leaves each line either committed (all rows written) or
+pending/absent. :meth:`ScanStore.open` resets the rows of every line that began but did
+not commit, and of every line whose rows are present without a commit (written by anything
+that bypassed the ledger), removes zarr's leftover temporary files, and lists those lines
+in :attr:`ScanStore.recovered_lines` so the caller processes their files again. A line
+being *re*-written (its file changed) that crashes mid-way is reset too: its old rows were
+partly overwritten, so the old version survives only in the ledger's history; the new file
+is still on disk and is processed again.
+
+Step 2's fsync (``durable=True``, the default) is what makes a commit survive power loss;
+without it a commit survives a crash of the process only.
+
+A store has one writer at a time: the ledger file is held under an exclusive ``flock``.
+A :class:`ScanStore` is not thread-safe.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+import shutil
+import time
+from collections.abc import Callable
+from dataclasses import dataclass
+from datetime import UTC, datetime
+from pathlib import Path
+from types import TracebackType
+from typing import Any, Literal, cast
+
+import numpy as np
+import zarr
+
+import strayline
+from strayline.errors import LineFileError, StoreError
+from strayline.field import LineField
+from strayline.fit import LineFit
+from strayline.lines import ScanLine
+from strayline.store._layout import (
+    DIRECTIONS,
+    LEDGER_FILE,
+    MAPS,
+    STATUS_FILL,
+    STORE_FORMAT,
+    STORE_FORMAT_VERSION,
+    chunk_file,
+    compressors,
+    create_layout,
+    fsync_with_parents,
+    remove_creation_leftovers,
+    remove_partials,
+)
+from strayline.store._ledger import Key, Ledger, LedgerEntry, format_time, parse_time
+from strayline.store._rows import count_failures, line_rows
+from strayline.store.reader import store_path
+
+__all__ = [
+    "MAP_NAMES",
+    "Decision",
+    "LedgerEntry",
+    "RawSpectra",
+    "ScanStore",
+    "StoreMismatch",
+    "StoreStatistics",
+    "WriteReceipt",
+    "line_rows",
+]
+
+Decision = Literal["new", "duplicate", "changed"]
+MAP_NAMES: tuple[str, ...] = tuple(spec.name for spec in MAPS)
+_SCAN_ID = re.compile(r"^[A-Za-z0-9_\-][A-Za-z0-9_.\-]*$")
+
+
+class StoreMismatch(LineFileError):
+    """A line does not fit its scan's store (pixels, line range, scan): quarantine the file."""
+
+
+@dataclass(frozen=True)
+class WriteReceipt:
+    """What :meth:`ScanStore.write_line` did.
+
+    Attributes
+    ----------
+    scan_id : str
+    line_index : int
+    direction : str
+    write_s : float
+        Wall time spent writing rows and ledger records, s.
+    superseded : bool
+        True if a committed version of the line was replaced.
+    """
+
+    scan_id: str
+    line_index: int
+    direction: str
+    write_s: float
+    superseded: bool
+
+
+@dataclass(frozen=True)
+class StoreStatistics:
+    """Snapshot of a store's progress.
+
+    Attributes
+    ----------
+    scan_id : str
+    n_lines_planned : int
+    committed_forward, committed_backward : int
+        Lines committed per trace direction.
+    lines_recovered : int
+        Lines reset at the last open because they were not committed.
+    fit_failures : int
+        Pixels of committed lines whose status is not ``FitStatus.OK``.
+    last_commit_time : datetime or None
+        Time of the latest commit, aware UTC.
+    """
+
+    scan_id: str
+    n_lines_planned: int
+    committed_forward: int
+    committed_backward: int
+    lines_recovered: int
+    fit_failures: int
+    last_commit_time: datetime | None
+
+
+@dataclass(frozen=True, eq=False)
+class RawSpectra:
+    """The raw spectra of one stored line, enough to fit it again.
+
+    Attributes
+    ----------
+    freq_hz : ndarray, shape (n_freq,)
+        Microwave frequencies, Hz.
+    counts : ndarray, shape (n_pixels, n_freq)
+        Photon counts per sample, in the line file's dtype.
+    x_m : ndarray, shape (n_pixels,)
+        Fast-axis pixel positions, m.
+    reference_counts : ndarray, shape (n_pixels, n_freq), or None
+        Counts with the microwave off, if recorded.
+    dwell_s : float
+        Integration time per sample, s.
+    y_m : float
+        Slow-axis position, m.
+    nv_theta_rad, nv_phi_rad : float
+        NV axis orientation in the scan frame, rad.
+    start_time, end_time : datetime
+        Acquisition window, aware UTC.
+    source : str
+    sha256 : str or None
+    """
+
+    line_index: int
+    direction: str
+    freq_hz: np.ndarray
+    counts: np.ndarray
+    x_m: np.ndarray
+    reference_counts: np.ndarray | None
+    dwell_s: float
+    y_m: float
+    nv_theta_rad: float
+    nv_phi_rad: float
+    start_time: datetime
+    end_time: datetime
+    source: str
+    sha256: str | None
+
+
+def _utc_now() -> datetime:
+    return datetime.now(UTC)
+
+
+class ScanStore:
+    """One scan's zarr store, open for writing. Build it with :meth:`open`."""
+
+    def __init__(
+        self,
+        path: Path,
+        root: zarr.Group,
+        ledger: Ledger,
+        *,
+        raw_spectra: bool,
+        compression_level: int,
+        config_digest: str,
+        clock: Callable[[], datetime],
+        durable: bool,
+    ) -> None:
+        self.path = path
+        attrs = root.attrs.asdict()
+        self.scan_id: str = str(attrs["scan_id"])
+        self.n_lines_planned: int = int(attrs["n_lines_planned"])  # type: ignore[arg-type]
+        self.n_pixels: int = int(attrs["n_pixels"])  # type: ignore[arg-type]
+        self.raw_spectra = raw_spectra
+        self.recovered_lines: list[Key] = []
+        self._root = root
+        self._ledger = ledger
+        self._codecs = compressors(compression_level)
+        self._config_digest = config_digest
+        self._clock = clock
+        # Settled once: the per-line path calls these without looking at the options.
+        self._put_raw = self._write_raw if raw_spectra else self._skip_raw
+        self._flush = self._flush_rows if durable else self._skip_flush
+        self._maps: dict[str, dict[str, Any]] = {}
+        self._y: dict[str, Any] = {}
+        self._raw: dict[str, Any] = {}
+        for direction in DIRECTIONS:
+            trace = root[direction]
+            if not isinstance(trace, zarr.Group):
+                raise KeyError(direction)
+            arrays = dict(trace.arrays())  # fetched concurrently, unlike one by one
+            self._maps[direction] = {name: arrays[name] for name in MAP_NAMES}
+            self._y[direction] = arrays["y"]
+            self._raw[direction] = root[f"raw/{direction}"]
+        self._failures: dict[Key, int] = {}
+
+    # ------------------------------------------------------------------ opening
+
+    @classmethod
+    def open(
+        cls,
+        output_root: Path,
+        scan_id: str,
+        *,
+        n_lines_planned: int,
+        n_pixels: int,
+        x_m: np.ndarray,
+        config_json: dict[str, Any],
+        config_digest: str,
+        nv_axis_rad: tuple[float, float] | None = None,
+        raw_spectra: bool = False,
+        compression_level: int = 5,
+        chunk_lines: int = 1,
+        clock: Callable[[], datetime] = _utc_now,
+        durable: bool = True,
+    ) -> ScanStore:
+        """Create ``<output_root>/<scan_id>.zarr`` or reopen it, recovering after a crash.
+
+        Parameters
+        ----------
+        output_root : Path
+            Directory holding the scans' stores (created if missing).
+        scan_id : str
+            Scan identifier; letters, digits, ``_``, ``-``, ``.`` (not leading ``.``).
+        n_lines_planned, n_pixels : int
+            Map shape; must match an existing store.
+        x_m : ndarray, shape (n_pixels,)
+            Fast-axis pixel positions, m; stored as the ``x`` coordinate at creation
+            (an existing store keeps its own).
+        config_json : dict
+            The configuration (JSON-serialisable); stored in the attributes.
+        config_digest : str
+            Its digest; recorded in the attributes and in every ledger commit.
+        nv_axis_rad : (float, float), optional
+            The scan's NV axis (θ, φ) in rad, recorded in the attributes (``nv_theta_rad``,
+            ``nv_phi_rad``) so that readers need not go back to the line files.
+        raw_spectra : bool
+            Also store each line's raw spectra.
+        compression_level : int
+            Blosc-Zstd level 0–9 for maps (at creation) and raw spectra.
+        chunk_lines : int
+            Lines per chunk at creation; an existing store keeps its own chunking.
+        clock : callable returning an aware datetime
+            Source of the ledger's processed times (injectable for tests).
+        durable : bool
+            fsync every line's chunk files before its commit record, so a committed line
+            survives power loss, not only a crash of the process.
+
+        Returns
+        -------
+        ScanStore
+            With :attr:`recovered_lines` listing the lines reset by recovery.
+
+        Raises
+        ------
+        StoreError
+            If the store cannot be created or read, is held by another writer, or is
+            incompatible (another format, scan, n_pixels or n_lines_planned).
+        ValueError
+            If an argument is invalid (a caller's bug).
+        """
+        if not _SCAN_ID.match(scan_id):
+            raise ValueError(f"scan_id must match {_SCAN_ID.pattern}; found {scan_id!r}")
+        if n_lines_planned < 1 or n_pixels < 1 or chunk_lines < 1:
+            raise ValueError(
+                "n_lines_planned, n_pixels and chunk_lines must be >= 1; found "
+                f"{n_lines_planned}, {n_pixels}, {chunk_lines}"
+            )
+        if not 0 <= compression_level <= 9:
+            raise ValueError(f"compression_level must be in 0..9; found {compression_level}")
+        x_m = np.sort(np.asarray(x_m, dtype=np.float64))  # maps run in increasing x
+        if x_m.shape != (n_pixels,):
+            raise ValueError(f"x_m must have shape ({n_pixels},); found {x_m.shape}")
+
+        output_root = Path(output_root)
+        path = store_path(output_root, scan_id)
+        try:
+            output_root.mkdir(parents=True, exist_ok=True)
+            remove_creation_leftovers(path)
+            if not path.exists():
+                attributes = {
+                    "store_format": STORE_FORMAT,
+                    "store_format_version": STORE_FORMAT_VERSION,
+                    "scan_id": scan_id,
+                    "n_lines_planned": n_lines_planned,
+                    "n_pixels": n_pixels,
+                    "config": config_json,
+                    "config_digest": config_digest,
+                    "other_configs": {},
+                    **_axis_attributes(nv_axis_rad),
+                    "software_version": strayline.__version__,
+                    "created_time": format_time(clock()),
+                }
+                try:
+                    create_layout(
+                        path,
+                        attributes=attributes,
+                        n_lines_planned=n_lines_planned,
+                        n_pixels=n_pixels,
+                        x_m=x_m,
+                        compression_level=compression_level,
+                        chunk_lines=chunk_lines,
+                    )
+                except OSError:
+                    if not path.exists():  # lost a creation race: reopen the winner's store
+                        raise
+        except OSError as exc:
+            raise StoreError(f"{path}: creating the store failed: {exc}") from exc
+
+        root = _open_root(path, scan_id, n_lines_planned, n_pixels)
+        ledger = Ledger.open(path / LEDGER_FILE)  # takes the writer's lock
+        try:
+            remove_partials(path)
+            store = cls(
+                path,
+                root,
+                ledger,
+                raw_spectra=raw_spectra,
+                compression_level=compression_level,
+                config_digest=config_digest,
+                clock=clock,
+                durable=durable,
+            )
+            store._recover()
+            store._note_config(config_json, config_digest)
+            store._note_nv_axis(nv_axis_rad)
+        except KeyError as exc:
+            ledger.close()
+            raise StoreError(f"{path}: store layout incomplete: missing {exc}") from exc
+        except OSError as exc:
+            ledger.close()
+            if isinstance(exc, StoreError):
+                raise
+            raise StoreError(f"{path}: recovering the store at open failed: {exc}") from exc
+        except BaseException:
+            ledger.close()
+            raise
+        return store
+
+    def _note_config(self, config_json: dict[str, Any], config_digest: str) -> None:
+        """Keep every configuration that wrote to this store in its attributes."""
+        attrs = self._root.attrs.asdict()
+        others = dict(cast(dict[str, Any], attrs.get("other_configs") or {}))
+        if config_digest != attrs["config_digest"] and config_digest not in others:
+            others[config_digest] = config_json
+            self._guard(
+                "recording the configuration",
+                self._root.update_attributes,
+                {"other_configs": others},
+            )
+
+    def _note_nv_axis(self, nv_axis_rad: tuple[float, float] | None) -> None:
+        """Record the NV axis in a store created before stores recorded it."""
+        if nv_axis_rad is None or "nv_theta_rad" in self._root.attrs:
+            return
+        self._guard(
+            "recording the NV axis", self._root.update_attributes, _axis_attributes(nv_axis_rad)
+        )
+
+    def _recover(self) -> None:
+        """Reset rows of uncommitted lines, remove temporary files, count failures."""
+        state = self._ledger.state
+        to_reset: set[Key] = set(state.pending)
+        for direction in DIRECTIONS:
+            done = {i for (i, d) in state.committed if d == direction}
+            to_reset |= {(i, direction) for i in self._stray_lines(direction, done)}
+        for key in sorted(to_reset):
+            self._clear_rows(key)
+        self._flush(sorted(to_reset))
+        if to_reset:
+            when = format_time(self._clock())
+            self._ledger.append(
+                {"event": "reset", "line_index": i, "direction": d, "time": when}
+                for (i, d) in sorted(to_reset)
+            )
+        self.recovered_lines = sorted(to_reset)
+        for direction in DIRECTIONS:
+            status = self._maps[direction]["status"][:]
+            for i, d in state.committed:
+                if d == direction:
+                    self._failures[(i, d)] = count_failures(status[i])
+
+    def _stray_lines(self, direction: str, done: set[int]) -> set[int]:
+        """Uncommitted line indices with any non-fill value in a map, ``y`` or raw spectra.
+
+        Only chunks that exist on disk and cover an uncommitted line are read, so a store
+        closed cleanly costs a directory listing per map.
+        """
+        lines: set[int] = set()
+        for spec in MAPS:
+            array = self._maps[direction][spec.name]
+            block = array.chunks[0]
+            chunk_dir = self.path / direction / spec.name / "c"
+            if not chunk_dir.is_dir():
+                continue
+            for entry in chunk_dir.iterdir():
+                if not entry.name.isdigit():
+                    continue
+                start = int(entry.name) * block
+                stop = min(start + block, self.n_lines_planned)
+                if done.issuperset(range(start, stop)):
+                    continue
+                rows = array[start:stop]
+                if spec.dtype == "uint8":
+                    present = np.any(rows != STATUS_FILL, axis=1)
+                else:
+                    present = np.any(~np.isnan(rows), axis=1)
+                lines |= {start + int(k) for k in np.flatnonzero(present)}
+        y = self._y[direction][:]
+        lines |= {int(k) for k in np.flatnonzero(~np.isnan(y))}
+        raw_dir = self.path / "raw" / direction
+        lines |= {int(p.name) for p in raw_dir.iterdir() if p.is_dir() and p.name.isdigit()}
+        return lines - done
+
+    def _clear_rows(self, key: Key) -> None:
+        index, direction = key
+        for spec in MAPS:
+            self._maps[direction][spec.name][index, :] = spec.fill
+        self._y[direction][index] = math.nan
+        raw_line = self.path / "raw" / direction / str(index)
+        if raw_line.exists():
+            shutil.rmtree(raw_line)
+        self._failures.pop(key, None)
+
+    def _skip_flush(self, keys: list[Key]) -> None:
+        """Durability against power loss is off: the OS writes the rows back in its time."""
+
+    def _flush_rows(self, keys: list[Key]) -> None:
+        """fsync the files holding the rows of ``keys`` and their directories."""
+        if keys:
+            fsync_with_parents(self._row_files(keys), self.path)
+
+    def _row_files(self, keys: list[Key]) -> list[Path]:
+        """Files holding the rows of ``keys`` (maps, ``y``, raw spectra)."""
+        files = []
+        for index, direction in keys:
+            for spec in MAPS:
+                block = self._maps[direction][spec.name].chunks[0]
+                files.append(chunk_file(self.path, f"{direction}/{spec.name}", (index // block, 0)))
+            files.append(chunk_file(self.path, f"{direction}/y", (0,)))
+            raw_line = self.path / "raw" / direction / str(index)
+            files.extend(p for p in raw_line.rglob("*") if p.is_file())
+            files.append(raw_line)  # a removed raw group: its parent directory is flushed
+        return files
+
+    # ------------------------------------------------------------------ writing
+
+    def decide(self, line: ScanLine) -> Decision:
+        """Whether a line is new, a duplicate of its committed version, or a changed file.
+
+        A line without a checksum (``sha256`` None) never counts as a duplicate.
+        """
+        entry = self._ledger.state.committed.get((line.line_index, line.direction))
+        if entry is None:
+            return "new"
+        if line.sha256 is not None and entry.sha256 == line.sha256:
+            return "duplicate"
+        return "changed"
+
+    def write_line(self, line: ScanLine, fit: LineFit, field: LineField) -> WriteReceipt:
+        """Write a line's rows, then commit it in the ledger.
+
+        Raises
+        ------
+        StoreMismatch
+            If the line belongs to another scan or does not fit the store's shape.
+        StoreError
+            If writing to disk fails; the line stays uncommitted (write it again, or the
+            next open resets it).
+        ValueError
+            If ``fit``/``field`` disagree with ``line`` (a caller's bug).
+        """
+        self._check_open()
+        self._check_line(line)
+        rows = line_rows(line, fit, field)
+        key: Key = (line.line_index, line.direction)
+        started = time.perf_counter()
+        superseded = key in self._ledger.state.committed
+        where = {"line_index": line.line_index, "direction": line.direction}
+        begin = {"event": "begin", **where, "source": str(line.source), "sha256": line.sha256}
+        self._ledger.append([begin | {"time": format_time(self._clock())}])
+        self._guard(
+            f"writing line {line.line_index} ({line.direction})", self._write_rows, key, rows, line
+        )
+        self._guard(f"flushing line {line.line_index} ({line.direction})", self._flush, [key])
+        commit = {
+            "event": "commit",
+            **where,
+            "source": str(line.source),
+            "sha256": line.sha256,
+            "processed_time": format_time(self._clock()),
+            "software_version": strayline.__version__,
+            "config_digest": self._config_digest,
+        }
+        self._ledger.append([commit])
+        self._failures[key] = count_failures(rows["status"])
+        return WriteReceipt(
+            scan_id=self.scan_id,
+            line_index=line.line_index,
+            direction=line.direction,
+            write_s=time.perf_counter() - started,
+            superseded=superseded,
+        )
+
+    def _write_rows(self, key: Key, rows: dict[str, np.ndarray], line: ScanLine) -> None:
+        index, direction = key
+        # Maps are in increasing x, whatever order the pixels were acquired in (a backward
+        # trace is written in decreasing x; its x_m says where each pixel is).
+        order = np.argsort(np.asarray(line.x_m), kind="stable")
+        for name in MAP_NAMES:
+            self._maps[direction][name][index, :] = np.asarray(rows[name])[order]
+        self._y[direction][index] = float(line.y_m)
+        raw_line = self.path / "raw" / direction / str(index)
+        if raw_line.exists():  # spectra of a superseded version
+            shutil.rmtree(raw_line)
+        self._put_raw(key, line)
+
+    def _skip_raw(self, key: Key, line: ScanLine) -> None:
+        """Raw spectra are off for this store."""
+
+    def _write_raw(self, key: Key, line: ScanLine) -> None:
+        """Store the line's spectra as group ``raw/<direction>/<line_index>``."""
+        index, direction = key
+        group = self._raw[direction].create_group(
+            str(index),
+            attributes={
+                "dwell_s": float(line.dwell_s),
+                "y_m": float(line.y_m),
+                "nv_theta_rad": float(line.nv_theta_rad),
+                "nv_phi_rad": float(line.nv_phi_rad),
+                "start_time": format_time(line.start_time),
+                "end_time": format_time(line.end_time),
+                "source": str(line.source),
+                "sha256": line.sha256,
+            },
+        )
+        arrays: dict[str, tuple[np.ndarray, tuple[str, ...], str]] = {
+            "counts": (np.asarray(line.counts), ("x", "freq"), "counts"),
+            "freq_hz": (np.asarray(line.freq_hz, dtype=np.float64), ("freq",), "Hz"),
+            "x_m": (np.asarray(line.x_m, dtype=np.float64), ("x",), "m"),
+        }
+        if line.reference_counts is not None:
+            reference = np.asarray(line.reference_counts)
+            arrays["reference_counts"] = (reference, ("x", "freq"), "counts")
+        for name, (data, dims, units) in arrays.items():
+            group.create_array(
+                name,
+                data=data,
+                chunks=data.shape,
+                compressors=self._codecs,
+                dimension_names=dims,
+                attributes={"units": units},
+            )
+
+    def _check_line(self, line: ScanLine) -> None:
+        store = f"store {self.path.name}"
+        if line.scan_id != self.scan_id:
+            raise StoreMismatch(
+                line.source, "scan_id", f"{self.scan_id!r} ({store})", repr(line.scan_id)
+            )
+        if line.direction not in DIRECTIONS:
+            raise StoreMismatch(
+                line.source, "direction", "'forward' or 'backward'", repr(line.direction)
+            )
+        if line.n_lines_planned != self.n_lines_planned:
+            raise StoreMismatch(
+                line.source,
+                "n_lines_planned",
+                f"{self.n_lines_planned} (as in {store})",
+                str(line.n_lines_planned),
+            )
+        if line.n_pixels != self.n_pixels:
+            raise StoreMismatch(
+                line.source, "n_pixels", f"{self.n_pixels} (as in {store})", str(line.n_pixels)
+            )
+        if not 0 <= line.line_index < self.n_lines_planned:
+            raise StoreMismatch(
+                line.source,
+                "line_index",
+                f"in 0..{self.n_lines_planned - 1} ({store} plans {self.n_lines_planned} lines)",
+                str(line.line_index),
+            )
+
+    # ------------------------------------------------------------------ reading
+
+    def committed(self) -> dict[tuple[int, str], LedgerEntry]:
+        """Committed lines by (line_index, direction), with their superseded versions."""
+        return dict(self._ledger.state.committed)
+
+    def statistics(self) -> StoreStatistics:
+        """A frozen snapshot of progress; reads no data from disk."""
+        committed = self._ledger.state.committed
+        return StoreStatistics(
+            scan_id=self.scan_id,
+            n_lines_planned=self.n_lines_planned,
+            committed_forward=sum(1 for (_, d) in committed if d == "forward"),
+            committed_backward=sum(1 for (_, d) in committed if d == "backward"),
+            lines_recovered=len(self.recovered_lines),
+            fit_failures=sum(self._failures.values()),
+            last_commit_time=self._ledger.state.last_commit_time,
+        )
+
+    def read_map(self, name: str, direction: str) -> np.ndarray:
+        """One whole map, shape (n_lines_planned, n_pixels), fill where not written.
+
+        Raises
+        ------
+        KeyError
+            If ``name`` is not in :data:`MAP_NAMES` or ``direction`` is unknown.
+        """
+        return self._guard(
+            f"reading {direction}/{name}", self._maps[direction][name].__getitem__, slice(None)
+        )
+
+    def read_raw(self, line_index: int, direction: str) -> RawSpectra | None:
+        """The stored raw spectra of a committed line, or None if none were stored."""
+        if (line_index, direction) not in self._ledger.state.committed:
+            return None
+        if not (self.path / "raw" / direction / str(line_index)).is_dir():
+            return None
+        group = self._raw[direction][str(line_index)]
+        attrs = group.attrs.asdict()
+        reference = group["reference_counts"][:] if "reference_counts" in group else None
+        return RawSpectra(
+            line_index=line_index,
+            direction=direction,
+            freq_hz=group["freq_hz"][:],
+            counts=group["counts"][:],
+            x_m=group["x_m"][:],
+            reference_counts=reference,
+            dwell_s=float(attrs["dwell_s"]),  # type: ignore[arg-type]
+            y_m=float(attrs["y_m"]),  # type: ignore[arg-type]
+            nv_theta_rad=float(attrs["nv_theta_rad"]),  # type: ignore[arg-type]
+            nv_phi_rad=float(attrs["nv_phi_rad"]),  # type: ignore[arg-type]
+            start_time=parse_time(str(attrs["start_time"])),
+            end_time=parse_time(str(attrs["end_time"])),
+            source=str(attrs["source"]),
+            sha256=attrs["sha256"],  # type: ignore[arg-type]
+        )
+
+    # ------------------------------------------------------------------ lifetime
+
+    def close(self) -> None:
+        """Release the store (idempotent). Every committed line is already on disk."""
+        self._ledger.close()
+
+    def __enter__(self) -> ScanStore:
+        return self
+
+    def __exit__(
+        self,
+        exc_type: type[BaseException] | None,
+        exc: BaseException | None,
+        tb: TracebackType | None,
+    ) -> None:
+        self.close()
+
+    def _check_open(self) -> None:
+        if self._ledger.closed:
+            raise StoreError(f"{self.path}: the store is closed")
+
+    def _guard(self, operation: str, call: Callable[..., Any], *args: Any) -> Any:
+        """Run an I/O call, turning an OSError into a StoreError naming store and operation."""
+        try:
+            return call(*args)
+        except StoreError:
+            raise
+        except OSError as exc:
+            raise StoreError(f"{self.path}: {operation} failed: {exc}") from exc
+
+
+def _axis_attributes(nv_axis_rad: tuple[float, float] | None) -> dict[str, float]:
+    if nv_axis_rad is None:
+        return {}
+    return {"nv_theta_rad": float(nv_axis_rad[0]), "nv_phi_rad": float(nv_axis_rad[1])}
+
+
+def _open_root(path: Path, scan_id: str, n_lines_planned: int, n_pixels: int) -> zarr.Group:
+    """Open an existing store's root group and check it can take this scan."""
+    try:
+        root = zarr.open_group(path, mode="r+", zarr_format=3)
+        attrs = root.attrs.asdict()
+    except (OSError, ValueError) as exc:
+        raise StoreError(f"{path}: cannot open as a zarr 3 group: {exc}") from exc
+    layout = (attrs.get("store_format"), attrs.get("store_format_version"))
+    if layout != (STORE_FORMAT, STORE_FORMAT_VERSION):
+        raise StoreError(
+            f"{path}: attributes store_format, store_format_version must be "
+            f"{STORE_FORMAT!r}, {STORE_FORMAT_VERSION}; found {layout[0]!r}, {layout[1]!r}"
+        )
+    for key, wanted in (
+        ("scan_id", scan_id),
+        ("n_lines_planned", n_lines_planned),
+        ("n_pixels", n_pixels),
+    ):
+        if attrs.get(key) != wanted:
+            # The incoming line disagrees with its scan's store: the line's file is the odd
+            # one out, so this is a StoreMismatch (the caller quarantines the file).
+            raise StoreMismatch(
+                path,
+                f"attribute '{key}'",
+                f"{attrs.get(key)!r} (as in the scan's store)",
+                repr(wanted),
+            )
+    return root
