@@ -17,13 +17,13 @@ from strayline.field import LineField
 from strayline.fit import FitStatus, LineFit
 from strayline.lines import ScanLine
 from strayline.physics import D_ROOM_HZ, GAMMA_NV_HZ_PER_T
+from strayline.rules._step_features import pixel_median
 from strayline.rules._steps import best_level_segment
 from strayline.rules.metrics import (
     ROW_KEYS,
     LineMetrics,
     MetricsOptions,
     MetricsTracker,
-    _pixel_median,
     common_mode_sigma,
     comparison_rows,
     line_metrics,
@@ -471,7 +471,7 @@ def test_pixel_median_matches_numpy_nanmedian(rows: list[list[float]]) -> None:
     """The per-pixel median of a few rows equals numpy's nanmedian wherever a pixel has a
     finite value, and is NaN where it has none (reference: numpy.nanmedian)."""
     a = np.array(rows, dtype=float)
-    got = _pixel_median(list(a))
+    got = pixel_median(list(a))
     has = np.isfinite(a).any(axis=0)
     assert np.all(np.isnan(got[~has]))
     if has.any():

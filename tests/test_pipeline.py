@@ -25,12 +25,11 @@ from strayline.physics import D_ROOM_HZ, zfs_hz
 from strayline.pipeline import (
     PROFILE_RULE,
     LinePipeline,
-    _seed_tracker,
-    center_mean_sigma_from_maps,
     fit_model_from_config,
     profile_event,
     zfs_rule,
 )
+from strayline.pipeline._reseed import center_mean_sigma_from_maps, seed_tracker
 from strayline.rules import ROW_KEYS, LineMetrics, MetricsTracker, comparison_rows
 from strayline.store import ScanStore
 
@@ -553,7 +552,7 @@ def test_metrics_after_a_restart_equal_those_of_an_uninterrupted_run(
         config_json={},
         config_digest="test",
     ) as store:
-        _seed_tracker(seeded, store, line4)
+        seed_tracker(seeded, store, line4)
     for key in ROW_KEYS:
         if key == "pl_sigma_per_s":  # not kept by the store (see the report)
             assert np.isnan(seeded.seeded["forward"][key]).all()
@@ -599,7 +598,7 @@ def test_a_failure_while_opening_a_scan_leaves_no_half_built_scan(
         seed_first.process(files[0])
     finally:
         seed_first.close()
-    import strayline.pipeline as pipeline_module
+    import strayline.pipeline.line_pipeline as pipeline_module
 
     def broken_seed(*args: object) -> None:
         raise RuntimeError("our own bug")
@@ -607,7 +606,7 @@ def test_a_failure_while_opening_a_scan_leaves_no_half_built_scan(
     pipeline = LinePipeline(config)
     try:
         with monkeypatch.context() as patch:
-            patch.setattr(pipeline_module, "_seed_tracker", broken_seed)
+            patch.setattr(pipeline_module, "seed_tracker", broken_seed)
             with pytest.raises(RuntimeError, match="our own bug"):
                 pipeline.process(files[1])
         assert pipeline.statistics().scans_open == 0
@@ -701,7 +700,7 @@ def test_seeded_rows_of_a_backward_trace_follow_its_acquisition_order(
         config_json={},
         config_digest="test",
     ) as store:
-        _seed_tracker(seeded, store, forward3)
+        seed_tracker(seeded, store, forward3)
     for key in ("field_nv_t", "center_mean_hz", "pl_per_s", "x_m"):
         np.testing.assert_array_equal(seeded.seeded["backward"][key], expected[key], err_msg=key)
 
@@ -709,7 +708,7 @@ def test_seeded_rows_of_a_backward_trace_follow_its_acquisition_order(
 def test_only_a_few_scans_stay_open(scan_files: Path, tmp_path: Path) -> None:
     """Lines of more scans than MAX_OPEN_SCANS close the least recently used stores (no
     descriptor per scan for the daemon's lifetime), and progress of closed scans is kept."""
-    from strayline.pipeline import MAX_OPEN_SCANS
+    from strayline.pipeline._setup import MAX_OPEN_SCANS
 
     config = _config(tmp_path)
     pipeline = LinePipeline(config)

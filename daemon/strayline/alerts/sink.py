@@ -122,7 +122,7 @@ class AlertSink:
     hook_queue_size : int
         Hook runs waiting beyond this are dropped (and logged), so delivery never blocks.
     logger : structlog logger, optional
-        Defaults to ``structlog.get_logger()``.
+        Defaults to the ``strayline.alerts`` logger.
     """
 
     def __init__(
@@ -141,7 +141,7 @@ class AlertSink:
         self._hook = {sev: [str(a) for a in argv] for sev, argv in (hook or {}).items() if argv}
         self._hook_timeout_s = float(hook_timeout_s)
         self._stop_path = None if stop_request_file is None else Path(stop_request_file)
-        self._log = logger if logger is not None else structlog.get_logger()
+        self._log = logger if logger is not None else structlog.get_logger("strayline.alerts")
         self._lock = threading.Lock()
         self._delivered = 0
         self._hooks_run = 0

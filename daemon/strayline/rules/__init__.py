@@ -7,7 +7,8 @@ Each committed line's :class:`LineMetrics` (from :class:`MetricsTracker`) is jud
 """
 
 from strayline.rules._load import apply_overrides, default_rules, load_rules, rules_from_data
-from strayline.rules.engine import RollingBaseline, RuleEngine
+from strayline.rules.baseline import RollingBaseline
+from strayline.rules.engine import RuleEngine
 from strayline.rules.metrics import (
     ROW_KEYS,
     LineMetrics,

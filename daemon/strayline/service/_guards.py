@@ -24,6 +24,7 @@ __all__ = [
     "DiskGuard",
     "Outage",
     "Unreadable",
+    "UnreadableFiles",
     "free_disk_bytes",
 ]
 
@@ -118,13 +119,27 @@ class DiskGuard:
 
 @dataclass
 class Outage:
-    """The output cannot be written: since when, why, and when to try again."""
+    """The output cannot be written: since when, why, and when to try again.
+
+    The retry delay starts at :data:`RETRY_FIRST_S` and doubles after each failed retry
+    up to :data:`RETRY_MAX_S` (exponential backoff, common practice).
+    """
 
     reason: str
     since_s: float
     next_try_s: float
     backoff_s: float
     attempts: int = 0
+
+    @classmethod
+    def begin(cls, reason: str, now_s: float) -> Outage:
+        """An outage starting now, first retry after :data:`RETRY_FIRST_S`."""
+        return cls(reason, now_s, now_s + RETRY_FIRST_S, RETRY_FIRST_S)
+
+    def failed_again(self, now_s: float) -> None:
+        """A retry failed: double the delay (up to the cap) and set the next try."""
+        self.backoff_s = min(self.backoff_s * 2, RETRY_MAX_S)
+        self.next_try_s = now_s + self.backoff_s
 
 
 @dataclass
@@ -135,3 +150,39 @@ class Unreadable:
     error: str
     attempts: int
     next_try_s: float
+
+
+class UnreadableFiles:
+    """Line files that could not be read (not a store failure), each retried after a
+    growing delay (4^attempts s, capped) and given up after :data:`UNREADABLE_ATTEMPTS`."""
+
+    def __init__(self) -> None:
+        self._waiting: list[Unreadable] = []
+        self._attempts: dict[Path, int] = {}
+
+    def failed(self, ready: ReadyFile, error: str, now_s: float) -> float | None:
+        """Note a failed read; return the delay before its retry, s, or None when this
+        was the last attempt (the file is then forgotten: give it up)."""
+        attempts = self._attempts.get(ready.path, 0) + 1
+        if attempts >= UNREADABLE_ATTEMPTS:
+            self._attempts.pop(ready.path, None)
+            return None
+        self._attempts[ready.path] = attempts
+        delay_s = min(RETRY_FIRST_S * 4**attempts, RETRY_MAX_S * 5)
+        self._waiting.append(Unreadable(ready, error, attempts, now_s + delay_s))
+        return delay_s
+
+    def read(self, path: Path) -> None:
+        """The file was read at last: forget its failed attempts."""
+        self._attempts.pop(path, None)
+
+    def due(self, now_s: float) -> list[ReadyFile]:
+        """The files whose retry is due, taken out of the waiting list."""
+        due = [u for u in self._waiting if u.next_try_s <= now_s]
+        for u in due:
+            self._waiting.remove(u)
+        return [u.ready for u in due]
+
+    def next_try_s(self) -> float | None:
+        """When the soonest retry is due, or None with nothing waiting."""
+        return min((u.next_try_s for u in self._waiting), default=None)

@@ -31,7 +31,6 @@ from collections.abc import Callable
 from datetime import UTC, datetime
 from pathlib import Path
 from types import FrameType
-from typing import Literal
 
 import structlog
 
@@ -41,18 +40,24 @@ from strayline.config import Config, load_config
 from strayline.errors import ConfigError, StoreError
 from strayline.logs import configure_logging, reopen_log_files
 from strayline.pipeline import LinePipeline
+from strayline.service._events import (
+    ServiceAlert,
+    disk_low_cleared,
+    disk_low_raised,
+    output_unavailable_cleared,
+    output_unavailable_raised,
+    service_event,
+)
 from strayline.service._guards import (
     RESOURCE_CHECK_INTERVAL_S,
-    RETRY_FIRST_S,
-    RETRY_MAX_S,
     SERVICE_RULES,
-    UNREADABLE_ATTEMPTS,
     DiskGuard,
     Outage,
-    Unreadable,
+    UnreadableFiles,
     free_disk_bytes,
 )
 from strayline.service._sdnotify import Notifier
+from strayline.service._status import status_text
 from strayline.store import is_orphaned_store, store_metadata_present, store_path
 from strayline.watch import LineWatcher, ReadyFile, WatchOptions
 
@@ -122,8 +127,7 @@ class Service:
         self._next_status_log_s = 0.0
         self._next_check_s = -float("inf")
         self._held: deque[ReadyFile] = deque()
-        self._unreadable: list[Unreadable] = []
-        self._unreadable_attempts: dict[Path, int] = {}
+        self._unreadable = UnreadableFiles()
         self._undelivered: list[AlertEvent] = []
         self._outage: Outage | None = None
         self._last_alert: AlertEvent | None = None
@@ -220,8 +224,8 @@ class Service:
             wait = min(wait, max(self._next_ping_s - time.monotonic(), 0.0))
         if self._outage is not None:
             wait = min(wait, max(self._outage.next_try_s - self._clock(), 0.0))
-        if self._unreadable:
-            soonest = min(u.next_try_s for u in self._unreadable)
+        soonest = self._unreadable.next_try_s()
+        if soonest is not None:
             wait = min(wait, max(soonest - self._clock(), 0.0))
         return wait
 
@@ -259,7 +263,7 @@ class Service:
         except Exception:  # our own bug: keep the file, log it whole, carry on
             self._log.exception("line_failed", file=str(ready.path))
             return True
-        self._unreadable_attempts.pop(ready.path, None)
+        self._unreadable.read(ready.path)
         if outcome.scan_id is not None:
             self._last_scan_id = outcome.scan_id
         self._note_events(outcome.events)
@@ -277,28 +281,20 @@ class Service:
     # -- unreadable files ---------------------------------------------------------------
 
     def _note_unreadable(self, ready: ReadyFile, exc: OSError) -> None:
-        attempts = self._unreadable_attempts.get(ready.path, 0) + 1
-        if attempts >= UNREADABLE_ATTEMPTS:
-            self._unreadable_attempts.pop(ready.path, None)
+        delay = self._unreadable.failed(ready, str(exc), self._clock())
+        if delay is None:
             self._log.error("line_unreadable_gave_up", file=str(ready.path), error=str(exc))
             if self.pipeline is not None:
                 outcome = self.pipeline.give_up(ready.path, f"cannot be read: {exc}")
                 self._note_events(outcome.events)
             return
-        self._unreadable_attempts[ready.path] = attempts
-        delay = min(RETRY_FIRST_S * 4**attempts, RETRY_MAX_S * 5)
         self._log.warning(
             "line_unreadable_retry", file=str(ready.path), error=str(exc), retry_in_s=delay
         )
-        self._unreadable.append(Unreadable(ready, str(exc), attempts, self._clock() + delay))
 
     def _requeue_unreadable(self) -> None:
         """Put unreadable files whose retry is due back in line."""
-        now = self._clock()
-        due = [u for u in self._unreadable if u.next_try_s <= now]
-        for u in due:
-            self._unreadable.remove(u)
-            self._held.append(u.ready)
+        self._held.extend(self._unreadable.due(self._clock()))
 
     # -- output failures ----------------------------------------------------------------
 
@@ -306,27 +302,16 @@ class Service:
         """The output cannot be written: alert once, close the pipeline, back off."""
         now = self._clock()
         if self._outage is None:
-            self._outage = Outage(reason, now, now + RETRY_FIRST_S, RETRY_FIRST_S)
+            self._outage = Outage.begin(reason, now)
             self._log.error("output_unavailable", reason=reason, held_files=len(self._held))
             self._deliver(
                 self._service_event(
-                    "output_unavailable",
-                    "critical",
-                    "raised",
-                    message=(
-                        f"cannot write results below {self.config.paths.output_root}: {reason}; "
-                        "live maps and fault alerts are paused, line files are kept and retried"
-                    ),
-                    advice=(
-                        "check that the output folder exists, is writable and its disk is "
-                        "mounted and not full; processing resumes by itself"
-                    ),
+                    output_unavailable_raised(self.config.paths.output_root, reason)
                 )
             )
         else:
             outage = self._outage
-            outage.backoff_s = min(outage.backoff_s * 2, RETRY_MAX_S)
-            outage.next_try_s = now + outage.backoff_s
+            outage.failed_again(now)
             self._log.warning(
                 "output_retry_failed",
                 reason=reason,
@@ -360,16 +345,7 @@ class Service:
         down_s = self._clock() - outage.since_s
         self._log.info("output_recovered", down_s=round(down_s, 1), attempts=outage.attempts)
         self._deliver(
-            self._service_event(
-                "output_unavailable",
-                "critical",
-                "cleared",
-                message=(
-                    f"results are written below {self.config.paths.output_root} again after "
-                    f"{down_s:.0f} s; the watch root is listed again to catch up"
-                ),
-                advice="",
-            )
+            self._service_event(output_unavailable_cleared(self.config.paths.output_root, down_s))
         )
         # Lines written meanwhile into a store that had vanished are found again: every
         # file is reconsidered, and the ledger skips those already committed.
@@ -444,23 +420,9 @@ class Service:
                 self.pipeline.set_raw_spectra(False)
             except StoreError as exc:
                 self._begin_outage(str(exc))
-        self._deliver(
-            self._service_event(
-                "disk_space_low",
-                "critical",
-                "raised",
-                message=(
-                    f"free space for {self.config.paths.output_root} is {free_mib:.0f} MiB, "
-                    f"below service.min_free_disk_mib = {floor_mib:.0f} MiB; raw spectra are "
-                    "no longer stored (field maps still are)"
-                ),
-                advice=(
-                    "free space on that disk or move finished scans away; raw spectra are "
-                    f"stored again above {disk.clear_bytes / MIB:.0f} MiB free"
-                ),
-                seen=(free_mib, floor_mib, "MiB"),
-            )
-        )
+        clear_mib = disk.clear_bytes / MIB
+        root = self.config.paths.output_root
+        self._deliver(self._service_event(disk_low_raised(root, free_mib, floor_mib, clear_mib)))
 
     def _disk_low_cleared(self) -> None:
         free_mib = (self._disk.last_free_bytes or 0) / MIB
@@ -472,19 +434,9 @@ class Service:
                 self.pipeline = self._new_pipeline(self.config)
             except OSError as exc:
                 self._begin_outage(f"building the pipeline failed: {exc}")
-        self._deliver(
-            self._service_event(
-                "disk_space_low",
-                "critical",
-                "cleared",
-                message=(
-                    f"free space for {self.config.paths.output_root} is {free_mib:.0f} MiB "
-                    "again; raw spectra are stored as configured"
-                ),
-                advice="",
-                seen=(free_mib, self._disk.min_free_bytes / MIB, "MiB"),
-            )
-        )
+        floor_mib = self._disk.min_free_bytes / MIB
+        root = self.config.paths.output_root
+        self._deliver(self._service_event(disk_low_cleared(root, free_mib, floor_mib)))
 
     # -- building and closing -----------------------------------------------------------
 
@@ -518,8 +470,8 @@ class Service:
             pipeline.set_raw_spectra(False)  # no scan is open yet: nothing to reopen
         if self._alerts.raised("output_unavailable") is not None and self._outage is None:
             now = self._clock()
-            reason = "raised by a previous run"
-            self._outage = Outage(reason, now, now, RETRY_FIRST_S)
+            self._outage = Outage.begin("raised by a previous run", now)
+            self._outage.next_try_s = now  # try at once: the first resource check decides
 
     def _close_pipeline(self) -> None:
         pipeline, self.pipeline = self.pipeline, None
@@ -538,38 +490,14 @@ class Service:
 
     # -- alerts of the service itself ---------------------------------------------------
 
-    def _service_event(
-        self,
-        rule: str,
-        severity: str,
-        state: Literal["raised", "cleared"],
-        *,
-        message: str,
-        advice: str,
-        seen: tuple[float, float, str] | None = None,
-    ) -> AlertEvent:
-        raised = self._alerts.raised(rule)
-        if state == "cleared" and raised is not None:
+    def _service_event(self, alert: ServiceAlert) -> AlertEvent:
+        """The event of a service alert; a clear names the scan its raise named."""
+        raised = self._alerts.raised(alert.rule)
+        if alert.state == "cleared" and raised is not None:
             scan_id = raised.scan_id  # the pair is matched by (scan, rule)
         else:
             scan_id = self._last_scan_id or "-"
-        return AlertEvent(
-            time=_utc_now_text(),
-            scan_id=scan_id,
-            rule=rule,
-            severity=severity,
-            state=state,
-            line_index=None,
-            direction=None,
-            pixel_range=None,
-            seen_value=None if seen is None else seen[0],
-            seen_unit="" if seen is None else seen[2],
-            baseline_value=None if seen is None else seen[1],
-            baseline_spread=None,
-            confidence_z=None,
-            message=message,
-            advice=advice,
-        )
+        return service_event(alert, scan_id=scan_id, time_text=_utc_now_text())
 
     def _deliver(self, event: AlertEvent) -> None:
         """Send through the pipeline's alert sink; keep it for later if that fails."""
@@ -613,39 +541,16 @@ class Service:
 
     def _status_text(self) -> str:
         """One line for ``systemctl status``: scan, line, queue, last alert, troubles."""
-        parts = []
-        if self._outage is not None:
-            parts.append(
-                f"OUTPUT FAILING ({self._outage.reason}); {len(self._held)} files held, "
-                f"retry {self._outage.attempts + 1}"
-            )
-        if self._disk.low:
-            free_mib = (self._disk.last_free_bytes or 0) / MIB
-            parts.append(f"DISK LOW ({free_mib:.0f} MiB free): raw spectra off")
-        watch = self.watcher.statistics()
-        if not watch.watch_root_present:
-            parts.append(f"waiting for watch root {self.config.paths.watch_root}")
-        progress = self.pipeline.scan_progress() if self.pipeline is not None else {}
-        stats = self.pipeline.statistics() if self.pipeline is not None else None
-        if stats is not None and stats.last_scan_id in progress:
-            done, planned = progress[stats.last_scan_id]
-            parts.append(
-                f"scan {stats.last_scan_id}: line {stats.last_line_index}, {done}/{planned} done"
-            )
-            if len(progress) > 1:
-                parts.append(f"{len(progress) - 1} more scans open")
-        elif progress:
-            parts.append(f"{len(progress)} scans open")
-        else:
-            parts.append("waiting for lines")
-        parts.append(f"queue {watch.candidates_pending + len(self._held)}")
-        if self._last_alert is not None:
-            a = self._last_alert
-            where = a.scan_id if a.line_index is None else f"{a.scan_id} line {a.line_index}"
-            parts.append(f"last alert {a.time[11:19]} {a.rule} {a.state} ({where})")
-        else:
-            parts.append("no alerts")
-        return ", ".join(parts)
+        return status_text(
+            outage=self._outage,
+            held=len(self._held),
+            disk=self._disk,
+            watch=self.watcher.statistics(),
+            watch_root=self.config.paths.watch_root,
+            progress=self.pipeline.scan_progress() if self.pipeline is not None else {},
+            stats=self.pipeline.statistics() if self.pipeline is not None else None,
+            last_alert=self._last_alert,
+        )
 
     def _log_status(self) -> None:
         stats = self.pipeline.statistics() if self.pipeline is not None else None

@@ -16,49 +16,40 @@ the store is closed again (releasing its writer's lock) and the next line starts
 
 from __future__ import annotations
 
-import math
-import os
 import time
 from collections.abc import Callable
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from functools import partial
 from pathlib import Path
-from typing import Any, Literal
+from typing import Literal
 
 import numpy as np
 import structlog
 
-from strayline import __version__
 from strayline.alerts import ACTIVE_ALERTS_FILE, ActiveAlerts, AlertEvent, AlertSink
 from strayline.config import Config, config_digest, select_profile
 from strayline.errors import ConfigError, LineFileError, StoreError
 from strayline.field import field_from_fit
-from strayline.fit import FitModel, FitStatus, fit_line
+from strayline.fit import FitStatus, fit_line
 from strayline.lines import LineLimits, ScanLine, bad_file_event, quarantine_file, read_line_file
-from strayline.physics import D_ROOM_HZ, zfs_hz
+from strayline.pipeline._reseed import seed_tracker
+from strayline.pipeline._setup import (
+    MAX_OPEN_SCANS,
+    ScanContext,
+    fit_model_from_config,
+    no_products,
+    profile_event,
+    progress_of,
+    store_config,
+    zfs_rule,
+)
 from strayline.products import make_products, products_dir
-from strayline.rules import ROW_KEYS, MetricsTracker, RuleEngine, field_perp
+from strayline.rules import MetricsTracker, RuleEngine
 from strayline.store import ScanStore
-from strayline.watch import LineNames, list_tree
 
-__all__ = [
-    "PROFILE_RULE",
-    "LineOutcome",
-    "LinePipeline",
-    "PipelineStatistics",
-    "ProcessSummary",
-    "fit_model_from_config",
-    "process_folder",
-    "profile_event",
-    "zfs_rule",
-]
+__all__ = ["LineOutcome", "LinePipeline", "PipelineStatistics"]
 
-#: Rule name of the warning raised when a scan's profile cannot be used.
-PROFILE_RULE = "profile_unusable"
-
-#: File (in ``paths.state_dir``) keeping the alerts raised through
-#: :meth:`LinePipeline.deliver` that are still active, so a restart remembers them.
 
 OutcomeKind = Literal["written", "duplicate", "quarantined", "vanished"]
 
@@ -105,89 +96,6 @@ class PipelineStatistics:
     last_line_index: int | None
     last_line_s: float | None
     active_alerts: int
-
-
-#: Scans kept open at once: each holds its ledger's descriptor and lock. Older ones are
-#: closed (a late line reopens its scan), so a daemon running for weeks does not collect
-#: one descriptor per scan.
-MAX_OPEN_SCANS = 4
-
-
-def _progress(store: ScanStore) -> tuple[int, int]:
-    stats = store.statistics()
-    return stats.committed_forward + stats.committed_backward, stats.n_lines_planned
-
-
-def fit_model_from_config(config: Config) -> FitModel:
-    """The :class:`FitModel` that ``config.fit`` asks for (SI units).
-
-    A one-sided centre window (only ``fit.center_min_mhz`` or only ``center_max_mhz``)
-    gets an infinite other side. :func:`~strayline.fit.fit_line` intersects the window with
-    each line's frequency grid, so the open side becomes that line's grid edge, line by
-    line, and the model stays one constant per scan (no per-line work, no branching).
-    """
-    fit = config.fit
-    lo, hi = fit.center_min_hz, fit.center_max_hz
-    centers = (
-        None
-        if lo is None and hi is None
-        else (-math.inf if lo is None else lo, math.inf if hi is None else hi)
-    )
-    return FitModel(
-        n_dips=fit.n_dips,
-        shared_width=fit.shared_width,
-        hyperfine=fit.hyperfine,
-        fit_slope=fit.fit_slope,
-        fwhm_bounds_hz=(fit.fwhm_min_hz, fit.fwhm_max_hz),
-        contrast_bounds=(0.0, fit.contrast_max),
-        center_bounds_hz=centers,
-        weighting=fit.weighting,
-        max_iter=fit.max_iter,
-        min_counts=fit.min_counts,
-    )
-
-
-@dataclass
-class _Scan:
-    """Everything settled once for one scan: config, fit model, store, metrics memory."""
-
-    scan_id: str
-    profile: str | None
-    config: Config
-    fit_model: FitModel
-    zfs_for: Callable[[ScanLine], float]
-    sign: float
-    branch: Literal["upper", "lower"]
-    store: ScanStore
-    tracker: MetricsTracker
-    reopen: Callable[[bool], ScanStore]
-    after_commit: Callable[[_Scan, ScanLine], None]
-    lines_written: int = 0
-    products_done: bool = False
-
-
-def zfs_rule(config: Config) -> Callable[[ScanLine], float]:
-    """How a scan gets D for each line, settled once from ``config.field``.
-
-    ``field.zfs_hz`` set: that value. Else ``field.temperature_k`` set: D(T) of that
-    temperature, computed once. Else D(T) of each line file's temperature, and the room
-    value :data:`~strayline.physics.constants.D_ROOM_HZ` for a file without one.
-    """
-    if config.field.zfs_hz is not None:
-        fixed = float(config.field.zfs_hz)
-    elif config.field.temperature_k is not None:
-        fixed = float(zfs_hz(config.field.temperature_k))
-    else:
-        return _zfs_of_line
-    return lambda _line: fixed
-
-
-def _no_products(scan: _Scan, line: ScanLine) -> None:
-    """Products are turned off for this scan (``products.enabled: false``)."""
-
-
-def _zfs_of_line(line: ScanLine) -> float:
-    return D_ROOM_HZ if line.temperature_k is None else float(zfs_hz(line.temperature_k))
 
 
 @dataclass
@@ -243,7 +151,7 @@ class LinePipeline:
             else ActiveAlerts(config.paths.state_dir / ACTIVE_ALERTS_FILE)
         )
         self._raw_spectra: bool | None = None  # None: as each scan's config says
-        self._scans: dict[str, _Scan] = {}  # open scans, least recently used first
+        self._scans: dict[str, ScanContext] = {}  # open scans, least recently used first
         self._closed_progress: dict[str, tuple[int, int]] = {}
         self._counters = _Counters()
 
@@ -410,7 +318,7 @@ class LinePipeline:
         """Per scan seen: (lines committed in its store, lines planned)."""
         out = dict(self._closed_progress)
         for scan_id, scan in self._scans.items():
-            out[scan_id] = _progress(scan.store)
+            out[scan_id] = progress_of(scan.store)
         return out
 
     def close(self) -> None:
@@ -457,7 +365,7 @@ class LinePipeline:
             events=(event,),
         )
 
-    def _products_when_complete(self, scan: _Scan, line: ScanLine) -> None:
+    def _products_when_complete(self, scan: ScanContext, line: ScanLine) -> None:
         """Make the scan's products once, when its last planned line is committed.
 
         Complete means: the last planned forward line is committed and, if the scan has a
@@ -508,7 +416,7 @@ class LinePipeline:
     def _now(self) -> datetime:
         return datetime.fromtimestamp(self._clock(), UTC)
 
-    def _scan_for(self, line: ScanLine, path: Path) -> tuple[_Scan, tuple[AlertEvent, ...]]:
+    def _scan_for(self, line: ScanLine, path: Path) -> tuple[ScanContext, tuple[AlertEvent, ...]]:
         scan = self._scans.pop(line.scan_id, None)
         if scan is not None:
             self._scans[line.scan_id] = scan  # most recently used last
@@ -523,7 +431,7 @@ class LinePipeline:
     def _close_scan(self, scan_id: str) -> None:
         """Close a scan's store (its ledger descriptor and lock); its next line reopens it."""
         scan = self._scans.pop(scan_id)
-        self._closed_progress[scan_id] = _progress(scan.store)
+        self._closed_progress[scan_id] = progress_of(scan.store)
         scan.store.close()
         self._log.info("scan_closed", scan=scan_id)
 
@@ -549,7 +457,7 @@ class LinePipeline:
             self._sink.deliver(event)
             return self.config, None, (event,)
 
-    def _open_scan(self, line: ScanLine, path: Path) -> tuple[_Scan, tuple[AlertEvent, ...]]:
+    def _open_scan(self, line: ScanLine, path: Path) -> tuple[ScanContext, tuple[AlertEvent, ...]]:
         config, profile, events = self._scan_config(line, path)
         fit_model = fit_model_from_config(config)
         raw_spectra = config.store.raw_spectra if self._raw_spectra is None else self._raw_spectra
@@ -560,7 +468,7 @@ class LinePipeline:
             n_lines_planned=line.n_lines_planned,
             n_pixels=line.n_pixels,
             x_m=line.x_m,
-            config_json=_store_config(config, profile),
+            config_json=store_config(config, profile),
             config_digest=config_digest(config),
             nv_axis_rad=(line.nv_theta_rad, line.nv_phi_rad),
             compression_level=config.store.compression_level,
@@ -573,8 +481,8 @@ class LinePipeline:
         store = reopen(raw_spectra)
         try:
             tracker = MetricsTracker()
-            _seed_tracker(tracker, store, line)
-            scan = _Scan(
+            seed_tracker(tracker, store, line)
+            scan = ScanContext(
                 scan_id=line.scan_id,
                 profile=profile,
                 config=config,
@@ -586,7 +494,7 @@ class LinePipeline:
                 tracker=tracker,
                 reopen=reopen,
                 after_commit=(
-                    self._products_when_complete if config.products.enabled else _no_products
+                    self._products_when_complete if config.products.enabled else no_products
                 ),
             )
         except BaseException:
@@ -610,198 +518,3 @@ class LinePipeline:
             raw_spectra=store.raw_spectra,
         )
         return scan, events
-
-
-def profile_event(
-    line: ScanLine,
-    profile: str,
-    error: ConfigError,
-    available: tuple[str, ...],
-    now: datetime,
-) -> AlertEvent:
-    """The warning alert for a scan whose profile cannot be used (base config instead).
-
-    Parameters
-    ----------
-    line : ScanLine
-        The scan's first line seen by this daemon.
-    profile : str
-        The profile the line file or the folder rules asked for.
-    error : ConfigError
-        Why it cannot be used (unknown, invalid overlay).
-    available : tuple of str
-        The profiles that exist.
-    now : datetime
-        Aware time of the decision.
-    """
-    listing = ", ".join(available) if available else "none"
-    return AlertEvent(
-        time=now.astimezone(UTC).isoformat(timespec="milliseconds"),
-        scan_id=line.scan_id,
-        rule=PROFILE_RULE,
-        severity="warning",
-        state="raised",
-        line_index=line.line_index,
-        direction=line.direction,
-        pixel_range=None,
-        seen_value=None,
-        seen_unit="",
-        baseline_value=None,
-        baseline_spread=None,
-        confidence_z=None,
-        message=(
-            f"profile {profile!r} cannot be used ({error}); the scan is processed with the "
-            f"base config; available profiles: {listing}"
-        ),
-        advice=(
-            "fix the profile name in the acquisition software or the profile file, then "
-            "reprocess the scan if its settings matter"
-        ),
-    )
-
-
-def _store_config(config: Config, profile: str | None) -> dict[str, Any]:
-    data = config.as_json_dict()
-    data["_profile"] = profile
-    data["_software_version"] = __version__
-    data["_host_pid"] = os.getpid()
-    return data
-
-
-#: Store map that holds each metrics row key directly.
-_ROW_FROM_MAP = {
-    "field_nv_t": "field_nv_t",
-    "field_nv_sigma_t": "field_nv_sigma_t",
-    "pl_per_s": "pl_rate_cps",
-    "center_mean_hz": "center_mean_hz",
-}
-
-
-def center_mean_sigma_from_maps(
-    center_mean_hz: np.ndarray,
-    freq_hi_hz: np.ndarray,
-    freq_lo_sigma_hz: np.ndarray,
-    freq_hi_sigma_hz: np.ndarray,
-) -> np.ndarray:
-    """1σ of the resonance-pair mean, rebuilt from the stored maps.
-
-    Where both resonances were fitted the mean is (f₋ + f₊)/2, so with independent errors
-    σ = ½·√(σ₋² + σ₊²) (Gaussian error propagation, common practice; the same expression
-    :func:`~strayline.field.field_from_fit` uses). Where the dips merged into one, the mean
-    *is* the one centre and σ = σ₋. Where no mean was computed the result is NaN.
-
-    Parameters
-    ----------
-    center_mean_hz, freq_hi_hz, freq_lo_sigma_hz, freq_hi_sigma_hz : ndarray, shape (n,)
-        Rows of the store's maps of the same names, Hz.
-
-    Returns
-    -------
-    ndarray, shape (n,)
-        σ of the centre mean, Hz.
-    """
-    mean = np.asarray(center_mean_hz, dtype=float)
-    hi = np.asarray(freq_hi_hz, dtype=float)
-    s_lo = np.asarray(freq_lo_sigma_hz, dtype=float)
-    s_hi = np.asarray(freq_hi_sigma_hz, dtype=float)
-    pair = 0.5 * np.hypot(s_lo, s_hi)
-    out = np.where(np.isfinite(hi), pair, s_lo)
-    return np.where(np.isfinite(mean), out, np.nan)
-
-
-def _seed_tracker(tracker: MetricsTracker, store: ScanStore, line: ScanLine) -> None:
-    """After a restart, remember the last committed lines of each direction.
-
-    The tracker compares a line with the previous one and with a reference built from a
-    few lines before it, so the last :data:`SEED_LINES` committed lines of each direction
-    are seeded, oldest first. Every row is rebuilt from the store's maps except
-    ``pl_sigma_per_s``: the store does not keep the PL rate's 1σ, so that row is NaN (no
-    metric uses it today).
-    """
-    committed = store.committed()
-    for direction in ("forward", "backward"):
-        done = sorted(i for (i, d) in committed if d == direction and i < line.line_index)
-        # Maps run in increasing x; metrics rows run in acquisition order, which is this
-        # line's for its own direction and the reverse for the other one.
-        x_m = np.asarray(line.x_m, dtype=float)
-        x_m = x_m if direction == line.direction else x_m[::-1].copy()
-        order = np.argsort(x_m, kind="stable")
-        for index in done[-SEED_LINES:]:
-            tracker.seed(direction, _stored_rows(store, direction, index, order, x_m))
-
-
-#: Committed lines per direction given back to the metrics memory after a restart.
-SEED_LINES = 4
-
-
-def _stored_rows(
-    store: ScanStore, direction: str, index: int, order: np.ndarray, x_m: np.ndarray
-) -> dict[str, np.ndarray]:
-    """The metrics rows (:data:`ROW_KEYS`) of one committed line, from the store's maps."""
-
-    def row(name: str) -> np.ndarray:
-        stored = np.asarray(store.read_map(name, direction)[index], dtype=float)
-        in_file_order = np.empty_like(stored)
-        in_file_order[order] = stored
-        return in_file_order
-
-    ok = row("status") == FitStatus.OK
-    rows = {key: row(name) for key, name in _ROW_FROM_MAP.items()}
-    for key in ("field_nv_t", "center_mean_hz"):  # as metrics.comparison_rows keeps them
-        rows[key] = np.where(ok, rows[key], np.nan)
-    rows["center_mean_sigma_hz"] = center_mean_sigma_from_maps(
-        rows["center_mean_hz"],
-        row("freq_hi_hz"),
-        row("freq_lo_sigma_hz"),
-        row("freq_hi_sigma_hz"),
-    )
-    rows["field_perp_t"] = field_perp(row("field_abs_t"), row("angle_rad"), ok)
-    rows["pl_sigma_per_s"] = np.full(store.n_pixels, np.nan)
-    rows["x_m"] = x_m
-    return {key: rows[key] for key in ROW_KEYS}
-
-
-@dataclass(frozen=True)
-class ProcessSummary:
-    """What one ``process`` pass did."""
-
-    files: int
-    written: int
-    duplicates: int
-    quarantined: int
-    vanished: int
-    pixels_failed: int
-    alerts: int
-
-
-def _summarise(outcomes: list[LineOutcome]) -> ProcessSummary:
-    kinds = [o.kind for o in outcomes]
-    return ProcessSummary(
-        files=len(outcomes),
-        written=kinds.count("written"),
-        duplicates=kinds.count("duplicate"),
-        quarantined=kinds.count("quarantined"),
-        vanished=kinds.count("vanished"),
-        pixels_failed=sum(o.failures for o in outcomes),
-        alerts=sum(len(o.events) for o in outcomes),
-    )
-
-
-def process_folder(config: Config, folder: Path) -> ProcessSummary:
-    """Process every line file below ``folder`` once (sorted by name), then return.
-
-    The same pipeline as the daemon: already committed identical files are skipped, bad
-    files are quarantined.
-    """
-    folder = Path(folder).absolute()
-    listing = list_tree(folder, LineNames(folder, config.watch.pattern))
-    if listing.error is not None and not listing.files:
-        raise FileNotFoundError(f"{folder}: {listing.error}")
-    pipeline = LinePipeline(config)
-    outcomes: list[LineOutcome] = []
-    try:
-        for path in sorted(listing.files, key=lambda p: (p.parent, p.name)):
-            outcomes.append(pipeline.process(path))
-    finally:
-        pipeline.close()
-    return _summarise(outcomes)

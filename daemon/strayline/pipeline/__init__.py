@@ -1,0 +1,20 @@
+"""The pipeline: one line file through every stage (read → fit → field → store → rules →
+alerts, and the products once a scan is complete), for the daemon and for one
+``strayline process`` pass alike.
+"""
+
+from strayline.pipeline._setup import PROFILE_RULE, fit_model_from_config, profile_event, zfs_rule
+from strayline.pipeline.folder import ProcessSummary, process_folder
+from strayline.pipeline.line_pipeline import LineOutcome, LinePipeline, PipelineStatistics
+
+__all__ = [
+    "PROFILE_RULE",
+    "LineOutcome",
+    "LinePipeline",
+    "PipelineStatistics",
+    "ProcessSummary",
+    "fit_model_from_config",
+    "process_folder",
+    "profile_event",
+    "zfs_rule",
+]
