@@ -193,6 +193,7 @@ def test_the_config_may_come_from_the_environment(
 # -- process -----------------------------------------------------------------------------
 
 
+@pytest.mark.slow
 def test_process_prints_the_summary_and_a_rerun_writes_nothing(tmp_path: Path) -> None:
     """`strayline process DIR` over a demo scan prints what it did; run again, every file is
     already done."""

@@ -40,6 +40,7 @@ def _value(out: str, label: str) -> str:
     raise AssertionError(f"no {label!r} line in:\n{out}")
 
 
+@pytest.mark.slow
 def test_a_small_demo_prints_where_everything_is_and_alerts_on_its_fault(
     tmp_path: Path,
 ) -> None:

@@ -272,13 +272,6 @@ def test_aux_statistics_and_value_lookup() -> None:
         m.value("scan_id")
 
 
-def test_metrics_are_frozen() -> None:
-    """LineMetrics is a frozen record."""
-    m: LineMetrics = line_metrics(*records())
-    with pytest.raises(AttributeError):
-        m.pl_median_per_s = 0.0  # type: ignore[misc]
-
-
 @settings(max_examples=40, deadline=None, derandomize=True)
 @given(
     start=st.integers(min_value=16, max_value=N - 16),

@@ -21,6 +21,9 @@ from strayline.config import Config, config_from_mapping
 from strayline.lines import read_line_file, write_line_file
 from strayline.pipeline import LinePipeline, process_folder
 
+# Each test runs the daemon's pipeline over whole demo scans (seconds each).
+pytestmark = pytest.mark.slow
+
 SCAN = "rules-demo"
 N_LINES = 20
 N_PIXELS = 48

@@ -280,6 +280,8 @@ def test_sighup_applies_a_valid_config_reopens_logs_and_refuses_an_invalid_one(
     try:
         _write_scan(incoming, "hup-a", 3, tmp_path / "truth")
         wait_until(lambda: len(committed_keys(output / "hup-a.zarr")) == 3, proc, 60, "scan a")
+        # A line is logged just after its commit: rename only once all three are logged.
+        wait_until(lambda: len(_events(log_file, "line_processed")) == 3, proc, 20, "a's log")
         rotated = log_file.with_name("strayline.jsonl.1")
         log_file.rename(rotated)
         data = yaml.safe_load(config.read_text())

@@ -309,4 +309,4 @@ StoreMachine.TestCase.settings = settings(
     deadline=None,
     suppress_health_check=[HealthCheck.too_slow],
 )
-TestStoreMachine = StoreMachine.TestCase
+TestStoreMachine = pytest.mark.slow(StoreMachine.TestCase)

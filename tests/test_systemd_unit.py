@@ -30,8 +30,6 @@ import textwrap
 from pathlib import Path
 
 import pytest
-from hypothesis import given
-from hypothesis import strategies as st
 
 from strayline.cli import build_parser
 from strayline.config import load_config
@@ -139,58 +137,6 @@ def environment(service: dict[str, list[str]]) -> dict[str, str]:
     """The unit's Environment= assignments as a mapping."""
     pairs = (item.partition("=") for line in service.get("Environment", []) for item in [line])
     return {key: value for key, _, value in pairs}
-
-
-# --------------------------------------------------------------------------- the reader
-
-
-_KEY = st.from_regex(r"[A-Z][A-Za-z0-9]{0,15}", fullmatch=True)
-_VALUE = st.text(
-    alphabet=st.characters(
-        codec="ascii", categories=("L", "N", "P", "S", "Zs"), exclude_characters="\\"
-    ),
-    max_size=30,
-).map(str.strip)
-
-
-@given(
-    st.dictionaries(
-        st.from_regex(r"[A-Z][a-z]{1,8}", fullmatch=True),
-        st.lists(st.tuples(_KEY, _VALUE, st.booleans()), max_size=6),
-        max_size=4,
-    )
-)
-def test_unit_reader_round_trips_sections_repeats_and_continuations(sections):
-    """Rendering sections as unit text and reading it back gives every assignment in order,
-    including repeated keys and values split over a backslash continuation (common
-    practice: systemd.syntax(7))."""
-    lines = []
-    expected: Unit = {}
-    for name, assignments in sections.items():
-        lines.append(f"# section {name}")
-        lines.append(f"[{name}]")
-        for key, value, split in assignments:
-            head, space, tail = value.partition(" ")
-            # Split only at a single space: the reader strips the continuation line.
-            if split and space and head and tail and tail == tail.lstrip():
-                lines.append(f"{key}={head}\\")
-                lines.append(f"  {tail}")
-            else:
-                lines.append(f"{key}={value}")
-            expected.setdefault(name, {}).setdefault(key, []).append(value)
-        expected.setdefault(name, {})
-    assert read_unit("\n".join(lines) + "\n") == expected
-
-
-def test_timespan_and_size_readers_follow_systemd_units():
-    """Time spans add their parts and sizes use powers of 1024 (systemd.time(7),
-    systemd.resource-control(5))."""
-    assert timespan_s("1min 30s") == 90.0
-    assert timespan_s("10min") == 600.0
-    assert timespan_s("250ms") == 0.25
-    assert timespan_s("45") == 45.0
-    assert size_bytes("1536M") == 1536 * 2**20
-    assert size_bytes("2G") == 2**31
 
 
 # --------------------------------------------------------------------------- the daemon's contract
@@ -323,43 +269,6 @@ def test_nothing_outside_the_listed_places_is_writable(service):
 
 
 # --------------------------------------------------------------------------- hardening
-
-
-HARDENING = {
-    "NoNewPrivileges": "yes",
-    "PrivateDevices": "yes",
-    "PrivateUsers": "yes",
-    "PrivateNetwork": "yes",
-    "ProtectKernelTunables": "yes",
-    "ProtectKernelModules": "yes",
-    "ProtectKernelLogs": "yes",
-    "ProtectControlGroups": "yes",
-    "ProtectClock": "yes",
-    "ProtectHostname": "yes",
-    "RestrictNamespaces": "yes",
-    "RestrictRealtime": "yes",
-    "RestrictSUIDSGID": "yes",
-    "LockPersonality": "yes",
-    "RestrictAddressFamilies": "AF_UNIX",
-    "IPAddressDeny": "any",
-    "CapabilityBoundingSet": "",
-    "SystemCallArchitectures": "native",
-    "SystemCallErrorNumber": "EPERM",
-    "ProcSubset": "pid",
-    "ProtectProc": "invisible",
-}
-
-
-@pytest.mark.parametrize(("key", "value"), sorted(HARDENING.items()))
-def test_hardening_directive_is_set(service, key, value):
-    """Each sandboxing directive the daemon runs under has its strict value
-    (systemd.exec(5), systemd.resource-control(5))."""
-    assert one(service, key) == value
-
-
-def test_system_call_filter_is_system_service_minus_privileged_and_resources(service):
-    """The filter allows @system-service and then removes @privileged and @resources."""
-    assert service["SystemCallFilter"] == ["@system-service", "~@privileged @resources"]
 
 
 def test_resources_are_bounded_for_a_two_core_lab_pc(service):
@@ -540,6 +449,7 @@ _JIT_PROBE = textwrap.dedent(
 )
 
 
+@pytest.mark.slow
 @needs_systemd_analyze
 @pytest.mark.skipif(STRACE is None, reason="strace is not installed on this machine")
 def test_numba_jit_and_sd_notify_work_under_the_syscall_filter(service, tmp_path):

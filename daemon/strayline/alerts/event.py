@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import json
 from collections.abc import Mapping
-from dataclasses import asdict, dataclass
+from dataclasses import dataclass
 from datetime import datetime
 from typing import Any, Literal
 
@@ -16,8 +16,27 @@ from strayline._numbers import finite_or_none
 
 __all__ = ["AlertEvent"]
 
+#: The order of the keys in an event's JSON (the alert log keeps it line after line).
+_FIELD_ORDER = (
+    "time",
+    "scan_id",
+    "rule",
+    "severity",
+    "state",
+    "line_index",
+    "direction",
+    "pixel_range",
+    "seen_value",
+    "seen_unit",
+    "baseline_value",
+    "baseline_spread",
+    "confidence_z",
+    "message",
+    "advice",
+)
 
-@dataclass(frozen=True)
+
+@dataclass(frozen=True, kw_only=True)
 class AlertEvent:
     """One alert raised or cleared.
 
@@ -50,20 +69,20 @@ class AlertEvent:
     rule: str
     severity: str
     state: Literal["raised", "cleared"]
-    line_index: int | None
-    direction: str | None
-    pixel_range: tuple[int, int] | None
-    seen_value: float | None
-    seen_unit: str
-    baseline_value: float | None
-    baseline_spread: float | None
-    confidence_z: float | None
     message: str
     advice: str
+    line_index: int | None = None
+    direction: str | None = None
+    pixel_range: tuple[int, int] | None = None
+    seen_value: float | None = None
+    seen_unit: str = ""
+    baseline_value: float | None = None
+    baseline_spread: float | None = None
+    confidence_z: float | None = None
 
     def to_dict(self) -> dict[str, Any]:
         """Plain JSON-ready dict (non-finite numbers become None)."""
-        d = asdict(self)
+        d = {name: getattr(self, name) for name in _FIELD_ORDER}
         d["pixel_range"] = list(self.pixel_range) if self.pixel_range is not None else None
         for key in ("seen_value", "baseline_value", "baseline_spread", "confidence_z"):
             d[key] = finite_or_none(d[key])

@@ -82,12 +82,6 @@ def bad_file_event(path: Path, error: LineFileError, moved_to: str, now: datetim
         state="raised",
         line_index=line_index,
         direction=direction,
-        pixel_range=None,
-        seen_value=None,
-        seen_unit="",
-        baseline_value=None,
-        baseline_spread=None,
-        confidence_z=None,
         message=f"line file quarantined: {error}",
         advice=(
             f"the file was moved to {where} with a note beside it; check the acquisition "

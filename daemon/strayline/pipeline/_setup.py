@@ -156,12 +156,6 @@ def profile_event(
         state="raised",
         line_index=line.line_index,
         direction=line.direction,
-        pixel_range=None,
-        seen_value=None,
-        seen_unit="",
-        baseline_value=None,
-        baseline_spread=None,
-        confidence_z=None,
         message=(
             f"profile {profile!r} cannot be used ({error}); the scan is processed with the "
             f"base config; available profiles: {listing}"
