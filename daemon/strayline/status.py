@@ -91,7 +91,7 @@ def scan_status(store_path: Path, alerts: Sequence[AlertEvent] | None = None) ->
     scan_id = reader.scan_id
     n_planned = reader.n_lines_planned
     state = reader.ledger
-    done = {d: sum(1 for (_, dd) in state.committed if dd == d) for d in DIRECTIONS}
+    done: dict[str, int] = {d: sum(1 for (_, dd) in state.committed if dd == d) for d in DIRECTIONS}
     busiest = max(DIRECTIONS, key=lambda d: done[d])
     times = _commit_times(state, busiest)[-_RATE_WINDOW:]
     rate = None

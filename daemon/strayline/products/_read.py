@@ -61,7 +61,7 @@ def read_snapshot(store_path: Path) -> StoreSnapshot:
         If ``store_path`` is not a readable scan store.
     """
     reader = open_store_reader(Path(store_path))
-    committed = {d: reader.committed_lines(d) for d in DIRECTIONS}
+    committed: dict[str, list[int]] = {d: reader.committed_lines(d) for d in DIRECTIONS}
     traces: dict[str, TraceMaps] = {}
     for direction in DIRECTIONS:
         lines = committed[direction]

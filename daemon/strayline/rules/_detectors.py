@@ -3,8 +3,8 @@
 A detector turns a line's metrics and the scan's baseline into an :class:`Observation`
 (raise condition, clear condition, what was seen, against what, where). Counting lines
 for persistence and hysteresis is the engine's job, not the detector's. Detectors keep
-any memory they need in the plain ``memo`` dict the engine stores (JSON-serialisable, so
-it survives restarts). The resonance-jump detector, the largest, is in
+what they remember in a memory of their own (:class:`DetectorMemory`) that the engine
+saves with its state, so it survives restarts. The resonance-jump detector, the largest, is in
 :mod:`strayline.rules._jump`.
 """
 
@@ -35,11 +35,14 @@ from strayline.rules.spec import (
 
 __all__ = ["BaselineView", "Observation", "build_detector"]
 
+#: What a detector without memory computes from one line.
+LineDetect = Callable[[LineMetrics, BaselineView, object], Observation | None]
 
-def _fluorescence_lost(spec: FluorescenceLostSpec) -> Detector:
+
+def _fluorescence_lost(spec: FluorescenceLostSpec) -> LineDetect:
     below, clear_above = spec.pl_fraction_below, spec.pl_fraction_clear_above
 
-    def detect(m: LineMetrics, base: BaselineView, memo: dict[str, Any]) -> Observation | None:
+    def detect(m: LineMetrics, base: BaselineView, _memory: object) -> Observation | None:
         st = base.stats("pl_median_per_s")
         if st is None or not math.isfinite(m.pl_median_per_s) or st[0] <= 0:
             return None
@@ -70,8 +73,8 @@ def _fluorescence_lost(spec: FluorescenceLostSpec) -> Detector:
     return detect
 
 
-def _contrast_collapsed(spec: ContrastCollapsedSpec) -> Detector:
-    def detect(m: LineMetrics, base: BaselineView, memo: dict[str, Any]) -> Observation | None:
+def _contrast_collapsed(spec: ContrastCollapsedSpec) -> LineDetect:
+    def detect(m: LineMetrics, base: BaselineView, _memory: object) -> Observation | None:
         c_st, pl_st = base.stats("contrast_median"), base.stats("pl_median_per_s")
         if c_st is None or pl_st is None or c_st[0] <= 0 or pl_st[0] <= 0:
             return None
@@ -98,8 +101,8 @@ def _contrast_collapsed(spec: ContrastCollapsedSpec) -> Detector:
     return detect
 
 
-def _fit_failures_rising(spec: FitFailuresRisingSpec) -> Detector:
-    def detect(m: LineMetrics, base: BaselineView, memo: dict[str, Any]) -> Observation | None:
+def _fit_failures_rising(spec: FitFailuresRisingSpec) -> LineDetect:
+    def detect(m: LineMetrics, base: BaselineView, _memory: object) -> Observation | None:
         st = base.stats("fit_failure_fraction")
         if st is None or not math.isfinite(m.fit_failure_fraction):
             return None
@@ -119,11 +122,11 @@ def _fit_failures_rising(spec: FitFailuresRisingSpec) -> Detector:
     return detect
 
 
-def _zfs_drift(spec: ZfsDriftSpec) -> Detector:
+def _zfs_drift(spec: ZfsDriftSpec) -> LineDetect:
     metric = "center_mean_p10_hz"
     factor = spec.anchor_spread_factor
 
-    def detect(m: LineMetrics, base: BaselineView, memo: dict[str, Any]) -> Observation | None:
+    def detect(m: LineMetrics, base: BaselineView, _memory: object) -> Observation | None:
         anchor = base.anchor_stats(metric)
         v = m.center_mean_p10_hz
         if anchor is None or not math.isfinite(v):
@@ -158,7 +161,7 @@ def _zfs_drift(spec: ZfsDriftSpec) -> Detector:
     return detect
 
 
-def _threshold(spec: ThresholdSpec) -> Detector:
+def _threshold(spec: ThresholdSpec) -> LineDetect:
     above = spec.above
     below = spec.below
     clear_above = spec.clear_above if spec.clear_above is not None else above
@@ -166,7 +169,7 @@ def _threshold(spec: ThresholdSpec) -> Detector:
     ref = spec.reference
     unit = spec.unit if ref in ("absolute", "baseline_delta") else ref.removeprefix("baseline_")
 
-    def detect(m: LineMetrics, base: BaselineView, memo: dict[str, Any]) -> Observation | None:
+    def detect(m: LineMetrics, base: BaselineView, _memory: object) -> Observation | None:
         try:
             v = m.value(spec.metric)
         except KeyError:
@@ -215,11 +218,11 @@ def _threshold(spec: ThresholdSpec) -> Detector:
 
 
 _BUILDERS: dict[str, Callable[[Any], Detector]] = {
-    "fluorescence_lost": _fluorescence_lost,
-    "contrast_collapsed": _contrast_collapsed,
-    "fit_failures_rising": _fit_failures_rising,
-    "zfs_drift": _zfs_drift,
-    "threshold": _threshold,
+    "fluorescence_lost": lambda spec: Detector(_fluorescence_lost(spec)),
+    "contrast_collapsed": lambda spec: Detector(_contrast_collapsed(spec)),
+    "fit_failures_rising": lambda spec: Detector(_fit_failures_rising(spec)),
+    "zfs_drift": lambda spec: Detector(_zfs_drift(spec)),
+    "threshold": lambda spec: Detector(_threshold(spec)),
     "resonance_jump": resonance_jump_detector,
 }
 

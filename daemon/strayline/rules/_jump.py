@@ -2,15 +2,15 @@
 previous line, confirmed, and told apart as a tip crash, a contact, a touched sample or
 a stand-off change (see :class:`strayline.rules.spec.ResonanceJumpSpec`).
 
-The detector's memory (the pending step, the raised one, the last lines' steps) lives in
-the plain ``memo`` dict the engine stores, so it survives restarts.
+The detector's memory (:class:`JumpMemory`: the pending step, the raised one, the last
+lines' steps) is saved with the engine's state, so it survives restarts.
 """
 
 from __future__ import annotations
 
 import math
 from collections.abc import Mapping
-from dataclasses import replace
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 from strayline.rules._observation import (
@@ -23,7 +23,7 @@ from strayline.rules._observation import (
 from strayline.rules.metrics import LineMetrics
 from strayline.rules.spec import ResonanceJumpSpec
 
-__all__ = ["resonance_jump_detector"]
+__all__ = ["JumpMemory", "resonance_jump_detector"]
 
 
 _CHANNELS = (
@@ -44,6 +44,58 @@ _THRESHOLD_FIELD = {
 _TRANSIENT_CHANNELS = ("pl", "center_mean")
 # Lines of the same direction looked back on for where a returning step departed.
 _RECENT_LINES = 4
+
+
+@dataclass
+class JumpMemory:
+    """What the resonance-jump detector remembers of a scan.
+
+    Attributes
+    ----------
+    recent : list of dict
+        The steps seen on the lines before the last one (both directions, oldest first).
+    last : dict or None
+        The last line's steps (``line``, ``direction``, ``seen``).
+    pending : dict or None
+        A flagged step waiting for the next line to confirm it.
+    raised : dict or None
+        The step the engine raised the rule on, until the rule clears.
+    """
+
+    recent: list[dict[str, Any]] = field(default_factory=list)
+    last: dict[str, Any] | None = None
+    pending: dict[str, Any] | None = None
+    raised: dict[str, Any] | None = None
+
+    @classmethod
+    def from_json(cls, data: Mapping[str, Any]) -> JumpMemory:
+        """The memory saved by :meth:`to_json` (``{}``: a fresh one)."""
+        last = data.get("last")
+        return cls(
+            recent=list(data.get("recent", ())),
+            last=dict(last) if isinstance(last, Mapping) else None,
+            pending=data.get("pending"),
+            raised=data.get("raised"),
+        )
+
+    def to_json(self) -> dict[str, Any]:
+        out: dict[str, Any] = {}
+        if self.last is not None:
+            out["recent"], out["last"] = self.recent, self.last
+        if self.pending is not None:
+            out["pending"] = self.pending
+        if self.raised is not None:
+            out["raised"] = self.raised
+        return out
+
+    def on_raised(self) -> None:
+        """The rule was raised on the pending step: it becomes the raised one."""
+        if self.pending is not None:
+            self.raised, self.pending = self.pending, None
+
+    def on_quiet(self) -> None:
+        """A line without the raise condition: a pending step is dropped."""
+        self.pending = None
 
 
 def _steps(
@@ -258,7 +310,7 @@ def _new_pending(
     spec: ResonanceJumpSpec,
     m: LineMetrics,
     flagged: dict[str, Any],
-    memo: dict[str, Any],
+    memory: JumpMemory,
     *,
     fresh: bool,
 ) -> Observation:
@@ -272,7 +324,7 @@ def _new_pending(
     }
     verdict = _jump_verdict(spec, pending, None)
     pending["verdict"] = verdict
-    memo["pending"] = pending
+    memory.pending = pending
     obs = _jump_obs(pending, m, raise_cond=True, clear_cond=False, clear_now=False, text=verdict)
     return replace(obs, run_lines=1) if fresh else obs
 
@@ -372,7 +424,7 @@ def _confirm(
     pending: dict[str, Any],
     m: LineMetrics,
     flagged: dict[str, Any],
-    memo: dict[str, Any],
+    memory: JumpMemory,
 ) -> Observation:
     """The line after a flagged step: raise on (held or reverted), or drop the step."""
     hold = _hold(spec, pending, m)
@@ -394,9 +446,9 @@ def _confirm(
         else:  # a roughness change that came and went is no touch (see _hold)
             hold = "held" if again and not back else "unconfirmed"
     if hold == "unconfirmed":
-        memo.pop("pending", None)
+        memory.pending = None
         if flagged:
-            return _new_pending(spec, m, flagged, memo, fresh=True)
+            return _new_pending(spec, m, flagged, memory, fresh=True)
         return _jump_obs(
             pending,
             m,
@@ -407,7 +459,7 @@ def _confirm(
         )
     pending["confirmed"] = True
     reverted_at = m.line_index if hold == "reverted" else None
-    departed = _departure(spec, pending, memo.get("recent", [])) if hold == "held" else None
+    departed = _departure(spec, pending, memory.recent) if hold == "held" else None
     if departed is not None:  # the end of an excursion: back where it was
         pending["departed_at"] = departed
         reverted_at = pending["line"]
@@ -441,17 +493,17 @@ def _after_raise(
 
 
 def resonance_jump_detector(spec: ResonanceJumpSpec) -> Detector:
-    """The line detector of a resonance-jump rule."""
+    """The line detector of a resonance-jump rule, with its :class:`JumpMemory`."""
     clear_when_quiet = spec.clear_when_quiet
 
-    def detect(m: LineMetrics, base: BaselineView, memo: dict[str, Any]) -> Observation | None:
+    def detect(m: LineMetrics, base: BaselineView, memory: JumpMemory) -> Observation | None:
         flagged, undoing, seen = _steps(spec, m, base)
-        last = memo.get("last")
-        recent = [*memo.get("recent", ()), last] if isinstance(last, Mapping) else []
-        memo["recent"] = recent[-2 * _RECENT_LINES :]  # both directions
-        memo["last"] = {"line": m.line_index, "direction": m.direction, "seen": seen}
-        pending = memo.get("pending")
-        raised = memo.get("raised")
+        last = memory.last
+        recent = [*memory.recent, last] if last is not None else []
+        memory.recent = recent[-2 * _RECENT_LINES :]  # both directions
+        memory.last = {"line": m.line_index, "direction": m.direction, "seen": seen}
+        pending = memory.pending
+        raised = memory.raised
         if raised is not None:  # the engine has raised: look for recovery or more steps
             return _after_raise(raised, m, flagged, clear_when_quiet)
         # The previous line departed and this one returned (an excursion), or a weak
@@ -460,16 +512,16 @@ def resonance_jump_detector(spec: ResonanceJumpSpec) -> Detector:
         if touch is None and pending is None:
             touch = _touch_pair(spec, m, seen, recent)
         if touch is not None:
-            memo["pending"] = touch
+            memory.pending = touch
             obs = _jump_obs(
                 touch, m, raise_cond=True, clear_cond=False, clear_now=False, text=touch["verdict"]
             )
             return replace(obs, run_lines=2)
         if pending is not None:
-            return _confirm(spec, pending, m, flagged, memo)
-        return _new_pending(spec, m, flagged, memo, fresh=False) if flagged else None
+            return _confirm(spec, pending, m, flagged, memory)
+        return _new_pending(spec, m, flagged, memory, fresh=False) if flagged else None
 
-    return detect
+    return Detector(detect, JumpMemory.from_json)
 
 
 def _jump_obs(

@@ -6,21 +6,27 @@ Shared by the detectors of :mod:`strayline.rules._detectors` and
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from typing import Any, Protocol
 
 from strayline.rules.metrics import LineMetrics
 
-__all__ = ["BaselineView", "Detector", "Observation", "pixel_text", "robust_z"]
+__all__ = [
+    "BaselineView",
+    "Detector",
+    "DetectorMemory",
+    "NoMemory",
+    "Observation",
+    "pixel_text",
+    "robust_z",
+]
 
 
 class BaselineView(Protocol):
     """What a detector may ask of the baseline."""
 
     def stats(self, name: str) -> tuple[float, float] | None: ...
-
-    def anchor(self, name: str) -> float | None: ...
 
     def anchor_stats(self, name: str) -> tuple[float, float] | None: ...
 
@@ -50,7 +56,47 @@ class Observation:
     run_lines: int | None = None
 
 
-Detector = Callable[[LineMetrics, BaselineView, dict[str, Any]], Observation | None]
+class DetectorMemory(Protocol):
+    """What a detector remembers between lines of a scan; saved with the engine's state."""
+
+    def to_json(self) -> dict[str, Any]:
+        """Plain JSON-ready data that :attr:`Detector.memory` reads back."""
+        ...
+
+    def on_raised(self) -> None:
+        """The engine raised the rule on this line's observation."""
+        ...
+
+    def on_quiet(self) -> None:
+        """A line without the raise condition while the rule is not raised."""
+        ...
+
+
+@dataclass
+class NoMemory:
+    """The memory of a detector that remembers nothing."""
+
+    @classmethod
+    def from_json(cls, _data: Mapping[str, Any]) -> NoMemory:
+        return cls()
+
+    def to_json(self) -> dict[str, Any]:
+        return {}
+
+    def on_raised(self) -> None:
+        pass
+
+    def on_quiet(self) -> None:
+        pass
+
+
+@dataclass(frozen=True)
+class Detector:
+    """A line detector: ``detect(metrics, baseline, memory)`` gives the line's observation
+    (or None: nothing to judge); ``memory(saved)`` builds its memory, fresh from ``{}``."""
+
+    detect: Callable[[LineMetrics, BaselineView, Any], Observation | None]
+    memory: Callable[[Mapping[str, Any]], DetectorMemory] = NoMemory.from_json
 
 
 def robust_z(value: float, median: float, spread: float, floor: float) -> float:

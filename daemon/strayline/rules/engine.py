@@ -37,6 +37,7 @@ from strayline._numbers import finite_or_none
 from strayline.alerts import AlertEvent
 from strayline.errors import StoreError
 from strayline.rules._detectors import Observation, build_detector
+from strayline.rules._observation import DetectorMemory
 from strayline.rules.baseline import RollingBaseline
 from strayline.rules.metrics import LineMetrics
 from strayline.rules.spec import (
@@ -57,7 +58,7 @@ class _RuleState:
     true_count: int = 0
     clear_count: int = 0
     raised: dict[str, Any] | None = None
-    memo: dict[str, Any] | None = None
+    memory: DetectorMemory | None = None  # the rule's detector's, built at its first line
 
 
 def _iso(t_s: float) -> str:
@@ -83,7 +84,7 @@ class _ScanState:
         self.baseline = RollingBaseline(
             baseline.window_lines, baseline.min_lines, baseline.anchor_lines
         )
-        self.rules = {name: _RuleState(memo={}) for name in rule_set.specs}
+        self.rules = {name: _RuleState() for name in rule_set.specs}
         self.last_arrival_s: float | None = None
         self.last_line_index: int | None = None
         self.last_direction: str | None = None
@@ -109,7 +110,7 @@ class _ScanState:
                     "true_count": st.true_count,
                     "clear_count": st.clear_count,
                     "raised": st.raised,
-                    "memo": st.memo,
+                    "memo": {} if st.memory is None else st.memory.to_json(),
                 }
                 for name, st in self.rules.items()
             },
@@ -132,12 +133,13 @@ class _ScanState:
         out.baseline = RollingBaseline.from_state(state["baseline"])
         for name, st in state["rules"].items():
             if name in out.rules:  # rules removed from the config are forgotten
+                detector = rule_set.detectors.get(name)
                 out.rules[name] = _RuleState(
                     active=bool(st["active"]),
                     true_count=int(st["true_count"]),
                     clear_count=int(st["clear_count"]),
                     raised=st["raised"],
-                    memo=dict(st["memo"] or {}),
+                    memory=None if detector is None else detector.memory(st["memo"] or {}),
                 )
         out.last_arrival_s = state["last_arrival_s"]
         out.last_line_index = state["last_line_index"]
@@ -183,9 +185,7 @@ class RuleEngine:
         if scan.rule_set.config == rules:
             return
         scan.rule_set = self._default if rules == self._default.config else _RuleSet(rules)
-        scan.rules = {
-            name: scan.rules.get(name) or _RuleState(memo={}) for name in scan.rule_set.specs
-        }
+        scan.rules = {name: scan.rules.get(name) or _RuleState() for name in scan.rule_set.specs}
 
     # -- events -------------------------------------------------------------------------
 
@@ -222,15 +222,13 @@ class RuleEngine:
     def _raise(self, st: _RuleState, event: AlertEvent) -> AlertEvent:
         st.active, st.clear_count, st.true_count = True, 0, 0
         st.raised = event.to_dict()
-        memo = st.memo if st.memo is not None else {}
-        if "pending" in memo:
-            memo["raised"] = memo.pop("pending")
-        st.memo = memo
+        if st.memory is not None:
+            st.memory.on_raised()
         return event
 
     def _clear(self, st: _RuleState, event: AlertEvent) -> AlertEvent:
         st.active, st.clear_count, st.true_count, st.raised = False, 0, 0, None
-        st.memo = {}
+        st.memory = None  # the detector starts afresh
         return event
 
     # -- evaluation ---------------------------------------------------------------------
@@ -290,11 +288,11 @@ class RuleEngine:
         if scan.last_arrival_s is not None:
             events += self._clear_stalls(scan_id, scan, now_s, f"line {metrics.line_index} arrived")
         observed: dict[str, Observation] = {}
-        for name, detect in scan.rule_set.detectors.items():
+        for name, detector in scan.rule_set.detectors.items():
             st = scan.rules[name]
-            memo = st.memo if st.memo is not None else {}
-            st.memo = memo
-            obs = detect(metrics, scan.baseline, memo)
+            if st.memory is None:
+                st.memory = detector.memory({})
+            obs = detector.detect(metrics, scan.baseline, st.memory)
             if obs is not None:
                 observed[name] = obs
         any_raise_cond = any(obs.raise_cond for obs in observed.values())
@@ -350,8 +348,8 @@ class RuleEngine:
                     message=obs.message,
                 )
                 return self._raise(st, ev)
-            if not obs.raise_cond and st.memo:
-                st.memo.pop("pending", None)
+            if not obs.raise_cond and st.memory is not None:
+                st.memory.on_quiet()
             return None
         if obs.clear_now:
             st.clear_count = spec.clear_lines
