@@ -332,3 +332,63 @@ def test_readable_alert_lines_only_on_a_plain_console(
         assert sink._console is expected
     finally:
         sink.close()
+
+
+# -- the registry of alerts raised outside the rule engine ---------------------------------
+
+
+def test_active_alerts_pair_a_clear_with_its_raise_and_survive_a_restart(tmp_path: Path) -> None:
+    """A raise is remembered per (scan, rule) and saved; its clear (same scan and rule)
+    forgets it; a registry loaded from the saved file knows what is still raised."""
+    from strayline.alerts import ActiveAlerts
+
+    path = tmp_path / "state" / "delivered_alerts.json"
+    registry = ActiveAlerts(path)
+    other_scan = dataclasses.replace(EVENT, scan_id="day-run")
+    registry.note(EVENT)
+    registry.note(other_scan)
+    registry.save()
+    assert ActiveAlerts(path).active() == (EVENT, other_scan)
+    assert registry.raised("fluorescence_lost") == other_scan  # the latest noted
+    registry.note(dataclasses.replace(EVENT, state="cleared"))
+    registry.save()
+    assert ActiveAlerts(path).active() == (other_scan,)
+    assert len(registry) == 1
+
+
+def test_active_alerts_save_only_what_changed_and_say_why_a_save_failed(
+    tmp_path: Path,
+) -> None:
+    """Noting the same raise twice writes nothing new; a clear with no raise changes
+    nothing; a registry that cannot be written raises StoreError naming the file."""
+    from strayline.alerts import ActiveAlerts
+    from strayline.errors import StoreError
+
+    path = tmp_path / "delivered_alerts.json"
+    registry = ActiveAlerts(path)
+    registry.note(dataclasses.replace(EVENT, state="cleared"))
+    registry.save()
+    assert not path.exists()
+    registry.note(EVENT)
+    registry.save()
+    stamp = path.stat().st_mtime_ns
+    registry.note(EVENT)
+    registry.save()
+    assert path.stat().st_mtime_ns == stamp
+    blocked = ActiveAlerts(tmp_path / "in_the_way")
+    (tmp_path / "in_the_way").mkdir()
+    blocked.note(EVENT)
+    with pytest.raises(StoreError, match=r"in_the_way: delivered alerts could not be saved"):
+        blocked.save()
+    assert blocked.active() == (EVENT,)  # still noted in memory
+
+
+def test_an_unreadable_registry_is_logged_and_taken_as_empty(tmp_path: Path) -> None:
+    """A registry file that is not JSON starts an empty registry, with a warning."""
+    from strayline.alerts import ActiveAlerts
+
+    path = tmp_path / "delivered_alerts.json"
+    path.write_text("{not json", encoding="utf-8")
+    with capture_logs() as logs:
+        assert ActiveAlerts(path).active() == ()
+    assert [r["event"] for r in logs] == ["delivered_alerts_unreadable"]

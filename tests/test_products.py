@@ -147,6 +147,7 @@ def write_store(
     raw_spectra: bool = False,
     config_json: dict[str, Any] | None = None,
     seed: int = 5,
+    nv_axis_rad: tuple[float, float] | None = None,
 ) -> tuple[Path, dict[str, np.ndarray]]:
     """A scan store holding ``b_nv_t`` row by row; returns its path and the written maps."""
     n_lines, n_pixels = b_nv_t.shape
@@ -161,6 +162,7 @@ def write_store(
         x_m=x,
         config_json=config_json or {"note": "synthetic"},
         config_digest="feedface",
+        nv_axis_rad=nv_axis_rad,
         raw_spectra=raw_spectra,
         compression_level=1,
         durable=False,
@@ -861,6 +863,22 @@ def test_cli_products_uses_the_store_records(
     assert data["nv_axis"]["phi_rad"] == pytest.approx(PHI)
 
 
+def test_cli_products_take_the_nv_axis_the_store_recorded(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """A store opened with the scan's NV axis records it in its attributes, so
+    ``strayline products`` finds it with neither raw spectra nor source line files."""
+    b = patch_field_t(8, 40e-9, 200e-9) @ nv_axis(THETA, PHI)
+    store, _ = write_store(
+        tmp_path / "out", b, np.zeros(b.shape, np.uint8), scan_id="axis", nv_axis_rad=(THETA, PHI)
+    )
+    assert main(["products", str(store), "--no-images"]) == 0
+    capsys.readouterr()
+    data = json.loads((tmp_path / "out" / "axis.products" / REPORT_JSON).read_text("utf-8"))
+    assert data["nv_axis"]["theta_rad"] == pytest.approx(THETA)
+    assert data["nv_axis"]["phi_rad"] == pytest.approx(PHI)
+
+
 def test_cli_products_options_override(
     small_store: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
@@ -902,7 +920,7 @@ def test_cli_products_errors(
     bare, _ = write_store(tmp_path / "bare", b, np.zeros(b.shape, np.uint8), scan_id="bare")
     assert main(["products", str(bare)]) == 1
     assert (
-        "bare.zarr: the NV axis is recorded neither in raw spectra nor in a readable source "
+        "bare.zarr: the NV axis is recorded neither in the store nor in a readable source "
         "line file; give it (--nv-theta-deg, --nv-phi-deg)"
     ) in capsys.readouterr().err
     with pytest.raises(SystemExit):

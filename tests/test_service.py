@@ -435,3 +435,49 @@ def test_under_journald_console_lines_carry_priority_prefixes(tmp_path: Path) ->
     assert any(x.startswith("<4>line_quarantined ") for x in lines)
     assert not any(re.search(r"\d{4}-\d\d-\d\dT\d\d:\d\d", x.split(" ")[0]) for x in lines)
     json.dumps(lines)  # plain text, nothing binary
+
+
+# ------------------------------------------------------------------ retries and backoff
+
+
+def test_an_unreadable_file_is_retried_later_each_time_then_given_up() -> None:
+    """A file that cannot be read waits 4, 16, 64, 256 and 300 s (4^n s, capped at
+    5 × the output retry cap) before its retries and is given up at the sixth failure;
+    a file read at last is forgotten."""
+    from strayline.service._guards import UNREADABLE_ATTEMPTS, UnreadableFiles
+    from strayline.watch import ReadyFile
+
+    queue = UnreadableFiles()
+    ready = ReadyFile(Path("/w/scan/line_00001_fwd.h5"), 1024, 0, "ready")
+    delays = []
+    now = 0.0
+    while (delay := queue.failed(ready, "EIO", now)) is not None:
+        delays.append(delay)
+        assert queue.due(now) == []
+        assert queue.next_try_s() == now + delay
+        now += delay
+        assert queue.due(now) == [ready]
+    assert delays == [4.0, 16.0, 64.0, 256.0, 300.0]
+    assert len(delays) == UNREADABLE_ATTEMPTS - 1
+    assert queue.next_try_s() is None
+    assert queue.failed(ready, "EIO", now) == 4.0  # given up: a new failure starts afresh
+    queue.read(ready.path)
+    queue.due(now + 4.0)
+    assert queue.failed(ready, "EIO", now) == 4.0
+
+
+def test_an_outage_backs_off_doubling_up_to_the_cap() -> None:
+    """The first retry comes after RETRY_FIRST_S; each failed retry doubles the delay up
+    to RETRY_MAX_S (exponential backoff, common practice)."""
+    from strayline.service._guards import RETRY_FIRST_S, RETRY_MAX_S, Outage
+
+    outage = Outage.begin("disk gone", 100.0)
+    assert outage.next_try_s == 100.0 + RETRY_FIRST_S
+    waits = []
+    for _ in range(9):
+        outage.failed_again(200.0)
+        waits.append(outage.next_try_s - 200.0)
+    assert waits[:3] == [2 * RETRY_FIRST_S, 4 * RETRY_FIRST_S, 8 * RETRY_FIRST_S]
+    assert waits[-1] == RETRY_MAX_S
+    assert outage.since_s == 100.0
+    assert outage.reason == "disk gone"

@@ -23,6 +23,7 @@ from strayline.errors import LineFileError, StoreError
 from strayline.field import LineField
 from strayline.fit import FitStatus, LineFit
 from strayline.lines import ScanLine
+from strayline.store import open_store_reader
 from strayline.store._ledger import Ledger, format_time, parse_records, parse_time
 from strayline.store.scan_store import MAP_NAMES, ScanStore, StoreMismatch, line_rows
 
@@ -291,6 +292,21 @@ def test_reopening_with_another_config_keeps_both(tmp_path: Path) -> None:
     assert entry.config_digest == "beef0002"
     assert attrs["config_digest"] == DIGEST
     assert attrs["other_configs"] == {"beef0002": other}
+
+
+def test_the_nv_axis_is_recorded_at_creation_and_added_to_an_older_store(
+    tmp_path: Path,
+) -> None:
+    """A store opened with the scan's NV axis records θ and φ (rad) in its attributes; a
+    store made without it gets them on its next open, and the reader hands them out."""
+    with open_store(tmp_path / "new", nv_axis_rad=(0.9553, 0.7854)) as store:
+        attrs = zarr.open_group(store.path, mode="r").attrs.asdict()
+    assert (attrs["nv_theta_rad"], attrs["nv_phi_rad"]) == (0.9553, 0.7854)
+    open_store(tmp_path / "old").close()
+    path = tmp_path / "old" / "scan7.zarr"
+    assert open_store_reader(path).nv_axis_rad() is None
+    open_store(tmp_path / "old", nv_axis_rad=(0.5, 1.0)).close()
+    assert open_store_reader(path).nv_axis_rad() == (0.5, 1.0)
 
 
 # ---------------------------------------------------------------------------- validation
@@ -729,3 +745,27 @@ def test_a_store_deleted_while_open_refuses_to_commit(tmp_path: Path) -> None:
     finally:
         with contextlib.suppress(StoreError):
             store.close()
+
+
+def test_the_reader_tells_a_store_from_a_folder_that_is_not_one(tmp_path: Path) -> None:
+    """The read-only reader refuses a folder without group metadata and a zarr group of
+    another format (NotAScanStore, naming the folder); a folder of chunks with neither
+    metadata nor ledger is an orphan, a store is not."""
+    from strayline.store import NotAScanStore, is_orphaned_store, store_metadata_present
+
+    chunks = tmp_path / "gone.zarr" / "forward" / "field_nv_t" / "c" / "0"
+    chunks.mkdir(parents=True)
+    with pytest.raises(NotAScanStore, match=r"gone\.zarr: cannot open as a scan store"):
+        open_store_reader(tmp_path / "gone.zarr")
+    assert is_orphaned_store(tmp_path / "gone.zarr")
+    zarr.open_group(tmp_path / "other.zarr", mode="w").attrs["store_format"] = "elsewhere"
+    with pytest.raises(NotAScanStore, match=r"store_format must be 'strayline-store'"):
+        open_store_reader(tmp_path / "other.zarr")
+    with open_store(tmp_path) as store:
+        store.write_line(*make_records(0))
+        assert store_metadata_present(store.path)
+        assert not is_orphaned_store(store.path)
+        reader = open_store_reader(store.path)
+    assert reader.scan_id == "scan7"
+    assert reader.committed_lines("forward") == [0]
+    assert reader.read_array("status", "forward").shape == (N_LINES, N_PIXELS)

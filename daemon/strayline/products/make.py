@@ -64,7 +64,6 @@ __all__ = [
     "ProductsReport",
     "SkippedProduct",
     "make_products",
-    "nv_axis_of_store",
     "products_dir",
     "remake_products",
 ]
@@ -138,17 +137,6 @@ def products_dir(output_root: Path, folder: Path | None, scan_id: str) -> Path:
     return Path(folder if folder is not None else output_root) / f"{scan_id}.products"
 
 
-def nv_axis_of_store(store_path: Path) -> tuple[float, float] | None:
-    """The NV axis (θ, φ), rad, recorded for a scan (raw spectra or source files), or None.
-
-    Raises
-    ------
-    StoreError
-        If ``store_path`` is not a readable scan store.
-    """
-    return nv_axis_from_store(read_snapshot(Path(store_path)))
-
-
 def remake_products(
     store_path: Path,
     *,
@@ -164,8 +152,9 @@ def remake_products(
     wrote the scan): ``standoff_m`` from ``products.standoff_nm``, ``images`` from
     ``products.images``, ``out_dir`` = ``<products.folder or the store's folder>/
     <scan_id>.products``, ``alert_log`` = ``paths.alert_log`` if that file exists, else
-    ``alerts.jsonl`` beside the store if it exists. The NV axis comes from the stored raw
-    spectra or the committed lines' source files (:func:`nv_axis_of_store`).
+    ``alerts.jsonl`` beside the store if it exists. The NV axis comes from the store's
+    attributes (or, for a store written before stores recorded it, from its raw spectra
+    or the committed lines' source files).
 
     Raises
     ------
@@ -197,7 +186,7 @@ def remake_products(
         nv_axis_rad = nv_axis_from_store(snapshot)
     if nv_axis_rad is None:
         raise ValueError(
-            f"{store_path.name}: the NV axis is recorded neither in raw spectra nor in a "
+            f"{store_path.name}: the NV axis is recorded neither in the store nor in a "
             "readable source line file; give it (--nv-theta-deg, --nv-phi-deg)"
         )
     return make_products(
