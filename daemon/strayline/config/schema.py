@@ -63,18 +63,7 @@ from strayline.rules import RulesConfig, load_rules
 
 __all__ = [
     "PROFILE_SECTIONS",
-    "AlertsSection",
     "Config",
-    "FieldSection",
-    "FitSection",
-    "LimitsSection",
-    "LoggingSection",
-    "PathsSection",
-    "ProductsSection",
-    "ProfileRule",
-    "ServiceSection",
-    "StoreSection",
-    "WatchSection",
     "config_digest",
     "config_from_mapping",
     "load_config",

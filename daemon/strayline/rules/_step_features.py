@@ -13,17 +13,15 @@ Pure numpy over the rows of :func:`~strayline.rules.metrics.comparison_rows`; no
 from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
-from typing import TYPE_CHECKING
+from dataclasses import dataclass
 
 import numpy as np
 
 from strayline.physics.constants import D_ROOM_HZ, GAMMA_NV_HZ_PER_T
 from strayline.rules._steps import Segment, best_energy_segment, best_level_segment
 
-if TYPE_CHECKING:
-    from strayline.rules.metrics import MetricsOptions
-
 __all__ = [
+    "MetricsOptions",
     "change_fields",
     "common_mode_sigma",
     "nanmedian",
@@ -32,6 +30,40 @@ __all__ = [
     "row_mean",
     "steady_fields",
 ]
+
+
+@dataclass(frozen=True)
+class MetricsOptions:
+    """How line metrics are computed; settled once, shared by every line.
+
+    Attributes
+    ----------
+    change_sigma : float
+        A pixel's field change counts as significant above this many 1σ of the difference.
+    reference_lines : int
+        Lines of the same direction whose per-pixel median forms the *reference* a step is
+        checked against (``{ch}_step_ref``, ``{ch}_step_held``): the median of three lines
+        ignores one odd line among them, the previous line included.
+    min_step_pixels : int
+        Smallest pixel range (and remainder of the line) the field-roughness step search
+        considers (a roughness sum needs many pixels to be stable).
+        Also the smallest range of the PL step search.
+    min_level_pixels : int
+        Smallest pixel range (and remainder) the centre-mean step search considers: a
+        touch of the sample can shift the resonances over only a few pixels.
+    transverse_change_ratio : float
+        Assumed |ΔB⊥| / |ΔB∥| of the sample's own field change between two lines, for the
+        common-mode noise model (see :func:`common_mode_sigma`): the stray field of a
+        planar source has in-plane and out-of-plane Fourier components of equal size,
+        |b̃ₓ|² + |b̃ᵧ|² = |b̃_z|² (Casola, van der Sar & Yacoby, Nat. Rev. Mater. 3, 17088
+        (2018), Box 2), so the two changes are of the same order.
+    """
+
+    change_sigma: float = 5.0
+    reference_lines: int = 3
+    min_step_pixels: int = 16
+    min_level_pixels: int = 4
+    transverse_change_ratio: float = 1.0
 
 
 def common_mode_sigma(
