@@ -119,7 +119,9 @@ def run_demo(
     )
     folder = folder.absolute()
     config = demo_config(folder)
-    store_path = config.paths.output_root / f"{_SCAN_ID}.zarr"
+    from strayline.store import store_path as scan_store_path
+
+    store_path = scan_store_path(config.paths.output_root, _SCAN_ID)
     if store_path.exists():
         print(
             f"strayline demo: {folder} already holds a demo run ({store_path}); "
@@ -192,8 +194,9 @@ def _print_summary(config: Config, truth_dir: Path) -> None:
     from demo_stream.truth import load_truth
     from strayline.alerts import read_alert_log
     from strayline.products import products_dir
+    from strayline.store import store_path as scan_store_path
 
-    store_path = config.paths.output_root / f"{_SCAN_ID}.zarr"
+    store_path = scan_store_path(config.paths.output_root, _SCAN_ID)
     events = read_alert_log(config.paths.alert_log, scan_id=_SCAN_ID)
     raised = [e for e in events if e.state == "raised"]
     print()
