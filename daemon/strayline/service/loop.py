@@ -16,7 +16,8 @@ The only module that talks to systemd and handles signals.
   file on a retry list and retries with backoff, and, once writing works again, lists the
   watch root anew so that no line is lost. A missing watch root is waited for.
 
-``process_folder`` runs exactly the same pipeline once over what is there.
+:func:`strayline.pipeline.process_folder` runs exactly the same pipeline once over what is
+there.
 """
 
 from __future__ import annotations
