@@ -420,3 +420,22 @@ def test_results_do_not_depend_on_the_thread_count():
         numba.set_num_threads(threads)
     for name in ("center_hz", "center_sigma_hz", "fwhm_hz", "contrast", "status", "n_iter"):
         np.testing.assert_array_equal(getattr(many, name), getattr(one, name))
+
+
+def test_every_fit_model_fits_the_shortest_spectrum_the_contract_accepts() -> None:
+    """The file contract and the fitter agree: every model (one or two dips, shared or
+    separate widths, with or without slope and hyperfine structure) fits a spectrum of
+    MIN_FREQ points, the fewest a line file may have, without an error."""
+    import itertools
+
+    from strayline.fit import FitModel
+    from strayline.lines import MIN_FREQ, LineLimits
+
+    assert LineLimits().min_freq == MIN_FREQ
+    freq = np.linspace(2.82e9, 2.92e9, MIN_FREQ)
+    counts = np.full((3, MIN_FREQ), 500.0)
+    for n_dips, shared, hyperfine, slope in itertools.product(
+        (1, 2), (True, False), (None, "14N", "15N"), (True, False)
+    ):
+        model = FitModel(n_dips=n_dips, shared_width=shared, hyperfine=hyperfine, fit_slope=slope)
+        assert fit_line(freq, counts, model).status.shape == (3,)

@@ -26,6 +26,7 @@ from strayline.errors import LineFileError
 from strayline.lines import (
     FORMAT_NAME,
     FORMAT_VERSION,
+    MIN_FREQ,
     LineLimits,
     ScanLine,
     is_temporary_name,
@@ -326,7 +327,7 @@ COUNT_DTYPES = [np.uint16, np.int32, np.int64, np.float32, np.float64]
 def scan_lines(draw: st.DrawFn) -> ScanLine:
     """Random valid lines: non-uniform grids, integer or float counts, optional fields."""
     n_pixels = draw(st.integers(1, 12))
-    n_freq = draw(st.integers(3, 24))
+    n_freq = draw(st.integers(MIN_FREQ, 24))
     seed = draw(st.integers(0, 2**32 - 1))
     rng = np.random.default_rng(seed)
     steps = rng.uniform(1e3, 5e7, n_freq - 1)  # non-uniform, strictly positive
@@ -699,7 +700,7 @@ MALFORMED: list[tuple[str, Callable[[h5py.File], None], str]] = [
     (
         "too few frequencies",
         _dataset("freq_hz", FREQ[:2], "Hz"),
-        "dataset 'freq_hz' must be 3 to 4096 frequencies long (limits.min_freq, "
+        "dataset 'freq_hz' must be 10 to 4096 frequencies long (limits.min_freq, "
         "limits.max_freq); found 2 frequencies",
     ),
 ]
@@ -713,6 +714,66 @@ def test_malformed_file_is_rejected_with_its_cause(
 ) -> None:
     """Each breach of the contract raises LineFileError naming file, field, expected, found."""
     assert rejected(tampered(valid_file, change)) == f"{NAME}: {message}"
+
+
+def test_three_frequencies_are_refused_as_too_few_to_fit(valid_file: Path) -> None:
+    """A spectrum of three points (once within the contract, then a crash of the fitter)
+    is refused by the reader: the contract asks for MIN_FREQ = 10 points."""
+    assert MIN_FREQ == DEFAULT_LIMITS.min_freq == 10
+    message = rejected(tampered(valid_file, _dataset("freq_hz", FREQ[:3], "Hz")))
+    assert message == (
+        f"{NAME}: dataset 'freq_hz' must be 10 to 4096 frequencies long (limits.min_freq, "
+        "limits.max_freq); found 3 frequencies"
+    )
+
+
+def _oversized_chunk(h5: h5py.File) -> None:
+    """counts of a legal shape in one gzip chunk declared far larger than the dataset (a
+    decompression bomb in small: 4096 x 512 float64 = 16 MiB to inflate for 256 x 201)."""
+    del h5["counts"]
+    ds = h5.create_dataset(
+        "counts",
+        data=np.full((N_PIXELS, N_FREQ), 300.0),
+        maxshape=(None, None),
+        chunks=(4096, 512),
+        compression="gzip",
+    )
+    ds.attrs["units"] = "counts"
+
+
+def test_a_chunk_that_inflates_beyond_the_read_limit_is_refused_before_reading(
+    valid_file: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """A dataset whose chunks would decompress to more than max_pixels x max_freq float64
+    values is refused from its metadata alone, naming the chunk shape and the bytes, and
+    its values are never read (common practice against decompression bombs)."""
+    limits = LineLimits(max_pixels=512, max_freq=512)  # read limit 2 MiB
+    path = tampered(valid_file, _oversized_chunk)
+    read: list[object] = []
+    monkeypatch.setattr(lines_module.FileFields, "values", lambda self, ds: read.append(ds))
+    assert rejected(path, limits) == (
+        f"{NAME}: dataset 'counts' must be chunked to decompress at most 2097152 bytes "
+        "when read (limits.max_pixels x limits.max_freq float64 values); found chunks of "
+        "shape (4096, 512) for shape (256, 201): 16777216 bytes to decompress"
+    )
+    assert read == []  # refused from metadata: nothing was read
+
+
+def test_a_resizable_chunked_file_within_the_limit_is_read(valid_file: Path) -> None:
+    """Chunking and compression as an acquisition program writes them (h5py's own chunk
+    choice for a resizable dataset) are accepted and read back exactly."""
+
+    def chunked(h5: h5py.File) -> None:
+        data = h5["counts"][()]
+        del h5["counts"]
+        ds = h5.create_dataset(
+            "counts", data=data, maxshape=(None, N_FREQ), chunks=True, compression="gzip"
+        )
+        ds.attrs["units"] = "counts"
+
+    before = read_line_file(valid_file).counts
+    line = read_line_file(tampered(valid_file, chunked))
+    np.testing.assert_array_equal(line.counts, before)
 
 
 def test_truncated_file_is_rejected(valid_file: Path) -> None:
@@ -784,7 +845,7 @@ def test_too_many_frequencies_is_rejected(valid_file: Path) -> None:
     """A spectrum longer than limits.max_freq is refused."""
     tampered(valid_file, _dataset("freq_hz", np.linspace(2.8e9, 2.9e9, 5000), "Hz"))
     assert rejected(valid_file) == (
-        f"{NAME}: dataset 'freq_hz' must be 3 to 4096 frequencies long (limits.min_freq, "
+        f"{NAME}: dataset 'freq_hz' must be 10 to 4096 frequencies long (limits.min_freq, "
         "limits.max_freq); found 5000 frequencies"
     )
 

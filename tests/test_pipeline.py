@@ -763,3 +763,39 @@ def test_a_profile_rule_override_applies_to_its_scans_only(tmp_path: Path) -> No
     assert raised["plain-scan"] == {"fluorescence_lost"}
     assert raised["dim-scan"]
     assert "fluorescence_lost" not in raised["dim-scan"]
+
+
+def test_an_unexpected_error_on_a_line_sets_the_file_aside_with_a_note_and_an_alert(
+    scan_files: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """A line the reader accepts but the daemon fails on (a fault of ours) is neither
+    dropped in silence nor retried forever: `process` moves it to the quarantine with a
+    sidecar naming the error and raises a bad_file warning, and the pass carries on."""
+    import strayline.pipeline.line_pipeline as pipeline_module
+    from strayline.pipeline import process_folder
+
+    folder = _copy_scan(scan_files, tmp_path)
+    config = _config(tmp_path)
+    real_fit = pipeline_module.fit_line
+
+    calls: list[int] = []
+
+    def fails_on_line_2(freq_hz: Any, counts: Any, model: Any) -> Any:
+        calls.append(1)
+        if len(calls) == 3:
+            raise IndexError("index 3 is out of bounds")
+        return real_fit(freq_hz, counts, model)
+
+    monkeypatch.setattr(pipeline_module, "fit_line", fails_on_line_2)
+    summary = process_folder(config, folder)
+    assert (summary.files, summary.written, summary.quarantined) == (N_LINES, N_LINES - 1, 1)
+    (aside,) = (folder / "_quarantine").glob("*.h5")
+    note = json.loads(aside.with_name(aside.name + ".error.json").read_text())
+    assert note["field"] == "processing"
+    assert note["found"] == (
+        "IndexError: index 3 is out of bounds (a fault of strayline; please report it)"
+    )
+    events = read_alert_log(config.paths.alert_log)
+    assert [(e.rule, e.severity) for e in events if e.rule == "bad_file"] == [
+        ("bad_file", "warning")
+    ]

@@ -127,10 +127,19 @@ class FileFields:
         Path prefix of ``group`` inside the file for messages, e.g. ``"aux/"``.
     """
 
-    def __init__(self, path: Path, group: h5py.Group, prefix: str = "") -> None:
+    def __init__(
+        self, path: Path, group: h5py.Group, prefix: str = "", *, max_read_bytes: int
+    ) -> None:
         self.path = path
         self.group = group
         self.prefix = prefix
+        self.max_read_bytes = max_read_bytes
+
+    def subgroup(self, name: str) -> FileFields:
+        """The fields of the subgroup ``name`` (same file, same read limit)."""
+        return FileFields(
+            self.path, self.group[name], f"{self.prefix}{name}/", max_read_bytes=self.max_read_bytes
+        )
 
     def fail(self, field: str, expected: str, found: str) -> NoReturn:
         raise LineFileError(self.path, field, expected, found)
@@ -213,7 +222,31 @@ class FileFields:
             self.fail(field, "stored inside this file", "a virtual or external dataset")
         if obj.dtype.kind not in "iuf":
             self.fail(field, "of integer or floating-point dtype", describe_dtype(obj.dtype))
+        self._check_read_size(obj, field)
         return obj
+
+    def _check_read_size(self, dataset: h5py.Dataset, field: str) -> None:
+        """Refuse a dataset whose chunks would decompress to more than the read limit.
+
+        HDF5 decompresses whole chunks, and a chunk may be declared far larger than the
+        dataset (with an unlimited ``maxshape``): a file of a few MB can hold one gzip chunk
+        of GiB. Reading the dataset decompresses every chunk it touches, so that product is
+        bounded here from metadata alone, before anything is read.
+        """
+        if dataset.chunks is None:  # contiguous: its size is its shape, checked elsewhere
+            return
+        n_chunks = math.prod(
+            -(-size // chunk) for size, chunk in zip(dataset.shape, dataset.chunks, strict=True)
+        )
+        read_bytes = n_chunks * math.prod(dataset.chunks) * dataset.dtype.itemsize
+        if read_bytes > self.max_read_bytes:
+            self.fail(
+                field,
+                f"chunked to decompress at most {self.max_read_bytes} bytes when read "
+                "(limits.max_pixels x limits.max_freq float64 values)",
+                f"chunks of shape {dataset.chunks} for shape {dataset.shape}: "
+                f"{read_bytes} bytes to decompress",
+            )
 
     def units(self, dataset: h5py.Dataset, name: str, expected: str | None) -> str:
         """The dataset's ``units`` string attribute; must equal ``expected`` if given."""

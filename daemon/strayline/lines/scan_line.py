@@ -33,6 +33,7 @@ __all__ = [
     "FORMAT_NAME",
     "FORMAT_VERSION",
     "HDF5_SIGNATURE",
+    "MIN_FREQ",
     "Direction",
     "LineLimits",
     "ScanLine",
@@ -49,6 +50,10 @@ FORMAT_VERSION = 1
 
 Direction = Literal["forward", "backward"]
 DIRECTIONS: tuple[Direction, ...] = ("forward", "backward")
+#: Fewest frequencies a spectrum of the contract has: two more than the eight parameters
+#: of the richest fit model (two dips, separate widths, baseline slope), so that every
+#: line the reader accepts can be fitted.
+MIN_FREQ = 10
 _DIRECTION_TAG = {"forward": "fwd", "backward": "bwd"}
 
 #: The 8-byte HDF5 format signature; found at offset 0 or, after a user block, at 512,
@@ -147,7 +152,8 @@ class LineLimits:
     max_freq : int
         Most microwave frequencies per spectrum.
     min_freq : int
-        Fewest frequencies per spectrum (a dip needs at least three points).
+        Fewest frequencies per spectrum: :data:`MIN_FREQ`, what the richest fit model
+        needs, so that every spectrum the contract accepts can be fitted.
     max_file_bytes : int
         Largest file, bytes (the reader holds the whole file in memory once).
     max_lines_planned : int
@@ -158,10 +164,16 @@ class LineLimits:
 
     max_pixels: int = 8192
     max_freq: int = 4096
-    min_freq: int = 3
+    min_freq: int = MIN_FREQ
     max_file_bytes: int = 1 << 30
     max_lines_planned: int = 1 << 16
     max_aux: int = 32
+
+    @property
+    def max_read_bytes(self) -> int:
+        """Most bytes reading one dataset may decompress: the largest array the contract
+        allows, ``counts`` of ``max_pixels`` × ``max_freq`` float64 values."""
+        return self.max_pixels * self.max_freq * 8
 
     def __post_init__(self) -> None:
         for name in (
@@ -185,7 +197,7 @@ class LineLimits:
 _NO_LIMITS = LineLimits(
     max_pixels=1 << 62,
     max_freq=1 << 62,
-    min_freq=3,
+    min_freq=MIN_FREQ,
     max_file_bytes=1 << 62,
     max_lines_planned=1 << 62,
     max_aux=1 << 62,
@@ -302,7 +314,9 @@ def parse_line_bytes(
     digest = hashlib.sha256(data).hexdigest()
     try:
         with h5py.File(io.BytesIO(data), "r") as h5:
-            return _parse(FileFields(source, h5), limits, digest)
+            return _parse(
+                FileFields(source, h5, max_read_bytes=limits.max_read_bytes), limits, digest
+            )
     except LineFileError:
         raise
     except (OSError, RuntimeError, KeyError, ValueError, TypeError) as exc:
@@ -450,7 +464,7 @@ def _aux_datasets(
         return {}
     if not isinstance(link, h5py.HardLink) or not isinstance(ff.group["aux"], h5py.Group):
         ff.fail("group 'aux'", "a group stored in this file", f"a {type(ff.group['aux']).__name__}")
-    aux_ff = FileFields(ff.path, ff.group["aux"], prefix="aux/")
+    aux_ff = ff.subgroup("aux")
     names = sorted(aux_ff.group.keys())
     if len(names) > limits.max_aux:
         ff.fail(

@@ -53,7 +53,12 @@ def process_folder(config: Config, folder: Path) -> ProcessSummary:
     outcomes: list[LineOutcome] = []
     try:
         for path in sorted(listing.files, key=lambda p: (p.parent, p.name)):
-            outcomes.append(pipeline.process(path))
+            try:
+                outcomes.append(pipeline.process(path))
+            except OSError:  # the store failing, or the file unreadable: stop the pass
+                raise
+            except Exception as error:  # a fault of ours: set the file aside, carry on
+                outcomes.append(pipeline.set_aside(path, error))
     finally:
         pipeline.close()
     return _summarise(outcomes)

@@ -235,6 +235,22 @@ class LinePipeline:
         error = LineFileError(path, "file", "complete and readable in time", reason)
         return self._quarantine(path, error)
 
+    def set_aside(self, path: Path, error: Exception) -> LineOutcome:
+        """Quarantine a file whose processing failed with an unexpected error (a fault of
+        strayline's, not of the file as far as the checks know), with a note and an alert,
+        so that it is neither dropped in silence nor retried on every start; it can be
+        processed again once the fault is fixed."""
+        self._log.error(
+            "line_failed",
+            file=str(path),
+            error=f"{type(error).__name__}: {error}",
+            exc_info=(type(error), error, error.__traceback__),
+        )
+        found = f"{type(error).__name__}: {error} (a fault of strayline; please report it)"
+        return self._quarantine(
+            path, LineFileError(path, "processing", "a line strayline can process", found)
+        )
+
     def tick(self, now: float | None = None) -> tuple[AlertEvent, ...]:
         """Evaluate time-based rules (acquisition stalled) and deliver their events."""
         events = tuple(self._engine.evaluate_tick(now))

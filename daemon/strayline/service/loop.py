@@ -261,9 +261,8 @@ class Service:
         except OSError as exc:  # the line file itself cannot be read: try again later
             self._note_unreadable(ready, exc)
             return True
-        except Exception:  # our own bug: keep the file, log it whole, carry on
-            self._log.exception("line_failed", file=str(ready.path))
-            return True
+        except Exception as exc:  # our own bug: set the file aside, alert, carry on
+            outcome = self.pipeline.set_aside(ready.path, exc)
         self._unreadable.read(ready.path)
         if outcome.scan_id is not None:
             self._last_scan_id = outcome.scan_id
