@@ -799,3 +799,29 @@ def test_an_unexpected_error_on_a_line_sets_the_file_aside_with_a_note_and_an_al
     assert [(e.rule, e.severity) for e in events if e.rule == "bad_file"] == [
         ("bad_file", "warning")
     ]
+
+
+def test_a_process_pass_takes_lines_in_acquisition_order(tmp_path: Path) -> None:
+    """`process` takes a scan's files as the instrument wrote them (by line index, the
+    forward trace before the backward one), not in name order, where line_00002_bwd
+    sorts before line_00002_fwd; so the pass and the live daemon see the same sequence."""
+    from strayline.pipeline import process_folder
+    from strayline.pipeline.folder import acquisition_order
+    from strayline.store._ledger import read_ledger_state
+
+    names = ["notes.h5", "line_00010_fwd.h5", "line_00002_bwd.h5", "line_00002_fwd.h5"]
+    ordered = sorted((tmp_path / "s" / n for n in names), key=acquisition_order)
+    assert [p.name for p in ordered] == [
+        "line_00002_fwd.h5",
+        "line_00002_bwd.h5",
+        "line_00010_fwd.h5",
+        "notes.h5",
+    ]
+    scan = ds.DemoConfig(
+        scene=ds.labyrinth(), n_lines=3, n_pixels=16, seed=4, scan_id="both", trace_retrace=True
+    )
+    ds.run_scan(scan, tmp_path / "incoming", tmp_path / "truth")
+    config = _config(tmp_path)
+    process_folder(config, tmp_path / "incoming")
+    state = read_ledger_state(config.paths.output_root / "both.zarr")
+    assert list(state.committed) == [(i, d) for i in range(3) for d in ("forward", "backward")]

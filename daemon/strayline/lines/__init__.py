@@ -11,7 +11,6 @@ from strayline.lines.quarantine import (
     QUARANTINE_DIR,
     QuarantineRecord,
     bad_file_event,
-    line_key_from_name,
     quarantine_file,
 )
 from strayline.lines.scan_line import (
@@ -25,6 +24,7 @@ from strayline.lines.scan_line import (
     is_temporary_name,
     line_file_bytes,
     line_file_name,
+    line_key_from_name,
     parse_line_bytes,
     read_line_file,
     write_line_file,

@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import json
 import os
-import re
 from dataclasses import asdict, dataclass
 from datetime import UTC, datetime
 from pathlib import Path
@@ -18,13 +17,13 @@ from pathlib import Path
 from strayline._atomic import write_text_atomic
 from strayline.alerts import AlertEvent
 from strayline.errors import LineFileError
+from strayline.lines.scan_line import line_key_from_name
 
 __all__ = [
     "BAD_FILE_RULE",
     "QUARANTINE_DIR",
     "QuarantineRecord",
     "bad_file_event",
-    "line_key_from_name",
     "quarantine_file",
 ]
 
@@ -32,24 +31,6 @@ QUARANTINE_DIR = "_quarantine"
 
 #: Rule name of the alert raised for a quarantined file.
 BAD_FILE_RULE = "bad_file"
-
-#: The canonical line-file name (:func:`strayline.lines.line_file_name`), e.g.
-#: ``line_00042_fwd.h5``; the direction tag is optional here.
-_LINE_NAME = re.compile(r"line_(?P<index>\d{1,9})(?:_(?P<tag>fwd|bwd))?\.h5")
-_TAG_DIRECTION = {"fwd": "forward", "bwd": "backward"}
-
-
-def line_key_from_name(name: str) -> tuple[int | None, str | None]:
-    """The line index and direction a file name reveals, (None, None) if it reveals none.
-
-    ``line_00042_fwd.h5`` → ``(42, "forward")``; ``line_00042.h5`` → ``(42, None)``;
-    ``scan.h5`` → ``(None, None)``.
-    """
-    match = _LINE_NAME.fullmatch(name)
-    if match is None:
-        return None, None
-    tag = match.group("tag")
-    return int(match.group("index")), (_TAG_DIRECTION[tag] if tag else None)
 
 
 def bad_file_event(path: Path, error: LineFileError, moved_to: str, now: datetime) -> AlertEvent:

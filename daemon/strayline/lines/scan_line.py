@@ -15,6 +15,7 @@ from __future__ import annotations
 import hashlib
 import io
 import os
+import re
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
@@ -40,6 +41,7 @@ __all__ = [
     "is_temporary_name",
     "line_file_bytes",
     "line_file_name",
+    "line_key_from_name",
     "parse_line_bytes",
     "read_line_file",
     "write_line_file",
@@ -219,6 +221,25 @@ def line_file_name(line_index: int, direction: str) -> str:
     if direction not in _DIRECTION_TAG:
         raise ValueError(f"direction must be 'forward' or 'backward'; found {direction!r}")
     return f"line_{int(line_index):05d}_{_DIRECTION_TAG[direction]}.h5"
+
+
+#: The canonical line-file name (:func:`line_file_name`), e.g.
+#: ``line_00042_fwd.h5``; the direction tag is optional here.
+_LINE_NAME = re.compile(r"line_(?P<index>\d{1,9})(?:_(?P<tag>fwd|bwd))?\.h5")
+_TAG_DIRECTION = {tag: direction for direction, tag in _DIRECTION_TAG.items()}
+
+
+def line_key_from_name(name: str) -> tuple[int | None, str | None]:
+    """The line index and direction a file name reveals, (None, None) if it reveals none.
+
+    ``line_00042_fwd.h5`` → ``(42, "forward")``; ``line_00042.h5`` → ``(42, None)``;
+    ``scan.h5`` → ``(None, None)``.
+    """
+    match = _LINE_NAME.fullmatch(name)
+    if match is None:
+        return None, None
+    tag = match.group("tag")
+    return int(match.group("index")), (_TAG_DIRECTION[tag] if tag else None)
 
 
 def is_temporary_name(name: str) -> bool:

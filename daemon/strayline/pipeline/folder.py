@@ -3,14 +3,16 @@ own pipeline."""
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from pathlib import Path
 
 from strayline.config import Config
+from strayline.lines import line_key_from_name
 from strayline.pipeline.line_pipeline import LineOutcome, LinePipeline
 from strayline.watch import LineNames, list_tree
 
-__all__ = ["ProcessSummary", "process_folder"]
+__all__ = ["ProcessSummary", "acquisition_order", "process_folder"]
 
 
 @dataclass(frozen=True)
@@ -39,8 +41,22 @@ def _summarise(outcomes: list[LineOutcome]) -> ProcessSummary:
     )
 
 
+def acquisition_order(path: Path) -> tuple[Path, float, int, str]:
+    """Sort key of a line file in the order an instrument writes them: per scan folder, by
+    line index, the forward trace before the backward one; names that do not follow the
+    contract's pattern come last, by name."""
+    index, direction = line_key_from_name(path.name)
+    return (
+        path.parent,
+        math.inf if index is None else index,
+        1 if direction == "backward" else 0,
+        path.name,
+    )
+
+
 def process_folder(config: Config, folder: Path) -> ProcessSummary:
-    """Process every line file below ``folder`` once (sorted by name), then return.
+    """Process every line file below ``folder`` once, in acquisition order
+    (:func:`acquisition_order`), then return.
 
     The same pipeline as the daemon: already committed identical files are skipped, bad
     files are quarantined.
@@ -52,7 +68,7 @@ def process_folder(config: Config, folder: Path) -> ProcessSummary:
     pipeline = LinePipeline(config)
     outcomes: list[LineOutcome] = []
     try:
-        for path in sorted(listing.files, key=lambda p: (p.parent, p.name)):
+        for path in sorted(listing.files, key=acquisition_order):
             try:
                 outcomes.append(pipeline.process(path))
             except OSError:  # the store failing, or the file unreadable: stop the pass
