@@ -13,6 +13,7 @@ import re
 import shutil
 import signal
 import subprocess
+import sys
 import time
 from pathlib import Path
 from typing import Any
@@ -481,3 +482,52 @@ def test_an_outage_backs_off_doubling_up_to_the_cap() -> None:
     assert waits[-1] == RETRY_MAX_S
     assert outage.since_s == 100.0
     assert outage.reason == "disk gone"
+
+
+# ------------------------------------------------------------------ one daemon per state folder
+
+
+def test_the_state_lock_is_held_once_and_names_its_owner(tmp_path: Path) -> None:
+    """A second lock on the same state folder is refused naming the lock file and the
+    holder's PID; once released, the folder can be locked again (flock(2), common
+    practice for one-instance daemons)."""
+    from strayline.service import AlreadyRunning, StateLock
+
+    first = StateLock(tmp_path / "state")
+    try:
+        with pytest.raises(AlreadyRunning) as info:
+            StateLock(tmp_path / "state")
+        assert f"(PID {os.getpid()})" in str(info.value)
+        assert str(tmp_path / "state" / "daemon.lock") in str(info.value)
+    finally:
+        first.release()
+    StateLock(tmp_path / "state").release()
+
+
+@pytest.mark.slow
+def test_a_second_daemon_on_the_same_config_exits_75_and_raises_nothing(tmp_path: Path) -> None:
+    """`strayline run` with the config a running daemon already uses exits 75 at once,
+    saying another daemon holds the state folder, and leaves no alert behind: the first
+    daemon goes on writing its scan."""
+    config = _config(tmp_path)
+    proc = _start(config, tmp_path / "daemon.log")
+    try:
+        wait_until(
+            lambda: "service_ready" in (tmp_path / "daemon.log").read_text(), proc, 30, "ready"
+        )
+        second = subprocess.run(
+            [sys.executable, "-m", "strayline", "run", "--config", str(config)],
+            capture_output=True,
+            text=True,
+            timeout=60,
+            check=False,
+        )
+        assert second.returncode == 75
+        assert f"another strayline daemon (PID {proc.pid}) already runs" in second.stderr
+        _write_scan(tmp_path / "incoming", "solo", 3, tmp_path / "truth")
+        wait_until(
+            lambda: len(committed_keys(tmp_path / "output" / "solo.zarr")) == 3, proc, 60, "3"
+        )
+    finally:
+        assert _stop(proc) == 0
+    assert read_alert_log(tmp_path / "output" / "alerts.jsonl") == []  # a clean scan: none

@@ -33,7 +33,7 @@ import pytest
 
 from strayline.cli import build_parser
 from strayline.config import load_config
-from strayline.errors import EXIT_CONFIG, EXIT_USAGE
+from strayline.errors import EXIT_CONFIG, EXIT_LOCKED, EXIT_USAGE
 
 REPO = Path(__file__).resolve().parents[1]
 UNIT_PATH = REPO / "systemd" / "strayline.service"
@@ -150,11 +150,13 @@ def test_service_is_notify_type_and_only_the_main_process_may_notify(service):
 
 
 def test_config_and_usage_errors_are_not_restarted(service):
-    """A bad config (exit 78, EX_CONFIG of sysexits.h) or a bad command line (exit 2) stops
-    the service instead of looping, while other failures restart it."""
+    """A bad config (exit 78, EX_CONFIG of sysexits.h), a bad command line (exit 2) or
+    another daemon on the same state folder (exit 75) stops the service instead of
+    looping, while other failures restart it."""
     prevented = one(service, "RestartPreventExitStatus").split()
     assert str(EXIT_CONFIG) in prevented
     assert str(EXIT_USAGE) in prevented
+    assert str(EXIT_LOCKED) in prevented
     assert one(service, "Restart") == "on-failure"
     assert timespan_s(one(service, "RestartSec")) >= 1.0
 

@@ -15,7 +15,7 @@ from collections.abc import Sequence
 from pathlib import Path
 
 from strayline import __version__
-from strayline.errors import EXIT_CONFIG, EXIT_OK, EXIT_USAGE, ConfigError
+from strayline.errors import EXIT_CONFIG, EXIT_LOCKED, EXIT_OK, EXIT_USAGE, ConfigError
 
 __all__ = ["build_parser", "main"]
 
@@ -211,15 +211,29 @@ def _cmd_run(args: argparse.Namespace) -> int:
     early: list[int] = []
     for signum in (signal.SIGTERM, signal.SIGINT):
         signal.signal(signum, lambda n, _f: early.append(n))
-    from strayline.service import Service
+    from strayline.service import AlreadyRunning, Service, StateLock
 
     config = _load(args)
-    _configure_logs(config)
-    service = Service(config)
-    service.install_signal_handlers()
-    if early:
-        service.request_stop()
-    return service.run()
+    try:  # one daemon per state folder, for its whole life
+        lock = StateLock(config.paths.state_dir)
+    except AlreadyRunning as error:
+        print(f"strayline: {error}", file=sys.stderr)
+        return EXIT_LOCKED
+    except OSError as error:
+        print(
+            f"strayline: cannot lock the state folder {config.paths.state_dir}: {error}",
+            file=sys.stderr,
+        )
+        return 1
+    try:
+        _configure_logs(config)
+        service = Service(config)
+        service.install_signal_handlers()
+        if early:
+            service.request_stop()
+        return service.run()
+    finally:
+        lock.release()
 
 
 def _cmd_process(args: argparse.Namespace) -> int:

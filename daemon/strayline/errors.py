@@ -15,6 +15,7 @@ from os import PathLike
 
 __all__ = [
     "EXIT_CONFIG",
+    "EXIT_LOCKED",
     "EXIT_OK",
     "EXIT_USAGE",
     "ConfigError",
@@ -26,6 +27,9 @@ __all__ = [
 EXIT_OK = 0
 EXIT_USAGE = 2
 EXIT_CONFIG = 78  # sysexits.h EX_CONFIG; systemd's RestartPreventExitStatus names it
+#: Another daemon holds the state folder (sysexits.h EX_TEMPFAIL: it may be free later);
+#: the unit does not restart on it either.
+EXIT_LOCKED = 75
 
 
 class StraylineError(Exception):
