@@ -392,3 +392,55 @@ def test_an_unreadable_registry_is_logged_and_taken_as_empty(tmp_path: Path) -> 
     with capture_logs() as logs:
         assert ActiveAlerts(path).active() == ()
     assert [r["event"] for r in logs] == ["delivered_alerts_unreadable"]
+
+
+# -- untrusted values, and an alert log on a failing disk ----------------------------------
+
+
+def test_placeholders_are_filled_once_and_values_stay_single_arguments() -> None:
+    """A scan id that itself holds a placeholder is not expanded again, a value starting
+    with '-' or holding spaces stays one argument, and text around a placeholder is kept."""
+    from strayline.alerts import fill_hook_arguments
+
+    event = dataclasses.replace(EVENT, scan_id="-rf {message}", message="lost {scan_id}")
+    argv = fill_hook_arguments(["page", "--scan={scan_id}", "--", "{message}", "{line}"], event)
+    assert argv == ["page", "--scan=-rf {message}", "--", "lost {scan_id}", "42"]
+
+
+def test_terminal_lines_show_control_characters_as_escapes() -> None:
+    """An escape sequence in a folder-derived scan id is printed as text (\\x1b[…),
+    never sent raw to the terminal; ordinary text with µ, θ and dashes is unchanged."""
+    event = dataclasses.replace(EVENT, scan_id="run\x1b[2J\x9b1m", message="B = 3 µT, θ – ok")
+    line = format_alert(event)
+    assert "run\\x1b[2J\\x9b1m" in line
+    assert "\x1b" not in line
+    assert "\x9b" not in line
+    assert "B = 3 µT, θ – ok" in line
+
+
+def test_an_alert_reaches_the_hook_and_the_stop_file_when_its_log_cannot_be_written(
+    tmp_path: Path,
+) -> None:
+    """With the alert log's folder gone bad (a file in its place) a critical raise still
+    writes the stop request and runs the hook, then raises AlertNotLogged; delivered again
+    with notify=False once the disk is back, it is logged without a second hook run."""
+    from strayline.alerts import AlertNotLogged
+
+    (tmp_path / "output").write_text("a file where the output folder was\n")
+    log = tmp_path / "output" / "alerts.jsonl"
+    stop = tmp_path / "STOP_REQUEST.json"
+    calls = tmp_path / "hook.txt"
+    script = "import sys; open(sys.argv[1], 'a').write(sys.argv[2] + '\\n')"
+    hook = {"critical": [PY, "-c", script, str(calls), "{rule}:{state}"]}
+    sink = AlertSink(log, hook=hook, hook_timeout_s=20, stop_request_file=stop)
+    with pytest.raises(AlertNotLogged, match=r"alerts\.jsonl: the alert could not be logged"):
+        sink.deliver(EVENT)
+    assert sink.wait_hooks(30)
+    assert json.loads(stop.read_text())["rule"] == "fluorescence_lost"
+    assert calls.read_text() == "fluorescence_lost:raised\n"
+    (tmp_path / "output").unlink()  # the disk is back
+    sink.deliver(EVENT, notify=False)
+    assert sink.wait_hooks(30)
+    sink.close(5)
+    assert read_alert_log(log) == [EVENT]
+    assert calls.read_text() == "fluorescence_lost:raised\n"

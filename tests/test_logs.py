@@ -109,6 +109,33 @@ def test_file_deleted_is_recreated(tmp_path: Path) -> None:
     assert [r["event"] for r in _json_lines(path)] == ["second"]
 
 
+def test_a_log_folder_replaced_by_a_file_drops_records_and_never_raises(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """With a file where the log's folder was (the output disk failing) a record is
+    dropped with one note on stderr instead of an exception that would end the daemon;
+    a reopen (SIGHUP) does not raise either; once the folder is back, records go to the
+    file again."""
+    folder = tmp_path / "output"
+    folder.mkdir()
+    path = folder / "strayline.jsonl"
+    logs.configure_logging(console="off", json_file=path)
+    logs.get_logger().info("before")
+    folder.rename(tmp_path / "away")
+    folder.write_text("not a folder\n")
+    logs.get_logger().info("dropped_1")
+    logs.get_logger().info("dropped_2")
+    logs.reopen_log_files()
+    err = capsys.readouterr().err
+    assert err.count("records go to the console only") == 1
+    assert "cannot reopen" in err
+    folder.unlink()
+    folder.mkdir()
+    logs.get_logger().info("after")
+    assert [r["event"] for r in _json_lines(path)] == ["after"]
+    assert [r["event"] for r in _json_lines(tmp_path / "away" / "strayline.jsonl")] == ["before"]
+
+
 def test_reopen_log_files_switches_to_a_fresh_file(tmp_path: Path) -> None:
     """reopen_log_files (the SIGHUP action) closes the old stream and writes to the file
     now at the path, losing and duplicating nothing."""

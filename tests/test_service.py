@@ -531,3 +531,46 @@ def test_a_second_daemon_on_the_same_config_exits_75_and_raises_nothing(tmp_path
     finally:
         assert _stop(proc) == 0
     assert read_alert_log(tmp_path / "output" / "alerts.jsonl") == []  # a clean scan: none
+
+
+@pytest.mark.slow
+def test_the_output_down_alert_reaches_the_hook_and_the_stop_file_while_the_output_is_down(
+    tmp_path: Path,
+) -> None:
+    """With the output folder (and so the alert log) unusable, the critical
+    output_unavailable raise still runs the hook and writes the stop-request file, while
+    the output is still down; once it is back the raise and its clear are in the alert
+    log, and the hook has run once for each."""
+    calls = tmp_path / "hook.txt"
+    script = "import sys; open(sys.argv[1], 'a').write(sys.argv[2] + '\\n')"
+    config = _config(
+        tmp_path,
+        alerts={
+            "hook": {"critical": [sys.executable, "-c", script, str(calls), "{rule}:{state}"]},
+            "stop_request_file": str(tmp_path / "STOP_REQUEST.json"),
+        },
+    )
+    incoming, output, stage = tmp_path / "incoming", tmp_path / "output", tmp_path / "stage"
+    _write_scan(stage, "down", 6, tmp_path / "truth")
+    proc = _start(config, tmp_path / "daemon.log")
+    try:
+        _move_lines(stage, incoming, "down", range(3))
+        wait_until(lambda: len(committed_keys(output / "down.zarr")) == 3, proc, 60, "3 lines")
+        output.rename(tmp_path / "output.away")
+        output.write_text("not a folder\n")
+        _move_lines(stage, incoming, "down", range(3, 6))
+        wait_until((tmp_path / "STOP_REQUEST.json").exists, proc, 30, "stop file")
+        wait_until(calls.exists, proc, 30, "the hook")
+        assert output.is_file()  # still down when both arrived
+        assert calls.read_text() == "output_unavailable:raised\n"
+        output.unlink()
+        (tmp_path / "output.away").rename(output)
+        wait_until(lambda: len(committed_keys(output / "down.zarr")) == 6, proc, 60, "6 lines")
+        wait_until(lambda: calls.read_text().count("\n") == 2, proc, 30, "the clear's hook")
+    finally:
+        assert _stop(proc) == 0
+    assert calls.read_text() == "output_unavailable:raised\noutput_unavailable:cleared\n"
+    logged = [
+        e.state for e in read_alert_log(output / "alerts.jsonl") if e.rule == "output_unavailable"
+    ]
+    assert logged == ["raised", "cleared"]

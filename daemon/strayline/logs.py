@@ -168,13 +168,36 @@ class _JsonLinesFileHandler(logging.handlers.WatchedFileHandler):
     """A WatchedFileHandler (reopens when the file was moved or deleted) that can also be
     told to reopen, e.g. on SIGHUP after a rotation tool renamed the file."""
 
+    _failing = False
+
+    def emit(self, record: logging.LogRecord) -> None:
+        """Write one record; while the file's folder cannot be looked at (its disk failed,
+        or a file stands where the folder was) records are dropped here (the console
+        keeps them) and the daemon goes on, saying so once on stderr."""
+        try:
+            self.reopenIfNeeded()
+            logging.FileHandler.emit(self, record)
+        except OSError as exc:
+            if not self._failing:
+                self._failing = True
+                print(
+                    f"strayline: log file {self.baseFilename} unusable ({exc}); records "
+                    "go to the console only until it is back",
+                    file=sys.stderr,
+                    flush=True,
+                )
+            return
+        self._failing = False
+
     def reopen(self) -> None:
         """Close the stream and open the file at its path again."""
         self.acquire()
         try:
             if self.stream is not None:
-                self.stream.flush()
-                self.stream.close()
+                stream, self.stream = self.stream, None  # None if the open below fails
+                stream.flush()
+                stream.close()
+            self.dev, self.ino = -1, -1
             self.stream = self._open()
             self._statstream()
         finally:
@@ -319,7 +342,10 @@ def reopen_log_files() -> None:
     """Reopen the JSON-lines log file (for SIGHUP after log rotation)."""
     for handler in list(_installed):
         if isinstance(handler, _JsonLinesFileHandler):
-            handler.reopen()
+            try:
+                handler.reopen()
+            except OSError as exc:  # its folder is unusable now: the next record retries
+                print(f"strayline: cannot reopen {handler.baseFilename}: {exc}", file=sys.stderr)
 
 
 def shutdown_logging() -> None:

@@ -8,15 +8,24 @@ by one :class:`AlertSink`, and read back by :func:`read_alert_log` (``strayline 
 from strayline.alerts.event import AlertEvent
 from strayline.alerts.log import follow_alerts, format_alert, read_alert_log
 from strayline.alerts.registry import ACTIVE_ALERTS_FILE, ActiveAlerts
-from strayline.alerts.sink import HOOK_PLACEHOLDERS, AlertSink, SinkStatistics, write_stop_request
+from strayline.alerts.sink import (
+    HOOK_PLACEHOLDERS,
+    AlertNotLogged,
+    AlertSink,
+    SinkStatistics,
+    fill_hook_arguments,
+    write_stop_request,
+)
 
 __all__ = [
     "ACTIVE_ALERTS_FILE",
     "HOOK_PLACEHOLDERS",
     "ActiveAlerts",
     "AlertEvent",
+    "AlertNotLogged",
     "AlertSink",
     "SinkStatistics",
+    "fill_hook_arguments",
     "follow_alerts",
     "format_alert",
     "read_alert_log",

@@ -12,7 +12,7 @@ from typing import TextIO
 
 from strayline.alerts.event import AlertEvent
 
-__all__ = ["follow_alerts", "format_alert", "read_alert_log"]
+__all__ = ["follow_alerts", "format_alert", "printable", "read_alert_log"]
 
 
 def read_alert_log(
@@ -51,8 +51,18 @@ def read_alert_log(
     return out
 
 
+def printable(text: str) -> str:
+    """``text`` safe for a terminal: every character that does not print (control codes
+    such as ESC, which could recolour or rewrite the screen, line breaks, bidirectional
+    overrides) shown as its escape, e.g. ``\\x1b``."""
+    if text.isprintable():
+        return text
+    return "".join(ch if ch.isprintable() else ascii(ch)[1:-1] for ch in text)
+
+
 def format_alert(event: AlertEvent) -> str:
-    """One readable line: time, severity, state, scan/line/pixels, rule, message."""
+    """One readable line: time, severity, state, scan/line/pixels, rule, message; safe to
+    print to a terminal (:func:`printable`: a scan id may come from a folder name)."""
     where = event.scan_id
     if event.line_index is not None:
         where += f" line {event.line_index}"
@@ -65,7 +75,7 @@ def format_alert(event: AlertEvent) -> str:
     text += event.message
     if event.state == "raised" and event.advice:
         text += f" — {event.advice}"
-    return text
+    return printable(text)
 
 
 def follow_alerts(

@@ -23,6 +23,7 @@ from __future__ import annotations
 import json
 import os
 import queue
+import re
 import subprocess
 import sys
 import threading
@@ -40,8 +41,10 @@ from strayline.alerts.log import format_alert
 
 __all__ = [
     "HOOK_PLACEHOLDERS",
+    "AlertNotLogged",
     "AlertSink",
     "SinkStatistics",
+    "fill_hook_arguments",
     "write_stop_request",
 ]
 
@@ -61,7 +64,16 @@ class SinkStatistics:
     stop_requests_written: int
 
 
-def _fill(argv: Sequence[str], event: AlertEvent) -> list[str]:
+_PLACEHOLDER = re.compile("{(" + "|".join(HOOK_PLACEHOLDERS) + ")}")
+
+
+def fill_hook_arguments(argv: Sequence[str], event: AlertEvent) -> list[str]:
+    """The hook's arguments with the event's values in place of the placeholders.
+
+    One pass per argument: a value that itself holds ``{message}`` (a scan id comes from a
+    folder name) is not expanded again. The values are untrusted text: passed as
+    separate arguments, never through a shell.
+    """
     values = {
         "scan_id": event.scan_id,
         "rule": event.rule,
@@ -70,13 +82,11 @@ def _fill(argv: Sequence[str], event: AlertEvent) -> list[str]:
         "line": "" if event.line_index is None else str(event.line_index),
         "message": event.message,
     }
-    out = []
-    for template in argv:
-        filled = template
-        for key in HOOK_PLACEHOLDERS:
-            filled = filled.replace("{" + key + "}", values[key])
-        out.append(filled)
-    return out
+    return [_PLACEHOLDER.sub(lambda m: values[m.group(1)], template) for template in argv]
+
+
+class AlertNotLogged(OSError):
+    """The alert log could not be written; the event was announced all the same."""
 
 
 def write_stop_request(path: Path, event: AlertEvent) -> None:
@@ -110,7 +120,8 @@ class AlertSink:
     Parameters
     ----------
     alert_log : path or None
-        JSON-lines file the events are appended to (parent folders are created).
+        JSON-lines file the events are appended to (parent folders are created when the
+        first event is written).
     console : bool
         Also print a one-line summary of each event to stderr.
     hook : mapping severity → argument list, optional
@@ -150,8 +161,6 @@ class AlertSink:
         self._stops = 0
         self._queue: queue.Queue[list[str] | None] = queue.Queue(maxsize=hook_queue_size)
         self._thread: threading.Thread | None = None
-        if self._log_path is not None:
-            self._log_path.parent.mkdir(parents=True, exist_ok=True)
         if self._hook:
             self._thread = threading.Thread(
                 target=self._run_hooks, name="strayline-alert-hooks", daemon=True
@@ -173,14 +182,42 @@ class AlertSink:
 
     # -- delivery -----------------------------------------------------------------------
 
-    def deliver(self, event: AlertEvent) -> None:
-        """Record and announce one event; returns without waiting for the hook."""
+    def deliver(self, event: AlertEvent, *, notify: bool = True) -> None:
+        """Announce one event (log record, console, stop request, hook), then append it to
+        the alert log; returns without waiting for the hook.
+
+        The announcement comes first and does not depend on the alert log, so an alert
+        about a failing output disk (where the log may live) still reaches the hook and
+        the stop-request file.
+
+        Parameters
+        ----------
+        notify : bool
+            False to only append to the alert log an event announced before (one whose
+            earlier delivery raised :class:`AlertNotLogged`).
+
+        Raises
+        ------
+        AlertNotLogged
+            The alert log could not be written (the event was announced if asked to be).
+        """
+        if notify:
+            self._announce(event)
         if self._log_path is not None:
             line = event.to_json() + "\n"
-            with self._lock, open(self._log_path, "a", encoding="utf-8") as fh:
-                fh.write(line)
-                fh.flush()
-                os.fsync(fh.fileno())
+            try:
+                self._log_path.parent.mkdir(parents=True, exist_ok=True)
+                with self._lock, open(self._log_path, "a", encoding="utf-8") as fh:
+                    fh.write(line)
+                    fh.flush()
+                    os.fsync(fh.fileno())
+            except OSError as exc:
+                raise AlertNotLogged(
+                    exc.errno, f"{self._log_path}: the alert could not be logged: {exc}"
+                ) from exc
+        self._delivered += 1
+
+    def _announce(self, event: AlertEvent) -> None:
         log_method = self._log.warning if event.severity != "info" else self._log.info
         if event.severity == "critical" and event.state == "raised":
             log_method = self._log.error
@@ -202,11 +239,10 @@ class AlertSink:
         argv = self._hook.get(event.severity)
         if argv:
             try:
-                self._queue.put_nowait(_fill(argv, event))
+                self._queue.put_nowait(fill_hook_arguments(argv, event))
             except queue.Full:
                 self._hooks_dropped += 1
                 self._log.error("alert_hook_dropped", argv=argv, reason="hook queue full")
-        self._delivered += 1
 
     def _run_hooks(self) -> None:
         while True:

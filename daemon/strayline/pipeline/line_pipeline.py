@@ -117,7 +117,8 @@ class LinePipeline:
     config : Config
         The daemon's base configuration; each scan gets its profile overlay.
     sink : AlertSink or None
-        Where alert events go; None builds one from ``config``.
+        Where alert events go (the caller closes it); None builds one from ``config``,
+        closed with the pipeline.
     active : ActiveAlerts or None
         The record of alerts raised outside the rule engine, shared with the service;
         None loads it from ``paths.state_dir``.
@@ -141,8 +142,10 @@ class LinePipeline:
             max_file_bytes=config.limits.max_file_bytes,
         )
         self._output_root = config.paths.output_root
+        self._output_root.mkdir(parents=True, exist_ok=True)  # OSError: the output is unusable
         self._state_path = config.paths.state_dir / "rules_state.json"
         self._sink = sink if sink is not None else AlertSink.from_config(config)
+        self._owns_sink = sink is None
         self._engine = RuleEngine.restore(config.rule_set, self._state_path, clock=clock)
         self._clock = clock
         self._active = (
@@ -260,8 +263,9 @@ class LinePipeline:
             self._engine.save(self._state_path)
         return events
 
-    def deliver(self, event: AlertEvent) -> None:
-        """Send an event raised outside the rule engine (e.g. by the service) to the sink.
+    def deliver(self, event: AlertEvent, *, notify: bool = True) -> None:
+        """Send an event raised outside the rule engine (e.g. by the service) to the sink
+        (``notify=False``: only to the alert log, for an event announced before).
 
         Such events are remembered while raised — keyed by (scan, rule), cleared by their
         "cleared" event — and saved in ``paths.state_dir`` so a restarted daemon still
@@ -271,10 +275,12 @@ class LinePipeline:
 
         Raises
         ------
+        AlertNotLogged
+            The alert log could not be written (the event was announced).
         StoreError
             If the remembered state cannot be saved (the event was delivered).
         """
-        self._sink.deliver(event)
+        self._sink.deliver(event, notify=notify)
         self._active.note(event)
         self._active.save()
 
@@ -338,12 +344,14 @@ class LinePipeline:
         return out
 
     def close(self) -> None:
-        """Close every store and the alert sink (waits for running hooks)."""
+        """Close every store, and the alert sink if this pipeline built it (waits for
+        running hooks)."""
         for scan in self._scans.values():
             scan.store.close()
         self._scans.clear()
         self._engine.save(self._state_path)
-        self._sink.close()
+        if self._owns_sink:
+            self._sink.close()
 
     # -- internals ----------------------------------------------------------------------
 

@@ -36,7 +36,7 @@ from types import FrameType
 import structlog
 
 from strayline._numbers import MIB
-from strayline.alerts import ACTIVE_ALERTS_FILE, ActiveAlerts, AlertEvent
+from strayline.alerts import ACTIVE_ALERTS_FILE, ActiveAlerts, AlertEvent, AlertSink
 from strayline.config import Config, load_config
 from strayline.errors import ConfigError, StoreError
 from strayline.logs import configure_logging, reopen_log_files
@@ -129,17 +129,20 @@ class Service:
         self._next_check_s = -float("inf")
         self._held: deque[ReadyFile] = deque()
         self._unreadable = UnreadableFiles()
-        self._undelivered: list[AlertEvent] = []
+        self._unlogged: list[AlertEvent] = []  # announced, not yet in the alert log
         self._outage: Outage | None = None
         self._last_alert: AlertEvent | None = None
         self._last_scan_id: str | None = None
         # The one record of alerts raised outside the rule engine, shared with the pipeline.
         self._alerts = ActiveAlerts(config.paths.state_dir / ACTIVE_ALERTS_FILE)
+        # One sink for the daemon's life (rebuilt on reload), shared with every pipeline:
+        # it announces an alert even while the output, and so the alert log, is down.
+        self._sink = AlertSink.from_config(config)
         self._lost_stores: set[Path] = set()
         self._disk = self._new_disk_guard(config, low=False)
         self.pipeline: LinePipeline | None = None
         try:
-            self.pipeline = LinePipeline(config, active=self._alerts)
+            self.pipeline = LinePipeline(config, sink=self._sink, active=self._alerts)
         except OSError as exc:  # output folder unusable at start: wait for it, alerting
             self._begin_outage(f"building the pipeline failed: {exc}")
         else:
@@ -276,6 +279,7 @@ class Service:
     def _shutdown(self) -> None:
         self.watcher.stop()
         self._close_pipeline()
+        self._sink.close()
         self._notifier.close()
 
     # -- unreadable files ---------------------------------------------------------------
@@ -450,13 +454,13 @@ class Service:
 
     def _new_pipeline(self, config: Config) -> LinePipeline:
         """A pipeline for ``config``, told about low disk, with held-back alerts sent."""
-        pipeline = LinePipeline(config, active=self._alerts)
+        pipeline = LinePipeline(config, sink=self._sink, active=self._alerts)
         if self._disk.low:
             pipeline.set_raw_spectra(False)  # no scan is open yet: nothing to reopen
-        undelivered, self._undelivered = self._undelivered, []
+        unlogged, self._unlogged = self._unlogged, []
         self.pipeline = pipeline
-        for event in undelivered:
-            self._deliver(event)
+        for event in unlogged:  # announced when raised; the output works again: log them
+            self._deliver(event, notify=False)
         return pipeline
 
     def _adopt_raised(self, pipeline: LinePipeline) -> None:
@@ -499,22 +503,22 @@ class Service:
             scan_id = self._last_scan_id or "-"
         return service_event(alert, scan_id=scan_id, time_text=_utc_now_text())
 
-    def _deliver(self, event: AlertEvent) -> None:
-        """Send through the pipeline's alert sink; keep it for later if that fails."""
+    def _deliver(self, event: AlertEvent, *, notify: bool = True) -> None:
+        """Announce an alert of the service's own (log, console, stop request, hook) and
+        append it to the alert log; one the log cannot take yet is kept and logged once
+        the output works again (``notify=False``: it was announced already)."""
         self._last_alert = event
-        self._alerts.note(event)  # saved once delivered (LinePipeline.deliver)
-        if self.pipeline is not None:
-            try:
-                self.pipeline.deliver(event)
-            except StoreError as exc:  # delivered; only remembering it failed
-                self._log.warning("alert_state_not_saved", rule=event.rule, error=str(exc))
-                return
-            except OSError as exc:
-                self._log.error("alert_delivery_failed", rule=event.rule, error=str(exc))
-            else:
-                return
-        self._log.error(f"alert_{event.state}_pending", **event.to_dict())
-        self._undelivered.append(event)
+        self._alerts.note(event)
+        try:
+            self._sink.deliver(event, notify=notify)
+        except OSError as exc:  # the alert log's disk: the announcement went out
+            self._log.error("alert_not_logged", rule=event.rule, error=str(exc))
+            self._unlogged.append(event)
+            return
+        try:
+            self._alerts.save()
+        except StoreError as exc:  # delivered; only remembering it failed
+            self._log.warning("alert_state_not_saved", rule=event.rule, error=str(exc))
 
     # -- systemd ------------------------------------------------------------------------
 
@@ -613,6 +617,8 @@ class Service:
         if (old.paths.watch_root, old.watch) != (new.paths.watch_root, new.watch):
             self._restart_watcher(new)
         self._close_pipeline()
+        self._sink.close()
+        self._sink = AlertSink.from_config(new)
         if self._outage is None:
             try:
                 self._new_pipeline(new)
