@@ -1051,3 +1051,17 @@ def test_each_scan_is_judged_by_its_own_rule_set_also_after_a_restart() -> None:
         )
     ]
     assert later == []  # still judged without fluorescence_lost
+
+
+def test_the_last_evaluated_line_and_its_checksum_survive_a_restart() -> None:
+    """The engine remembers which line of a scan it judged last, with the checksum of its
+    file, in its saved state; a state from before that record loads as not knowing it."""
+    engine = RuleEngine(_pl_rules(), clock=FakeClock())
+    assert engine.last_evaluated("s1") == (None, None, None)
+    engine.evaluate_line("s1", _metrics(3, pl_median_per_s=2e5), source_sha256="ab12")
+    state = json.loads(json.dumps(engine.state_dict()))
+    again = RuleEngine.from_state(_pl_rules(), state, clock=FakeClock())
+    assert again.last_evaluated("s1") == (3, "forward", "ab12")
+    del state["scans"]["s1"]["last_sha256"]
+    older = RuleEngine.from_state(_pl_rules(), state, clock=FakeClock())
+    assert older.last_evaluated("s1") == (3, "forward", None)

@@ -233,3 +233,50 @@ def test_stall_is_raised_on_a_fake_clock_and_cleared_by_the_late_line(tmp_path: 
         ("acquisition_stalled", "cleared", 9),
     ]
     assert "line 10 arrived" in events[1].message
+
+
+def test_a_crash_between_a_lines_commit_and_its_evaluation_loses_no_alert(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """The daemon dies after committing the line that shows a tip crash but before the
+    rules judged it (here: the metrics stage fails there and the pipeline is closed, as a
+    kill leaves the rule state of the line before). When the same file comes again after
+    the restart it is a duplicate for the store, yet it is evaluated, and the critical
+    alert comes, once."""
+    from strayline.rules import MetricsTracker
+
+    reference = _events(tmp_path / "reference", _demo("tip_crash@9:10"))
+    (raise_line,) = [e.line_index for e in reference if e.state == "raised"]
+    folder = tmp_path / "crash"
+    ds.run_scan(
+        _demo("tip_crash@9:10"), folder / "incoming", folder / "truth", sleep=lambda _s: None
+    )
+    files = sorted((folder / "incoming" / SCAN).glob("line_*_fwd.h5"))
+    config = _config(folder)
+    first = LinePipeline(config)
+    for path in files[:raise_line]:
+        first.process(path)
+    with monkeypatch.context() as patch:
+
+        def killed(*_args: object) -> None:
+            raise RuntimeError("killed between the commit and the rules")
+
+        patch.setattr(MetricsTracker, "update", killed)
+        with pytest.raises(RuntimeError, match="killed"):
+            first.process(files[raise_line])
+    first.close()
+    assert read_alert_log(config.paths.alert_log) == []
+    second = LinePipeline(config)
+    try:
+        again = second.process(files[raise_line])
+        rest = [second.process(path) for path in files[raise_line + 1 :]]
+    finally:
+        second.close()
+    assert again.kind == "duplicate"
+    assert [(e.rule, e.state, e.line_index) for e in again.events] == [
+        ("resonance_jump", "raised", raise_line)
+    ]
+    assert all(o.kind == "written" for o in rest)
+    events = read_alert_log(config.paths.alert_log)
+    assert [(e.rule, e.state) for e in events] == [("resonance_jump", "raised")]
+    assert events[0].message == reference[0].message

@@ -30,8 +30,8 @@ import structlog
 from strayline.alerts import ACTIVE_ALERTS_FILE, ActiveAlerts, AlertEvent, AlertSink
 from strayline.config import Config, config_digest, select_profile
 from strayline.errors import ConfigError, LineFileError, StoreError
-from strayline.field import field_from_fit
-from strayline.fit import FitStatus, fit_line
+from strayline.field import LineField, field_from_fit
+from strayline.fit import FitStatus, LineFit, fit_line
 from strayline.lines import LineLimits, ScanLine, bad_file_event, quarantine_file, read_line_file
 from strayline.pipeline._reseed import seed_tracker
 from strayline.pipeline._setup import (
@@ -167,7 +167,8 @@ class LinePipeline:
             line = read_line_file(path, limits=self._limits)
             scan, opening_events = self._scan_for(line, path)
             decision = scan.store.decide(line)
-            if decision == "duplicate":
+            unevaluated = decision == "duplicate" and self._unevaluated(line, scan)
+            if decision == "duplicate" and not unevaluated:
                 self._counters.duplicates += 1
                 self._log.info(
                     "line_skipped_duplicate",
@@ -190,22 +191,37 @@ class LinePipeline:
                 fit, zfs_hz=scan.zfs_for(line), sign=scan.sign, branch=scan.branch
             )
             t1 = time.perf_counter()
-            receipt = scan.store.write_line(line, fit, line_field)
+            receipt = None if unevaluated else scan.store.write_line(line, fit, line_field)
         except FileNotFoundError:
             self._log.warning("line_vanished", file=str(path))
             return LineOutcome(path, "vanished")
         except LineFileError as error:
             return self._quarantine(path, error)
+        if receipt is None:  # committed before a crash cut its evaluation short
+            self._counters.duplicates += 1
+            events = opening_events + self._evaluate(line, scan, fit, line_field)
+            self._log.warning(
+                "line_evaluated_after_restart",
+                scan=line.scan_id,
+                line=line.line_index,
+                direction=line.direction,
+                alerts=len(events),
+                file=path.name,
+            )
+            return LineOutcome(
+                path,
+                "duplicate",
+                line.scan_id,
+                line.line_index,
+                line.direction,
+                fit_s=t1 - t0,
+                events=events,
+            )
         # The line is committed: count it before anything else can fail.
         failures = int(np.count_nonzero(fit.status != FitStatus.OK))
         self._note_written(line, failures)
         scan.lines_written += 1
-        metrics = scan.tracker.update(line, fit, line_field)
-        raised = tuple(self._engine.evaluate_line(line.scan_id, metrics))
-        for event in raised:  # delivered before the state is saved: never a lost alert
-            self._sink.deliver(event)
-        self._engine.save(self._state_path)
-        events = opening_events + raised
+        events = opening_events + self._evaluate(line, scan, fit, line_field)
         self._log.info(
             "line_processed",
             scan=line.scan_id,
@@ -232,6 +248,32 @@ class LinePipeline:
             failures=failures,
             events=events,
         )
+
+    def _evaluate(
+        self, line: ScanLine, scan: ScanContext, fit: LineFit, line_field: LineField
+    ) -> tuple[AlertEvent, ...]:
+        """Metrics and rules for a committed line; its events delivered, then the rule
+        state saved (which records the line as evaluated)."""
+        metrics = scan.tracker.update(line, fit, line_field)
+        raised = tuple(self._engine.evaluate_line(line.scan_id, metrics, source_sha256=line.sha256))
+        for event in raised:  # delivered before the state is saved: never a lost alert
+            self._sink.deliver(event)
+        self._engine.save(self._state_path)
+        return raised
+
+    def _unevaluated(self, line: ScanLine, scan: ScanContext) -> bool:
+        """Whether a committed copy of ``line`` was never evaluated: it is the store's
+        latest commit and the rule engine's last evaluated line is another one (a crash
+        fell between the commit and the rule state's save). Such a line is evaluated when
+        its file comes again (the catch-up at start lists it). The rule state keeps the
+        last few scans only; of a scan it no longer knows, only a first line can be one."""
+        latest, commits = scan.store.latest_commit()
+        if latest != (line.line_index, line.direction) or line.sha256 is None:
+            return False
+        last = self._engine.last_evaluated(line.scan_id)
+        if last == (None, None, None):  # a scan the rule state does not know (or forgot):
+            return commits == 1  # only its very first line can have been cut short
+        return last != (line.line_index, line.direction, line.sha256)
 
     def give_up(self, path: Path, reason: str) -> LineOutcome:
         """Quarantine a file that never became readable (the watcher gave up on it)."""

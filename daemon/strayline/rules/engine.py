@@ -88,6 +88,7 @@ class _ScanState:
         self.last_arrival_s: float | None = None
         self.last_line_index: int | None = None
         self.last_direction: str | None = None
+        self.last_sha256: str | None = None  # checksum of the last line's file, if known
         self.n_lines_planned: int | None = None
         self.lines_seen = 0
         self.intervals_s: deque[float] = deque(maxlen=20)
@@ -117,6 +118,7 @@ class _ScanState:
             "last_arrival_s": self.last_arrival_s,
             "last_line_index": self.last_line_index,
             "last_direction": self.last_direction,
+            "last_sha256": self.last_sha256,
             "n_lines_planned": self.n_lines_planned,
             "lines_seen": self.lines_seen,
             "intervals_s": list(self.intervals_s),
@@ -144,6 +146,7 @@ class _ScanState:
         out.last_arrival_s = state["last_arrival_s"]
         out.last_line_index = state["last_line_index"]
         out.last_direction = state["last_direction"]
+        out.last_sha256 = state.get("last_sha256")  # absent in states of earlier versions
         out.n_lines_planned = state["n_lines_planned"]
         out.lines_seen = int(state["lines_seen"])
         out.intervals_s.extend(float(v) for v in state["intervals_s"])
@@ -174,6 +177,16 @@ class RuleEngine:
     def config(self) -> RulesConfig:
         """The rule set of scans that were given none of their own."""
         return self._default.config
+
+    def last_evaluated(self, scan_id: str) -> tuple[int | None, str | None, str | None]:
+        """(line index, direction, file checksum) of the last line of ``scan_id`` this
+        engine evaluated, as its saved state remembers (all None for a scan it does not
+        know): after a crash between a line's commit and its evaluation, the pipeline
+        compares it with the store's latest commit."""
+        scan = self._scans.get(scan_id)
+        if scan is None:
+            return None, None, None
+        return scan.last_line_index, scan.last_direction, scan.last_sha256
 
     def use_rules(self, scan_id: str, rules: RulesConfig) -> None:
         """Judge ``scan_id`` by ``rules`` from now on (its sample-type profile's set).
@@ -272,8 +285,13 @@ class RuleEngine:
                 )
         return out
 
-    def evaluate_line(self, scan_id: str, metrics: LineMetrics) -> list[AlertEvent]:
-        """Judge one processed line; returns the raise/clear events it causes (often none)."""
+    def evaluate_line(
+        self, scan_id: str, metrics: LineMetrics, *, source_sha256: str | None = None
+    ) -> list[AlertEvent]:
+        """Judge one processed line; returns the raise/clear events it causes (often none).
+
+        ``source_sha256``, the checksum of the line's file, is remembered with the line
+        (:meth:`last_evaluated`)."""
         now_s = float(self._clock())
         events: list[AlertEvent] = []
         if self._latest is not None and self._latest != scan_id and self._latest in self._scans:
@@ -319,6 +337,7 @@ class RuleEngine:
         scan.last_arrival_s = now_s
         scan.last_line_index = metrics.line_index
         scan.last_direction = metrics.direction
+        scan.last_sha256 = source_sha256
         scan.n_lines_planned = metrics.n_lines_planned
         scan.lines_seen += 1
         return events

@@ -120,6 +120,8 @@ class LedgerState:
     history: dict[Key, list[LedgerEntry]] = field(default_factory=dict)
     pending: dict[Key, Mapping[str, Any]] = field(default_factory=dict)
     last_commit_time: datetime | None = None
+    commit_count: int = 0  # commit records so far, superseding ones included
+    last_committed: Key | None = None  # the line of the latest commit record
 
     def apply(self, record: Mapping[str, Any]) -> None:
         """Fold one record into the state."""
@@ -146,6 +148,8 @@ class LedgerState:
             )
             if self.last_commit_time is None or processed > self.last_commit_time:
                 self.last_commit_time = processed
+            self.commit_count += 1
+            self.last_committed = key
         elif event == "reset":
             self.pending.pop(key, None)
             self._retire(key)

@@ -620,6 +620,13 @@ class ScanStore:
         """Committed lines by (line_index, direction), with their superseded versions."""
         return dict(self._ledger.state.committed)
 
+    def latest_commit(self) -> tuple[Key | None, int]:
+        """The line of the latest commit record and how many commit records the ledger
+        holds (superseding commits included): what the rule engine checks its own count
+        of evaluated lines against after a restart."""
+        state = self._ledger.state
+        return state.last_committed, state.commit_count
+
     def statistics(self) -> StoreStatistics:
         """A frozen snapshot of progress; reads no data from disk."""
         committed = self._ledger.state.committed
