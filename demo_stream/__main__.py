@@ -57,7 +57,7 @@ class _Formatter(argparse.ArgumentDefaultsHelpFormatter, argparse.RawDescription
 def _fault_help() -> str:
     lines = [
         "faults (--fault, repeatable): KIND@LINE[:PIXEL][-END_LINE][,KEY=VALUE...]",
-        "  e.g. tip_crash@40:128   fluorescence_lost@60-70   acquisition_stalled@20,pause_s=5",
+        "  e.g. tip_crash@40:64   fluorescence_lost@60-70   acquisition_stalled@20,pause_s=5",
         "  LINE/PIXEL count from 0 and END_LINE is inclusive. Without END_LINE,",
         "  lost fluorescence, collapsed contrast and a tip crash persist to the end;",
         "  the other kinds act on LINE only. Parameters (SI units) and defaults:",

@@ -7,7 +7,7 @@ Compact form::
 
     KIND@LINE[:PIXEL][-END_LINE][,KEY=VALUE ...]
 
-    tip_crash@40:128                    line 40 from pixel 128 on, persists
+    tip_crash@40:64                     line 40 from pixel 64 on, persists
     fluorescence_lost@60-70             lines 60 to 70 (inclusive)
     sample_touched@12:30-14,width_pixels=5,zfs_shift_hz=6e6
     acquisition_stalled@20,pause_lines=8
@@ -184,7 +184,7 @@ def parse_fault(spec: str) -> Fault:
     if match is None:
         raise ValueError(
             f"fault {spec!r} must look like KIND@LINE[:PIXEL][-END_LINE][,KEY=VALUE...], "
-            f"e.g. tip_crash@40:128 or fluorescence_lost@60-70"
+            f"e.g. tip_crash@40:64 or fluorescence_lost@60-70"
         )
     params: dict[str, float] = {}
     for item in filter(None, match["params"].split(",")):

@@ -75,7 +75,76 @@ def test_reader_skips_a_partial_last_line_and_names_a_bad_one(tmp_path: Path) ->
     log.write_text("not json\n" + EVENT.to_json() + "\n", encoding="utf-8")
     with pytest.raises(ValueError, match=r"alerts.jsonl: line 1 must be one alert event"):
         read_alert_log(log)
+    bad: list[str] = []
+    assert read_alert_log(log, bad_lines=bad) == [EVENT]
+    assert bad == [
+        "alerts.jsonl: line 1 must be one alert event as JSON; found 'not json' (JSONDecodeError)"
+    ]
     assert read_alert_log(tmp_path / "missing.jsonl") == []
+
+
+def test_alerts_skips_a_torn_line_with_a_warning_and_shows_the_rest(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """A torn line in the middle of the log (a crash mid-write, then more events) costs
+    that line only: `strayline alerts` prints the other events and a warning naming it."""
+    import io
+
+    log = tmp_path / "alerts.jsonl"
+    torn = EVENT.to_json()[:50]
+    log.write_text(
+        EVENT.to_json()
+        + "\n"
+        + torn
+        + "\n"
+        + dataclasses.replace(EVENT, line_index=43).to_json()
+        + "\n",
+        encoding="utf-8",
+    )
+    out = io.StringIO()
+    assert alerts.follow_alerts(log, out=out) == 0
+    assert len(out.getvalue().splitlines()) == 2
+    assert "strayline: skipped alerts.jsonl: line 2 must be one alert event" in (
+        capsys.readouterr().err
+    )
+
+
+def test_following_a_rotated_log_starts_the_new_file_from_its_beginning(tmp_path: Path) -> None:
+    """When the log is rotated (renamed, a new file at its path) following goes on with
+    the new file from its first line, even when it grew past the old file's size before
+    the next look (the file's identity, not its size, tells)."""
+    import io
+    import threading
+
+    log = tmp_path / "alerts.jsonl"
+    log.write_text(EVENT.to_json() + "\n", encoding="utf-8")
+    out = io.StringIO()
+    stop = threading.Event()
+    worker = threading.Thread(
+        target=alerts.follow_alerts,
+        args=(log,),
+        kwargs={
+            "follow": True,
+            "last": 0,
+            "as_json": True,
+            "poll_s": 0.3,
+            "out": out,
+            "stop": stop,
+        },
+    )
+    worker.start()
+    try:
+        time.sleep(0.1)
+        log.rename(tmp_path / "alerts.jsonl.1")
+        log.write_text(
+            "".join(dataclasses.replace(EVENT, line_index=i).to_json() + "\n" for i in (1, 2, 3)),
+            encoding="utf-8",
+        )
+        assert _wait_for(lambda: out.getvalue().count("\n") == 3, 10)
+    finally:
+        stop.set()
+        worker.join(5)
+    assert [json.loads(t)["line_index"] for t in out.getvalue().splitlines()] == [1, 2, 3]
 
 
 def test_event_is_logged_through_structlog(tmp_path: Path) -> None:

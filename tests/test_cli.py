@@ -308,3 +308,32 @@ def test_alerts_with_a_bad_since_is_a_usage_error(
     config, _ = _alert_log(tmp_path)
     assert main(["alerts", "--config", str(config), "--since", "yesterday"]) == 2
     assert "--since must be an ISO 8601 time" in capsys.readouterr().err
+
+
+def test_output_cut_short_by_a_closed_pipe_ends_quietly(tmp_path: Path) -> None:
+    """`strayline alerts | head -1` on a long log: the reader closes the pipe early, and
+    strayline ends with 141 (128 + SIGPIPE, as a shell reports it) and no traceback."""
+    config = _write_config(tmp_path)
+    log = tmp_path / "output" / "alerts.jsonl"
+    log.parent.mkdir(parents=True)
+    event = _event("night-run", "fluorescence_lost", 1)
+    log.write_text("".join(event.to_json() + "\n" for _ in range(3000)), encoding="utf-8")
+    reader = subprocess.Popen(["head", "-1"], stdin=subprocess.PIPE, stdout=subprocess.PIPE)
+    writer = subprocess.run(
+        [sys.executable, "-m", "strayline", "alerts", "-c", str(config), "-n", "3000"],
+        stdout=reader.stdin,
+        stderr=subprocess.PIPE,
+        text=True,
+        timeout=60,
+        check=False,
+    )
+    assert reader.stdin is not None
+    assert reader.stdout is not None
+    reader.stdin.close()
+    with reader.stdout:
+        first = reader.stdout.read()
+    reader.wait(10)
+    assert first.count(b"\n") == 1
+    assert writer.returncode == 141
+    assert "Traceback" not in writer.stderr
+    assert "BrokenPipeError" not in writer.stderr

@@ -160,3 +160,18 @@ def test_a_quarantined_line_counts_as_accounted_for(tmp_path: Path) -> None:
         assert _accounted(pipeline, 4)
     finally:
         pipeline.close()
+
+
+def test_a_fault_beyond_the_scan_is_a_usage_error(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """`demo --lines 30 --fault tip_crash@40` exits 2 saying the fault must start before
+    line 30, without a traceback and before anything is written."""
+    folder = tmp_path / "demo"
+    code = main(["demo", "--lines", "30", "--fault", "tip_crash@40", "--folder", str(folder)])
+    assert code == 2
+    err = capsys.readouterr().err
+    assert err == (
+        "strayline demo: demo config: fault 'tip_crash' must start at a line < 30; found line 40\n"
+    )
+    assert not folder.exists()

@@ -625,3 +625,22 @@ def test_cli_runs_a_small_scan_and_prints_one_summary_line(
         [4e-3 * np.sin(NV_100_THETA_RAD) / np.sqrt(2)] * 2 + [4e-3 * np.cos(NV_100_THETA_RAD)]
     )
     assert calibration_stripe().name == truth.params["scene"]["name"]
+
+
+def test_the_fault_examples_of_the_help_run_with_the_default_scan_size() -> None:
+    """Every example the demo instrument's help gives for --fault is accepted by a scan of
+    its default size (an example that fails as printed teaches nothing)."""
+    import re
+
+    done = subprocess.run(
+        [sys.executable, "-m", "demo_stream", "--help"],
+        capture_output=True,
+        text=True,
+        check=False,
+        timeout=60,
+    )
+    (line,) = [text for text in done.stdout.splitlines() if text.strip().startswith("e.g.")]
+    examples = re.findall(r"\S+@\S+", line)
+    assert examples
+    for example in examples:
+        DemoConfig(faults=(parse_fault(example),))  # raises if it does not fit

@@ -292,14 +292,18 @@ def _cmd_alerts(args: argparse.Namespace) -> int:
 def _cmd_demo(args: argparse.Namespace) -> int:
     from strayline.demo import run_demo
 
-    return run_demo(
-        lines=args.lines,
-        pixels=args.pixels,
-        pace_s=args.pace,
-        fault=args.fault,
-        folder=args.folder,
-        seed=args.seed,
-    )
+    try:
+        return run_demo(
+            lines=args.lines,
+            pixels=args.pixels,
+            pace_s=args.pace,
+            fault=args.fault,
+            folder=args.folder,
+            seed=args.seed,
+        )
+    except ValueError as error:  # a fault that does not fit the scan, or cannot be parsed
+        print(f"strayline demo: {error}", file=sys.stderr)
+        return EXIT_USAGE
 
 
 def _cmd_products(args: argparse.Namespace) -> int:
@@ -347,7 +351,13 @@ def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``strayline`` console script; returns the exit code."""
     args = build_parser().parse_args(argv)
     try:
-        return _COMMANDS[args.command](args)
+        code = _COMMANDS[args.command](args)
+        sys.stdout.flush()  # here, where a closed pipe can still be handled
+        return code
+    except BrokenPipeError:  # `strayline status | head -1`: the reader has what it wanted
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())  # so the flush at exit does not fail again
+        return 141  # 128 + SIGPIPE, what a shell reports for a command cut off this way
     except ConfigError as error:
         print(f"strayline: config error: {error}", file=sys.stderr)
         return EXIT_CONFIG

@@ -20,11 +20,13 @@ def read_alert_log(
     *,
     scan_id: str | None = None,
     since: datetime | None = None,
+    bad_lines: list[str] | None = None,
 ) -> list[AlertEvent]:
     """Events from an alert log, oldest first, optionally one scan's or since a time.
 
     Blank lines and a partial last line (being written) are skipped; any other line that
-    is not an event raises ``ValueError`` naming the file and line number.
+    is not an event raises ``ValueError`` naming the file and line number, or, when a
+    ``bad_lines`` list is given, is skipped with that message appended to it.
     """
     p = Path(path)
     if not p.exists():
@@ -39,10 +41,14 @@ def read_alert_log(
         except (ValueError, KeyError, TypeError) as exc:
             if number == len(lines):  # no newline yet: a writer is mid-line
                 continue
-            raise ValueError(
+            problem = (
                 f"{p.name}: line {number} must be one alert event as JSON; found "
                 f"{text[:60]!r} ({exc.__class__.__name__})"
-            ) from None
+            )
+            if bad_lines is None:
+                raise ValueError(problem) from None
+            bad_lines.append(problem)
+            continue
         if scan_id is not None and event.scan_id != scan_id:
             continue
         if since is not None and event.datetime < since:
@@ -58,6 +64,15 @@ def printable(text: str) -> str:
     if text.isprintable():
         return text
     return "".join(ch if ch.isprintable() else ascii(ch)[1:-1] for ch in text)
+
+
+def _identity(path: Path) -> tuple[int, int] | None:
+    """(device, inode) of the file at ``path``, None when there is none."""
+    try:
+        st = path.stat()
+    except FileNotFoundError:
+        return None
+    return st.st_dev, st.st_ino
 
 
 def format_alert(event: AlertEvent) -> str:
@@ -117,23 +132,26 @@ def follow_alerts(
         stream.write((event.to_json() if as_json else format_alert(event)) + "\n")
 
     p = Path(path)
-    try:
-        events = read_alert_log(p, scan_id=scan_id, since=since_dt)
-    except ValueError as exc:
-        print(str(exc), file=sys.stderr)
-        return 1
+    bad: list[str] = []
+    events = read_alert_log(p, scan_id=scan_id, since=since_dt, bad_lines=bad)
+    for problem in bad:  # a torn or foreign line costs that line, not the whole log
+        print(f"strayline: skipped {printable(problem)}", file=sys.stderr)
     for event in events[-last:] if last > 0 else []:
         show(event)
     stream.flush()
     if not follow:
         return 0
-    offset = p.stat().st_size if p.exists() else 0
+    identity = _identity(p)
+    offset = p.stat().st_size if identity is not None else 0
     pending = b""
     try:
         while not (stop is not None and stop.is_set()):
-            size = p.stat().st_size if p.exists() else 0
-            if size < offset:  # rotated or truncated: start again from its beginning
-                offset, pending = 0, b""
+            now = _identity(p)
+            size = p.stat().st_size if now is not None else 0
+            # Rotated (another file at the path, however large it grew meanwhile) or
+            # truncated: start again from its beginning.
+            if now != identity or size < offset:
+                identity, offset, pending = now, 0, b""
             if size > offset:
                 with open(p, "rb") as fh:
                     fh.seek(offset)
