@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import math
 import shutil
@@ -825,3 +826,70 @@ def test_a_process_pass_takes_lines_in_acquisition_order(tmp_path: Path) -> None
     process_folder(config, tmp_path / "incoming")
     state = read_ledger_state(config.paths.output_root / "both.zarr")
     assert list(state.committed) == [(i, d) for i in range(3) for d in ("forward", "backward")]
+
+
+def test_a_link_out_of_the_watch_root_is_quarantined_and_one_inside_is_read(
+    scan_files: Path, tmp_path: Path
+) -> None:
+    """A line file that is a symbolic link to a file outside the watch root is refused
+    with a message naming the target (and the link, not the target, is set aside); a
+    link to a file inside the watch root is read like the file."""
+    folder = _copy_scan(scan_files, tmp_path)
+    files = _files(folder)
+    outside = tmp_path / "elsewhere"
+    outside.mkdir()
+    files[0].rename(outside / files[0].name)
+    files[0].symlink_to(outside / files[0].name)
+    kept = tmp_path / "incoming" / "kept"
+    kept.mkdir()
+    files[1].rename(kept / files[1].name)
+    files[1].symlink_to(kept / files[1].name)
+    config = _config(tmp_path)
+    pipeline = LinePipeline(config)
+    try:
+        refused = pipeline.process(files[0])
+        read = pipeline.process(files[1])
+    finally:
+        pipeline.close()
+    assert refused.kind == "quarantined"
+    (event,) = refused.events
+    assert event.message.endswith(
+        f"file must be a line file inside {(tmp_path / 'incoming').resolve()} (a link may "
+        f"point only there); found a symbolic link to {(outside / files[0].name).resolve()}"
+    )
+    assert (outside / files[0].name).is_file()  # the target is left alone
+    assert (folder / "_quarantine" / files[0].name).is_symlink()
+    assert read.kind == "written"
+
+
+def test_a_second_file_for_a_committed_line_is_written_with_a_warning(
+    scan_files: Path, tmp_path: Path
+) -> None:
+    """A different file for a line already committed replaces it (the newer data wins)
+    and says so: a line_superseded warning naming the new file and the one it replaces."""
+    from structlog.testing import capture_logs
+
+    folder = _copy_scan(scan_files, tmp_path)
+    files = _files(folder)
+    pipeline = LinePipeline(_config(tmp_path))
+    try:
+        pipeline.process(files[0])
+        line = read_line_file(files[0])
+        again = dataclasses.replace(line, counts=line.counts + 1, source=folder / "again.h5")
+        other = _write_line(again)
+        with capture_logs() as logs:
+            outcome = pipeline.process(other)
+    finally:
+        pipeline.close()
+    assert outcome.kind == "written"
+    (warning,) = [r for r in logs if r["event"] == "line_superseded"]
+    assert warning["log_level"] == "warning"
+    assert warning["file"] == str(other)
+    assert warning["replaces"] == str(files[0])
+
+
+def _write_line(line: ScanLine) -> Path:
+    """Write ``line`` to its own source path with the contract's writer."""
+    from strayline.lines import write_line_file
+
+    return write_line_file(line)

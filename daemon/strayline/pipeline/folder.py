@@ -65,7 +65,7 @@ def process_folder(config: Config, folder: Path) -> ProcessSummary:
     listing = list_tree(folder, LineNames(folder, config.watch.pattern))
     if listing.error is not None and not listing.files:
         raise FileNotFoundError(f"{folder}: {listing.error}")
-    pipeline = LinePipeline(config)
+    pipeline = LinePipeline(config, root=folder)
     outcomes: list[LineOutcome] = []
     try:
         for path in sorted(listing.files, key=acquisition_order):

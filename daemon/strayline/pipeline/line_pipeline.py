@@ -122,6 +122,9 @@ class LinePipeline:
     active : ActiveAlerts or None
         The record of alerts raised outside the rule engine, shared with the service;
         None loads it from ``paths.state_dir``.
+    root : Path or None
+        The folder line files must lie in, symbolic links included (default
+        ``paths.watch_root``; a ``process`` pass gives its own folder).
     clock : callable returning float, optional
         Wall-clock seconds (``time.time``) for the rule engine's stall detection.
     """
@@ -132,6 +135,7 @@ class LinePipeline:
         *,
         sink: AlertSink | None = None,
         active: ActiveAlerts | None = None,
+        root: Path | None = None,
         clock: Callable[[], float] = time.time,
     ) -> None:
         self.config = config
@@ -142,6 +146,7 @@ class LinePipeline:
             max_file_bytes=config.limits.max_file_bytes,
         )
         self._output_root = config.paths.output_root
+        self._root = Path(root if root is not None else config.paths.watch_root).resolve()
         self._output_root.mkdir(parents=True, exist_ok=True)  # OSError: the output is unusable
         self._state_path = config.paths.state_dir / "rules_state.json"
         self._sink = sink if sink is not None else AlertSink.from_config(config)
@@ -164,9 +169,19 @@ class LinePipeline:
         """Run one line file through every stage; never raises for a bad file."""
         path = Path(path)
         try:
+            self._check_inside(path)
             line = read_line_file(path, limits=self._limits)
             scan, opening_events = self._scan_for(line, path)
             decision = scan.store.decide(line)
+            if decision == "changed":
+                self._log.warning(
+                    "line_superseded",
+                    scan=line.scan_id,
+                    line=line.line_index,
+                    direction=line.direction,
+                    file=str(path),
+                    replaces=scan.store.committed()[(line.line_index, line.direction)].source,
+                )
             unevaluated = decision == "duplicate" and self._unevaluated(line, scan)
             if decision == "duplicate" and not unevaluated:
                 self._counters.duplicates += 1
@@ -248,6 +263,20 @@ class LinePipeline:
             failures=failures,
             events=events,
         )
+
+    def _check_inside(self, path: Path) -> None:
+        """Refuse a symbolic link that leads out of the folder line files must lie in
+        (a file elsewhere on the machine is no line of this instrument)."""
+        if not path.is_symlink():
+            return
+        target = path.resolve()
+        if not target.is_relative_to(self._root):
+            raise LineFileError(
+                path,
+                "file",
+                f"a line file inside {self._root} (a link may point only there)",
+                f"a symbolic link to {target}",
+            )
 
     def _evaluate(
         self, line: ScanLine, scan: ScanContext, fit: LineFit, line_field: LineField
