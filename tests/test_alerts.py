@@ -2,11 +2,15 @@
 
 from __future__ import annotations
 
+import contextlib
 import dataclasses
+import io
 import json
 import os
 import sys
+import threading
 import time
+from collections.abc import Iterator
 from datetime import datetime
 from pathlib import Path
 
@@ -34,6 +38,24 @@ EVENT = AlertEvent(
     advice="check the tip and the optics; consider stopping the scan",
 )
 PY = sys.executable
+
+
+@contextlib.contextmanager
+def _following(log: Path, poll_s: float) -> Iterator[io.StringIO]:
+    """Follow ``log`` (new events only, as JSON lines) on a thread while the block runs."""
+    out = io.StringIO()
+    stop = threading.Event()
+    options = {"follow": True, "last": 0, "as_json": True, "poll_s": poll_s, "out": out}
+    worker = threading.Thread(
+        target=alerts.follow_alerts, args=(log,), kwargs={**options, "stop": stop}
+    )
+    worker.start()
+    try:
+        time.sleep(0.1)
+        yield out
+    finally:
+        stop.set()
+        worker.join(5)
 
 
 def _wait_for(predicate, timeout_s: float = 10.0) -> bool:
@@ -113,37 +135,16 @@ def test_following_a_rotated_log_starts_the_new_file_from_its_beginning(tmp_path
     """When the log is rotated (renamed, a new file at its path) following goes on with
     the new file from its first line, even when it grew past the old file's size before
     the next look (the file's identity, not its size, tells)."""
-    import io
-    import threading
 
     log = tmp_path / "alerts.jsonl"
     log.write_text(EVENT.to_json() + "\n", encoding="utf-8")
-    out = io.StringIO()
-    stop = threading.Event()
-    worker = threading.Thread(
-        target=alerts.follow_alerts,
-        args=(log,),
-        kwargs={
-            "follow": True,
-            "last": 0,
-            "as_json": True,
-            "poll_s": 0.3,
-            "out": out,
-            "stop": stop,
-        },
-    )
-    worker.start()
-    try:
-        time.sleep(0.1)
+    with _following(log, poll_s=0.3) as out:
         log.rename(tmp_path / "alerts.jsonl.1")
         log.write_text(
             "".join(dataclasses.replace(EVENT, line_index=i).to_json() + "\n" for i in (1, 2, 3)),
             encoding="utf-8",
         )
         assert _wait_for(lambda: out.getvalue().count("\n") == 3, 10)
-    finally:
-        stop.set()
-        worker.join(5)
     assert [json.loads(t)["line_index"] for t in out.getvalue().splitlines()] == [1, 2, 3]
 
 
@@ -338,7 +339,6 @@ def test_follow_alerts_prints_the_tail_then_new_events(tmp_path: Path) -> None:
     """follow_alerts prints the last N events, then events appended while following, and
     refuses a malformed --since with exit code 2."""
     import io
-    import threading
 
     log = tmp_path / "alerts.jsonl"
     sink = AlertSink(log)
@@ -352,28 +352,9 @@ def test_follow_alerts_prints_the_tail_then_new_events(tmp_path: Path) -> None:
     ]
     assert alerts.follow_alerts(log, since="yesterday", out=io.StringIO()) == 2
 
-    out = io.StringIO()
-    stop = threading.Event()
-    worker = threading.Thread(
-        target=alerts.follow_alerts,
-        args=(log,),
-        kwargs={
-            "follow": True,
-            "last": 0,
-            "as_json": True,
-            "poll_s": 0.02,
-            "out": out,
-            "stop": stop,
-        },
-    )
-    worker.start()
-    try:
-        time.sleep(0.1)
+    with _following(log, poll_s=0.02) as out:
         sink.deliver(dataclasses.replace(EVENT, line_index=7))
         assert _wait_for(lambda: '"line_index":7' in out.getvalue(), 10)
-    finally:
-        stop.set()
-        worker.join(5)
     assert [json.loads(t)["line_index"] for t in out.getvalue().splitlines()] == [7]
 
 

@@ -563,6 +563,13 @@ def test_config_refuses_faults_outside_the_scan() -> None:
 
 def test_cli_help_lists_the_options() -> None:
     """`python -m demo_stream --help` exits 0 and documents scene, faults, pace and folders."""
+    text = _help_text()
+    for option in ("--scene", "--fault", "--pace-s", "--truth", "--trace-retrace", "--bias-mt"):
+        assert option in text
+
+
+def _help_text() -> str:
+    """What `python -m demo_stream --help` prints (it must exit 0)."""
     done = subprocess.run(
         [sys.executable, "-m", "demo_stream", "--help"],
         capture_output=True,
@@ -571,8 +578,7 @@ def test_cli_help_lists_the_options() -> None:
         timeout=60,
     )
     assert done.returncode == 0
-    for option in ("--scene", "--fault", "--pace-s", "--truth", "--trace-retrace", "--bias-mt"):
-        assert option in done.stdout
+    return done.stdout
 
 
 @pytest.mark.parametrize(
@@ -632,14 +638,7 @@ def test_the_fault_examples_of_the_help_run_with_the_default_scan_size() -> None
     its default size (an example that fails as printed teaches nothing)."""
     import re
 
-    done = subprocess.run(
-        [sys.executable, "-m", "demo_stream", "--help"],
-        capture_output=True,
-        text=True,
-        check=False,
-        timeout=60,
-    )
-    (line,) = [text for text in done.stdout.splitlines() if text.strip().startswith("e.g.")]
+    (line,) = [text for text in _help_text().splitlines() if text.strip().startswith("e.g.")]
     examples = re.findall(r"\S+@\S+", line)
     assert examples
     for example in examples:

@@ -184,22 +184,7 @@ class LinePipeline:
                 )
             unevaluated = decision == "duplicate" and self._unevaluated(line, scan)
             if decision == "duplicate" and not unevaluated:
-                self._counters.duplicates += 1
-                self._log.info(
-                    "line_skipped_duplicate",
-                    scan=line.scan_id,
-                    line=line.line_index,
-                    direction=line.direction,
-                    file=path.name,
-                )
-                return LineOutcome(
-                    path,
-                    "duplicate",
-                    line.scan_id,
-                    line.line_index,
-                    line.direction,
-                    events=opening_events,
-                )
+                return self._duplicate(path, line, opening_events)
             t0 = time.perf_counter()
             fit = fit_line(line.freq_hz, line.counts, scan.fit_model)
             line_field = field_from_fit(
@@ -213,25 +198,8 @@ class LinePipeline:
         except LineFileError as error:
             return self._quarantine(path, error)
         if receipt is None:  # committed before a crash cut its evaluation short
-            self._counters.duplicates += 1
             events = opening_events + self._evaluate(line, scan, fit, line_field)
-            self._log.warning(
-                "line_evaluated_after_restart",
-                scan=line.scan_id,
-                line=line.line_index,
-                direction=line.direction,
-                alerts=len(events),
-                file=path.name,
-            )
-            return LineOutcome(
-                path,
-                "duplicate",
-                line.scan_id,
-                line.line_index,
-                line.direction,
-                fit_s=t1 - t0,
-                events=events,
-            )
+            return self._duplicate(path, line, events, evaluated=True, fit_s=t1 - t0)
         # The line is committed: count it before anything else can fail.
         failures = int(np.count_nonzero(fit.status != FitStatus.OK))
         self._note_written(line, failures)
@@ -261,6 +229,35 @@ class LinePipeline:
             fit_s=t1 - t0,
             write_s=receipt.write_s,
             failures=failures,
+            events=events,
+        )
+
+    def _duplicate(
+        self,
+        path: Path,
+        line: ScanLine,
+        events: tuple[AlertEvent, ...],
+        *,
+        evaluated: bool = False,
+        fit_s: float = 0.0,
+    ) -> LineOutcome:
+        """The outcome of a file whose line is committed already: skipped, or (after a
+        crash between its commit and its evaluation) ``evaluated`` now."""
+        self._counters.duplicates += 1
+        where = {"scan": line.scan_id, "line": line.line_index, "direction": line.direction}
+        if evaluated:
+            self._log.warning(
+                "line_evaluated_after_restart", **where, alerts=len(events), file=path.name
+            )
+        else:
+            self._log.info("line_skipped_duplicate", **where, file=path.name)
+        return LineOutcome(
+            path,
+            "duplicate",
+            line.scan_id,
+            line.line_index,
+            line.direction,
+            fit_s=fit_s,
             events=events,
         )
 
