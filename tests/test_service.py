@@ -77,6 +77,20 @@ class _FakeClock:
         return self.now_s
 
 
+def test_on_a_small_disk_the_clear_level_stays_within_reach(tmp_path: Path) -> None:
+    """On a disk of 1100 MiB with a floor of 1024 MiB the usual band (max(10 %, 64 MiB))
+    would put the clear level at 1126 MiB, beyond the disk: the band shrinks to half of
+    what lies above the floor (38 MiB), so the guard clears once 1062 MiB are free."""
+    free = {"bytes": 900 * MIB}
+    guard = DiskGuard(
+        tmp_path, 1024 * MIB, free_bytes=lambda _p: free["bytes"], disk_bytes=lambda _p: 1100 * MIB
+    )
+    assert guard.check() == "raised"
+    assert guard.clear_bytes == 1024 * MIB + 38 * MIB
+    free["bytes"] = 1070 * MIB
+    assert guard.check() == "cleared"
+
+
 def test_disk_guard_raises_once_and_clears_above_the_hysteresis(tmp_path: Path) -> None:
     """Below the floor the guard turns low once; it stays low (no second event) until free
     space exceeds the floor plus max(10 %, 64 MiB) (hysteresis against flapping: common

@@ -26,6 +26,7 @@ __all__ = [
     "Unreadable",
     "UnreadableFiles",
     "free_disk_bytes",
+    "total_disk_bytes",
 ]
 
 #: Output folder and free space are looked at no more often than this, s.
@@ -51,6 +52,12 @@ def free_disk_bytes(folder: Path) -> int:
     return st.f_bavail * st.f_frsize
 
 
+def total_disk_bytes(folder: Path) -> int:
+    """Size of the file system of ``folder``, bytes (``f_blocks * f_frsize``, statvfs(3))."""
+    st = os.statvfs(folder)
+    return st.f_blocks * st.f_frsize
+
+
 def _nearest_existing(folder: Path) -> Path:
     """``folder`` or its closest existing ancestor (the disk it will be created on)."""
     for candidate in (folder, *folder.parents):
@@ -70,6 +77,8 @@ class DiskGuard:
         Below this the guard turns low.
     free_bytes : callable, optional
         ``free_bytes(folder) -> int`` (default :func:`free_disk_bytes`); tests inject one.
+    disk_bytes : callable, optional
+        ``disk_bytes(folder) -> int``, the disk's size (default :func:`total_disk_bytes`).
     low : bool
         Start in the low state (a guard rebuilt on reload keeps its predecessor's state).
 
@@ -85,11 +94,14 @@ class DiskGuard:
         min_free_bytes: int,
         *,
         free_bytes: Callable[[Path], int] = free_disk_bytes,
+        disk_bytes: Callable[[Path], int] = total_disk_bytes,
         low: bool = False,
     ) -> None:
         self.folder = Path(folder)
         self.min_free_bytes = int(min_free_bytes)
-        self.clear_bytes = self.min_free_bytes + max(self.min_free_bytes // 10, 64 * MIB)
+        self._band = max(self.min_free_bytes // 10, 64 * MIB)
+        self.clear_bytes = self.min_free_bytes + self._band
+        self._disk_bytes = disk_bytes
         self._free_bytes = free_bytes
         self.low = low
         self.last_free_bytes: int | None = None
@@ -102,12 +114,14 @@ class DiskGuard:
         The service calls this at most every :data:`RESOURCE_CHECK_INTERVAL_S`.
         """
         try:
-            free = int(self._free_bytes(_nearest_existing(self.folder)))
+            where = _nearest_existing(self.folder)
+            free = int(self._free_bytes(where))
         except OSError as exc:
             self.last_error = f"{self.folder}: cannot read free space: {exc}"
             return None
         self.last_error = None
         self.last_free_bytes = free
+        self._fit_band_to_the_disk(where)
         if not self.low and free < self.min_free_bytes:
             self.low = True
             return "raised"
@@ -115,6 +129,19 @@ class DiskGuard:
             self.low = False
             return "cleared"
         return None
+
+    def _fit_band_to_the_disk(self, where: Path) -> None:
+        """Keep the clear level within reach: on a disk smaller than the floor plus the
+        band, the band shrinks to half of what lies above the floor (a disk that cannot
+        be looked at keeps the band)."""
+        try:
+            size = int(self._disk_bytes(where))
+        except OSError:
+            return
+        band = self._band
+        if size > self.min_free_bytes:
+            band = min(band, (size - self.min_free_bytes) // 2)
+        self.clear_bytes = self.min_free_bytes + band
 
 
 @dataclass
