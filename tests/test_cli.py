@@ -337,3 +337,27 @@ def test_output_cut_short_by_a_closed_pipe_ends_quietly(tmp_path: Path) -> None:
     assert writer.returncode == 141
     assert "Traceback" not in writer.stderr
     assert "BrokenPipeError" not in writer.stderr
+
+
+def test_a_copy_of_the_default_config_in_a_clean_folder_works_as_the_readme_says(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """README step 2: copy config/default.yaml, set the two paths. The state folder and the
+    alert log then follow output_root (null in the file means the default below it), an
+    unquoted YAML `off` for the console is taken as meant, and a profile folder that is
+    not beside the copy is reported instead of vanishing in silence."""
+    text = (REPO / "config" / "default.yaml").read_text(encoding="utf-8")
+    text = text.replace("/var/lib/strayline/incoming", str(tmp_path / "incoming"))
+    text = text.replace("/var/lib/strayline/scans", str(tmp_path / "scans"))
+    text = text.replace("  console: auto", "  console: off")  # YAML reads this as false
+    copy = tmp_path / "my.yaml"
+    copy.write_text(text, encoding="utf-8")
+    monkeypatch.chdir(tmp_path)
+    assert main(["check-config", str(copy)]) == 0
+    captured = capsys.readouterr()
+    assert f"profiles: none in {tmp_path / 'profiles'}" in captured.out
+    assert "warning: no sample-type profile in" in captured.err
+    config = load_config(copy)
+    assert config.paths.state_dir == tmp_path / "scans" / ".strayline"
+    assert config.paths.alert_log == tmp_path / "scans" / "alerts.jsonl"
+    assert config.logging.console == "off"

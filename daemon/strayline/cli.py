@@ -254,8 +254,16 @@ def _cmd_check_config(args: argparse.Namespace) -> int:
     from strayline.config import config_digest, load_config
 
     config = load_config(args.file)
-    profiles = ", ".join(config.available_profiles()) or "none"
+    available = config.available_profiles()
+    profiles = ", ".join(available) or f"none in {config.profiles_dir}"
     print(f"{args.file}: ok (digest {config_digest(config)[:12]}; profiles: {profiles})")
+    if not available:
+        print(
+            f"strayline: warning: no sample-type profile in {config.profiles_dir}; "
+            "profiles_dir is taken relative to the config file's folder: point it at the "
+            "folder that holds the profiles (config/profiles of strayline)",
+            file=sys.stderr,
+        )
     return EXIT_OK
 
 

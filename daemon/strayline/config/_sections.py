@@ -101,6 +101,19 @@ class Section(BaseModel):
 # --------------------------------------------------------------------------- sections
 
 
+#: Paths whose default derives from ``output_root``; null in a file asks for that default.
+_DERIVED = ("state_dir", "alert_log")
+
+
+def _console_switch(value: Any) -> Any:
+    """YAML reads an unquoted ``off`` as false (and ``on`` as true): take them as meant."""
+    if value is False:
+        return "off"
+    if value is True:
+        return "auto"
+    return value
+
+
 class PathsSection(Section):
     """Where lines come from and where results go (absolute once loaded)."""
 
@@ -113,7 +126,8 @@ class PathsSection(Section):
     @classmethod
     def _defaults_below_output_root(cls, data: Any) -> Any:
         if isinstance(data, Mapping):
-            data = dict(data)
+            # null (or no key): the default below output_root, as default.yaml documents
+            data = {k: v for k, v in data.items() if not (k in _DERIVED and v is None)}
             root = data.get("output_root")
             if isinstance(root, str | Path) and str(root):
                 data.setdefault("state_dir", str(Path(root) / ".strayline"))
@@ -288,7 +302,9 @@ class LoggingSection(Section):
     """The daemon's own log (see :func:`strayline.logs.configure_logging`)."""
 
     level: Literal["debug", "info", "warning", "error", "critical"] = "info"
-    console: Literal["auto", "plain", "journald", "json", "off"] = "auto"
+    console: Annotated[
+        Literal["auto", "plain", "journald", "json", "off"], BeforeValidator(_console_switch)
+    ] = "auto"
     json_file: ResolvedPath | None = None
 
 

@@ -178,6 +178,12 @@ class Service:
         self.watcher.start()  # arms the observer and lists the tree (catch-up)
         self._check_resources(force=True)
         self._notifier.notify("READY=1", f"STATUS={self._status_text()}")
+        if not self.config.available_profiles():
+            self._log.warning(
+                "no_profiles",
+                profiles_dir=str(self.config.profiles_dir),
+                problem="no sample-type profile there: every scan runs with the base config",
+            )
         self._log.info(
             "service_ready",
             watch_root=str(self.config.paths.watch_root),
