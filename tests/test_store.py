@@ -256,7 +256,9 @@ def test_xarray_opens_a_labelled_dataset_while_the_scan_runs(tmp_path: Path) -> 
             y = ds["y"].values
             assert y[0] == 0.0
             assert y[2] == pytest.approx(1.0e-7)
-            assert np.isnan(y[[1, 3, 4]]).all()
+            # lines 1, 3, 4 are not written: planned where the scan will put them
+            np.testing.assert_allclose(y[[1, 3, 4]], [0.5e-7, 1.5e-7, 2.0e-7])
+            assert (ds["status"].values[[1, 3, 4]] == 255).all()
             np.testing.assert_array_equal(
                 ds["field_nv_t"].sel(y=1.0e-7).values, lines[1][2].field_nv_t
             )
@@ -582,19 +584,20 @@ def test_crash_right_after_the_begin_record_reports_the_line(tmp_path: Path) -> 
 
 
 def test_rows_written_without_a_ledger_entry_are_reset(tmp_path: Path) -> None:
-    """Rows found in the maps for a line the ledger never committed are reset and reported."""
+    """Rows found in the maps for a line the ledger never committed are reset and reported;
+    the slow-axis coordinate then holds planned positions only."""
     open_store(tmp_path, chunk_lines=2).close()
     group = zarr.open_group(tmp_path / "scan7.zarr", mode="r+")
     group["backward/chi2_red"][4, :] = 1.5
     group["forward/status"][1, 2] = 0
-    group["forward/y"][3] = 1e-7
     with open_store(tmp_path) as store:
-        assert store.recovered_lines == [(1, "forward"), (3, "forward"), (4, "backward")]
+        assert store.recovered_lines == [(1, "forward"), (4, "backward")]
         assert_unwritten(store, "backward", 4)
         assert_unwritten(store, "forward", 1)
         assert np.isnan(store.read_map("chi2_red", "backward")).all()
         ds = xr.open_zarr(store.path, group="forward", consolidated=False)
-        assert np.isnan(ds["y"].values).all()
+        y = ds["y"].values  # nothing written: planned, one fast-axis pitch per line
+        np.testing.assert_allclose(y, np.arange(N_LINES) * (X_M[1] - X_M[0]))
         ds.close()
 
 
@@ -769,3 +772,37 @@ def test_the_reader_tells_a_store_from_a_folder_that_is_not_one(tmp_path: Path) 
     assert reader.scan_id == "scan7"
     assert reader.committed_lines("forward") == [0]
     assert reader.read_array("status", "forward").shape == (N_LINES, N_PIXELS)
+
+
+def test_the_readme_snippet_opens_and_plots_a_scan_while_it_runs(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """The README's xarray snippet, run as printed on a store with two of five lines
+    written (the others planned), opens the trace and plots the field map: the slow-axis
+    coordinate of a running scan is monotonic."""
+    import re
+
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    readme = (Path(__file__).resolve().parents[1] / "README.md").read_text(encoding="utf-8")
+    (snippet,) = [
+        block
+        for block in re.findall(r"```python\n(.*?)```", readme, flags=re.S)
+        if "open_zarr" in block
+    ]
+    snippet = "\n".join(line.strip() for line in snippet.splitlines())
+    with open_store(tmp_path / "output") as store:
+        for index in (0, 1):
+            store.write_line(*make_records(index))
+        (tmp_path / "output" / "scan7.zarr").rename(tmp_path / "output" / "my-scan.zarr")
+    monkeypatch.chdir(tmp_path)
+    namespace: dict[str, object] = {}
+    try:
+        exec(snippet, namespace)  # the snippet as the README prints it
+    finally:
+        plt.close("all")
+    ds = namespace["ds"]
+    assert ds.field_nv_t.shape == (N_LINES, N_PIXELS)  # type: ignore[attr-defined]

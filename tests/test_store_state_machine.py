@@ -153,8 +153,9 @@ class StoreMachine(RuleBasedStateMachine):
                     else:
                         assert np.isnan(stored[i]).all(), (name, i, direction)
             y = group[f"{direction}/y"][:]
+            assert np.all(np.diff(y) > 0), y  # planned positions keep it monotonic
             for i in range(N_LINES):
-                assert (y[i] == i * 1e-7) if i in expected else np.isnan(y[i])
+                assert (y[i] == i * 1e-7) if i in expected else np.isfinite(y[i])
                 raw = store.read_raw(i, direction)
                 on_disk = (store.path / "raw" / direction / str(i)).exists()
                 if i in expected and self.raw:

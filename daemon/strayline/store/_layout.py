@@ -7,7 +7,8 @@ The store ``<output_root>/<scan_id>.zarr`` (zarr format 3, local directory)::
         <map>                  (n_lines_planned, n_pixels), dims ("y", "x"), one chunk per
                                ``chunk_lines`` whole lines; see :data:`MAPS`
         x                      (n_pixels,) fast-axis position, m (set at creation)
-        y                      (n_lines_planned,) slow-axis position, m (NaN until written)
+        y                      (n_lines_planned,) slow-axis position, m; a line not yet
+                               written has its planned position (status 255 there)
     raw/forward/, raw/backward/
         <line_index>/          one group per line with raw spectra (when enabled):
             counts             (n_pixels, n_freq) photon counts, the file's dtype
@@ -192,7 +193,11 @@ def create_layout(
                 fill_value=float("nan"),
                 chunk_key_encoding=_CHUNK_KEY_ENCODING,
                 dimension_names=("y",),
-                attributes={"units": "m", "long_name": "slow-axis position"},
+                attributes={
+                    "units": "m",
+                    "long_name": "slow-axis position",
+                    "comment": "planned position where status is 255 (line not written)",
+                },
             )
         raw = root.create_group("raw", attributes={"long_name": "raw spectra, one group per line"})
         for direction in DIRECTIONS:

@@ -9,7 +9,7 @@ from strayline.fit import FitStatus, LineFit
 from strayline.lines import ScanLine
 from strayline.store._layout import STATUS_FILL
 
-__all__ = ["count_failures", "line_rows"]
+__all__ = ["count_failures", "line_rows", "planned_y"]
 
 
 def _pair_mean(values: np.ndarray) -> np.ndarray:
@@ -100,3 +100,36 @@ def count_failures(status_row: np.ndarray) -> int:
     """Pixels of a written row whose fit did not succeed."""
     written = status_row != STATUS_FILL
     return int(np.count_nonzero(written & (status_row != FitStatus.OK)))
+
+
+def planned_y(y_m: np.ndarray, written: np.ndarray, pitch_m: float) -> np.ndarray:
+    """The slow-axis coordinate of every planned line, m.
+
+    Written lines keep their own ``y``; a line not yet written gets where the scan will
+    put it: between written lines, interpolated; before the first and after the last, the
+    written lines' mean step per line carried on (with one written line, or none, the
+    fast-axis pitch ``pitch_m`` per line). So the coordinate of a scan that moves
+    monotonically along its slow axis is monotonic while the scan runs, and a labelled
+    reader (xarray) can index and plot a partial map; ``status`` = 255 marks those lines.
+
+    Parameters
+    ----------
+    y_m : ndarray, shape (n_lines_planned,)
+        Stored coordinate (only the written entries are read).
+    written : ndarray of bool, shape (n_lines_planned,)
+    pitch_m : float
+        Step per line when fewer than two lines are written, m.
+    """
+    n = y_m.shape[0]
+    index = np.arange(n, dtype=np.float64)
+    done = np.flatnonzero(written)
+    if done.size == 0:
+        return index * pitch_m
+    first, last = done[0], done[-1]
+    y_first, y_last = float(y_m[first]), float(y_m[last])
+    step = (y_last - y_first) / (last - first) if last > first else pitch_m
+    out = np.interp(index, done.astype(np.float64), y_m[done].astype(np.float64))
+    out[:first] = y_first + step * (index[:first] - first)
+    out[last + 1 :] = y_last + step * (index[last + 1 :] - last)
+    out[done] = y_m[done]
+    return out

@@ -31,7 +31,6 @@ A :class:`ScanStore` is not thread-safe.
 
 from __future__ import annotations
 
-import math
 import re
 import shutil
 import time
@@ -65,7 +64,7 @@ from strayline.store._layout import (
     remove_partials,
 )
 from strayline.store._ledger import Key, Ledger, LedgerEntry, format_time, parse_time
-from strayline.store._rows import count_failures, line_rows
+from strayline.store._rows import count_failures, line_rows, planned_y
 from strayline.store.reader import store_path
 
 __all__ = [
@@ -226,6 +225,18 @@ class ScanStore:
             self._y[direction] = arrays["y"]
             self._raw[direction] = root[f"raw/{direction}"]
         self._failures: dict[Key, int] = {}
+        # The slow-axis coordinate, kept in memory: written lines and what they hold.
+        x = np.asarray(arrays["x"][:], dtype=np.float64)
+        steps = np.abs(np.diff(x[np.isfinite(x)]))
+        self._pitch_m = float(np.median(steps)) if steps.size and np.median(steps) > 0 else 1e-9
+        self._y_m: dict[str, np.ndarray] = {
+            d: np.asarray(self._y[d][:], dtype=np.float64) for d in DIRECTIONS
+        }
+        self._y_written: dict[str, np.ndarray] = {
+            d: np.zeros(self.n_lines_planned, dtype=bool) for d in DIRECTIONS
+        }
+        for i, d in ledger.state.committed:
+            self._y_written[d][i] = True
 
     # ------------------------------------------------------------------ opening
 
@@ -355,6 +366,7 @@ class ScanStore:
                 durable=durable,
             )
             store._recover()
+            store._plan_y()
             store._note_config(config_json, config_digest)
             store._note_nv_axis(nv_axis_rad)
         except KeyError as exc:
@@ -381,6 +393,14 @@ class ScanStore:
                 self._root.update_attributes,
                 {"other_configs": others},
             )
+
+    def _plan_y(self) -> None:
+        """Give lines not yet written their planned position (stores written before did
+        not: NaN), writing only what changes."""
+        for direction in DIRECTIONS:
+            y = planned_y(self._y_m[direction], self._y_written[direction], self._pitch_m)
+            if not np.array_equal(y, self._y_m[direction], equal_nan=True):
+                self._guard("planning the slow-axis coordinate", self._put_y, direction)
 
     def _note_nv_axis(self, nv_axis_rad: tuple[float, float] | None) -> None:
         """Record the NV axis in a store created before stores recorded it."""
@@ -414,7 +434,8 @@ class ScanStore:
                     self._failures[(i, d)] = count_failures(status[i])
 
     def _stray_lines(self, direction: str, done: set[int]) -> set[int]:
-        """Uncommitted line indices with any non-fill value in a map, ``y`` or raw spectra.
+        """Uncommitted line indices with any non-fill value in a map or raw spectra (``y``
+        holds planned positions for every line and tells nothing).
 
         Only chunks that exist on disk and cover an uncommitted line are read, so a store
         closed cleanly costs a directory listing per map.
@@ -439,8 +460,6 @@ class ScanStore:
                 else:
                     present = np.any(~np.isnan(rows), axis=1)
                 lines |= {start + int(k) for k in np.flatnonzero(present)}
-        y = self._y[direction][:]
-        lines |= {int(k) for k in np.flatnonzero(~np.isnan(y))}
         raw_dir = self.path / "raw" / direction
         lines |= {int(p.name) for p in raw_dir.iterdir() if p.is_dir() and p.name.isdigit()}
         return lines - done
@@ -449,7 +468,8 @@ class ScanStore:
         index, direction = key
         for spec in MAPS:
             self._maps[direction][spec.name][index, :] = spec.fill
-        self._y[direction][index] = math.nan
+        self._y_written[direction][index] = False
+        self._put_y(direction)
         raw_line = self.path / "raw" / direction / str(index)
         if raw_line.exists():
             shutil.rmtree(raw_line)
@@ -542,11 +562,20 @@ class ScanStore:
         order = np.argsort(np.asarray(line.x_m), kind="stable")
         for name in MAP_NAMES:
             self._maps[direction][name][index, :] = np.asarray(rows[name])[order]
-        self._y[direction][index] = float(line.y_m)
+        self._y_m[direction][index] = float(line.y_m)
+        self._y_written[direction][index] = True
+        self._put_y(direction)
         raw_line = self.path / "raw" / direction / str(index)
         if raw_line.exists():  # spectra of a superseded version
             shutil.rmtree(raw_line)
         self._put_raw(key, line)
+
+    def _put_y(self, direction: str) -> None:
+        """Write the slow-axis coordinate whole (one chunk): written lines' own positions,
+        planned ones for the rest (:func:`planned_y`)."""
+        y = planned_y(self._y_m[direction], self._y_written[direction], self._pitch_m)
+        self._y_m[direction] = y
+        self._y[direction][:] = y
 
     def _skip_raw(self, key: Key, line: ScanLine) -> None:
         """Raw spectra are off for this store."""
