@@ -6,9 +6,10 @@ import dataclasses
 import json
 import math
 import shutil
+import time
 from collections.abc import Mapping
 from dataclasses import replace
-from datetime import UTC, datetime
+from datetime import UTC, datetime, timedelta
 from pathlib import Path
 from typing import Any
 
@@ -893,3 +894,71 @@ def _write_line(line: ScanLine) -> Path:
     from strayline.lines import write_line_file
 
     return write_line_file(line)
+
+
+@pytest.mark.slow
+def test_a_scan_planned_at_the_contracts_limit_opens_and_finishes_within_a_watchdog_period(
+    tmp_path: Path,
+) -> None:
+    """A line within the contract with n_lines_planned = 65,536 and line_index = 65,535 (so
+    the scan is complete at once) is written, its products made, and its store reopened,
+    each well within the unit's WatchdogSec = 90 s (it took minutes when opening read every
+    planned chunk): the cost follows what was written, not what is planned."""
+    rng = np.random.default_rng(3)
+    t0 = datetime(2026, 1, 1, tzinfo=UTC)
+    folder = tmp_path / "incoming" / "vast"
+    folder.mkdir(parents=True)
+    line = ScanLine(
+        source=folder / "line_65535_fwd.h5",
+        scan_id="vast",
+        line_index=65535,
+        n_lines_planned=65536,
+        direction="forward",
+        start_time=t0,
+        end_time=t0 + timedelta(seconds=1),
+        dwell_s=1e-3,
+        nv_theta_rad=0.9,
+        nv_phi_rad=0.0,
+        freq_hz=np.linspace(2.82e9, 2.92e9, 61),
+        counts=rng.poisson(500.0, (32, 61)).astype(np.float64),
+        x_m=np.arange(32) * 1e-8,
+        y_m=1e-8,
+    )
+    path = _write_line(line)
+    config = _config(tmp_path)
+    for expected in ("written", "duplicate"):
+        started = time.monotonic()
+        pipeline = LinePipeline(config)
+        try:
+            assert pipeline.process(path).kind == expected
+        finally:
+            pipeline.close()
+        assert time.monotonic() - started < 45.0  # half the watchdog period
+    assert (tmp_path / "output" / "vast.products" / "report.json").is_file()
+
+
+def test_background_jobs_run_in_order_survive_a_failure_and_close_within_a_bound() -> None:
+    """The products worker runs jobs one after the other on its own thread, logs a job
+    that fails and goes on, and closing waits for queued jobs but never longer than asked."""
+    import threading
+
+    from structlog.testing import capture_logs
+
+    from strayline.pipeline._background import BackgroundWorker
+
+    done: list[int] = []
+    with capture_logs() as logs:
+        worker = BackgroundWorker("test-worker")
+        worker.submit(lambda: done.append(1))
+        worker.submit(lambda: 1 / 0)  # type: ignore[func-returns-value]
+        worker.submit(lambda: done.append(3))
+        assert worker.close(timeout_s=10.0)
+    assert done == [1, 3]
+    assert [r["event"] for r in logs] == ["background_job_failed"]
+    release = threading.Event()
+    slow = BackgroundWorker("test-slow")
+    slow.submit(lambda: release.wait(10))  # type: ignore[func-returns-value]
+    started = time.monotonic()
+    assert not slow.close(timeout_s=0.2)
+    assert time.monotonic() - started < 5.0
+    release.set()

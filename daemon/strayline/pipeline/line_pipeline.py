@@ -33,6 +33,7 @@ from strayline.errors import ConfigError, LineFileError, StoreError
 from strayline.field import LineField, field_from_fit
 from strayline.fit import FitStatus, LineFit, fit_line
 from strayline.lines import LineLimits, ScanLine, bad_file_event, quarantine_file, read_line_file
+from strayline.pipeline._background import BackgroundWorker
 from strayline.pipeline._reseed import seed_tracker
 from strayline.pipeline._setup import (
     MAX_OPEN_SCANS,
@@ -49,6 +50,10 @@ from strayline.rules import MetricsTracker, RuleEngine
 from strayline.store import ScanStore
 
 __all__ = ["LineOutcome", "LinePipeline", "PipelineStatistics"]
+
+#: How long closing waits for products under way, s (within systemd's TimeoutStopSec;
+#: products left unfinished are remade with ``strayline products``).
+_PRODUCTS_WAIT_S = 30.0
 
 
 OutcomeKind = Literal["written", "duplicate", "quarantined", "vanished"]
@@ -125,6 +130,10 @@ class LinePipeline:
     root : Path or None
         The folder line files must lie in, symbolic links included (default
         ``paths.watch_root``; a ``process`` pass gives its own folder).
+    background_products : bool
+        Make a finished scan's products on a worker thread (the service does, so that
+        a large scan's products never hold up its loop); otherwise at once, in
+        :meth:`process`.
     clock : callable returning float, optional
         Wall-clock seconds (``time.time``) for the rule engine's stall detection.
     """
@@ -136,6 +145,7 @@ class LinePipeline:
         sink: AlertSink | None = None,
         active: ActiveAlerts | None = None,
         root: Path | None = None,
+        background_products: bool = False,
         clock: Callable[[], float] = time.time,
     ) -> None:
         self.config = config
@@ -162,6 +172,9 @@ class LinePipeline:
         self._scans: dict[str, ScanContext] = {}  # open scans, least recently used first
         self._closed_progress: dict[str, tuple[int, int]] = {}
         self._counters = _Counters()
+        self._products: BackgroundWorker | None = (
+            BackgroundWorker("strayline-products") if background_products else None
+        )
 
     # -- one file -----------------------------------------------------------------------
 
@@ -418,6 +431,8 @@ class LinePipeline:
             scan.store.close()
         self._scans.clear()
         self._engine.save(self._state_path)
+        if self._products is not None:  # products under way: a bounded wait, then go
+            self._products.close(timeout_s=_PRODUCTS_WAIT_S)
         if self._owns_sink:
             self._sink.close()
 
@@ -474,6 +489,14 @@ class LinePipeline:
         if (last, "backward") not in committed and any(d == "backward" for _, d in committed):
             return
         scan.products_done = True
+        job = partial(self._make_products, scan, line.nv_theta_rad, line.nv_phi_rad)
+        if self._products is None:
+            job()
+        else:
+            self._products.submit(job)
+
+    def _make_products(self, scan: ScanContext, nv_theta_rad: float, nv_phi_rad: float) -> None:
+        """Make one finished scan's products (reads the store without its lock)."""
         section = scan.config.products
         out_dir = products_dir(self._output_root, section.folder, scan.scan_id)
         started = time.perf_counter()
@@ -481,8 +504,8 @@ class LinePipeline:
             report = make_products(
                 scan.store.path,
                 standoff_m=section.standoff_m,
-                nv_theta_rad=line.nv_theta_rad,
-                nv_phi_rad=line.nv_phi_rad,
+                nv_theta_rad=nv_theta_rad,
+                nv_phi_rad=nv_phi_rad,
                 out_dir=out_dir,
                 alert_log=self.config.paths.alert_log,
                 images=section.images,

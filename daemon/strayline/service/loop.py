@@ -142,7 +142,9 @@ class Service:
         self._disk = self._new_disk_guard(config, low=False)
         self.pipeline: LinePipeline | None = None
         try:
-            self.pipeline = LinePipeline(config, sink=self._sink, active=self._alerts)
+            self.pipeline = LinePipeline(
+                config, sink=self._sink, active=self._alerts, background_products=True
+            )
         except OSError as exc:  # output folder unusable at start: wait for it, alerting
             self._begin_outage(f"building the pipeline failed: {exc}")
         else:
@@ -460,7 +462,9 @@ class Service:
 
     def _new_pipeline(self, config: Config) -> LinePipeline:
         """A pipeline for ``config``, told about low disk, with held-back alerts sent."""
-        pipeline = LinePipeline(config, sink=self._sink, active=self._alerts)
+        pipeline = LinePipeline(
+            config, sink=self._sink, active=self._alerts, background_products=True
+        )
         if self._disk.low:
             pipeline.set_raw_spectra(False)  # no scan is open yet: nothing to reopen
         unlogged, self._unlogged = self._unlogged, []

@@ -112,7 +112,7 @@ class StoreReader:
         if not isinstance(array, zarr.Array):
             raise StoreError(f"{self.path}: {direction}/{name} must be an array; found a group")
         try:
-            return np.asarray(array[:])
+            return _read_sparse(array, self.path / direction / name / "c")
         except OSError as error:
             raise StoreError(f"{self.path}: reading {direction}/{name} failed: {error}") from error
 
@@ -135,6 +135,30 @@ class StoreReader:
                 if "nv_theta_rad" in attrs and "nv_phi_rad" in attrs:
                     return float(attrs["nv_theta_rad"]), float(attrs["nv_phi_rad"])  # type: ignore[arg-type]
         return None
+
+
+def _read_sparse(array: zarr.Array, chunk_dir: Path) -> np.ndarray:
+    """The whole array, reading only the row chunks on disk when they are few.
+
+    A scan of 65,536 planned lines with a few written has a few chunk files: reading
+    them alone (the rest is the fill value) costs what was written, while zarr would
+    look up every planned chunk. A mostly written map is read in one call.
+    """
+    if array.ndim != 2:
+        return np.asarray(array[:])
+    block = array.chunks[0]
+    n_blocks = -(-array.shape[0] // block)
+    try:
+        starts = [int(e.name) * block for e in chunk_dir.iterdir() if e.name.isdigit()]
+    except FileNotFoundError:
+        starts = []
+    if 2 * len(starts) >= n_blocks:
+        return np.asarray(array[:])
+    out = np.full(array.shape, array.fill_value, dtype=array.dtype)
+    for start in starts:
+        stop = min(start + block, array.shape[0])
+        out[start:stop] = array[start:stop]
+    return out
 
 
 def open_store_reader(path: Path) -> StoreReader:

@@ -428,10 +428,14 @@ class ScanStore:
             )
         self.recovered_lines = sorted(to_reset)
         for direction in DIRECTIONS:
-            status = self._maps[direction]["status"][:]
-            for i, d in state.committed:
-                if d == direction:
-                    self._failures[(i, d)] = count_failures(status[i])
+            done = {i for (i, d) in state.committed if d == direction}
+            status = self._maps[direction]["status"]
+            for start, stop in self._blocks_on_disk(direction, "status"):
+                wanted = done.intersection(range(start, stop))
+                if wanted:
+                    rows = status[start:stop]
+                    for i in wanted:
+                        self._failures[(i, direction)] = count_failures(rows[i - start])
 
     def _stray_lines(self, direction: str, done: set[int]) -> set[int]:
         """Uncommitted line indices with any non-fill value in a map or raw spectra (``y``
@@ -443,15 +447,7 @@ class ScanStore:
         lines: set[int] = set()
         for spec in MAPS:
             array = self._maps[direction][spec.name]
-            block = array.chunks[0]
-            chunk_dir = self.path / direction / spec.name / "c"
-            if not chunk_dir.is_dir():
-                continue
-            for entry in chunk_dir.iterdir():
-                if not entry.name.isdigit():
-                    continue
-                start = int(entry.name) * block
-                stop = min(start + block, self.n_lines_planned)
+            for start, stop in self._blocks_on_disk(direction, spec.name):
                 if done.issuperset(range(start, stop)):
                     continue
                 rows = array[start:stop]
@@ -463,6 +459,17 @@ class ScanStore:
         raw_dir = self.path / "raw" / direction
         lines |= {int(p.name) for p in raw_dir.iterdir() if p.is_dir() and p.name.isdigit()}
         return lines - done
+
+    def _blocks_on_disk(self, direction: str, name: str) -> list[tuple[int, int]]:
+        """Row ranges ``[start, stop)`` of the chunks of one map that exist on disk: what a
+        reader must look at, so that opening a store costs what was written, not what the
+        scan plans (65,536 planned lines with one written read one chunk, not 65,536)."""
+        block = self._maps[direction][name].chunks[0]
+        chunk_dir = self.path / direction / name / "c"
+        if not chunk_dir.is_dir():
+            return []
+        starts = sorted(int(e.name) * block for e in chunk_dir.iterdir() if e.name.isdigit())
+        return [(start, min(start + block, self.n_lines_planned)) for start in starts]
 
     def _clear_rows(self, key: Key) -> None:
         index, direction = key
