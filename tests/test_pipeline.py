@@ -962,3 +962,28 @@ def test_background_jobs_run_in_order_survive_a_failure_and_close_within_a_bound
     assert not slow.close(timeout_s=0.2)
     assert time.monotonic() - started < 5.0
     release.set()
+
+
+def test_products_name_missing_lines_and_are_remade_when_a_late_line_arrives(
+    scan_files: Path, tmp_path: Path
+) -> None:
+    """Products made when the last planned line lands while line 3 is missing (held back,
+    or quarantined) say so in the report; when line 3 arrives late they are made again,
+    with no line missing."""
+    folder = _copy_scan(scan_files, tmp_path)
+    files = _files(folder)
+    config = _config(tmp_path)
+    report = tmp_path / "output" / f"{SCAN}.products" / "report.json"
+    pipeline = LinePipeline(config)
+    try:
+        for path in files[:3] + files[4:]:
+            pipeline.process(path)
+        first = json.loads(report.read_text(encoding="utf-8"))
+        assert first["missing_lines"] == {"forward": {"count": 1, "first": [3]}}
+        assert "- 1 planned lines missing: 3" in report.with_name("report.md").read_text()
+        pipeline.process(files[3])
+        again = json.loads(report.read_text(encoding="utf-8"))
+    finally:
+        pipeline.close()
+    assert again["missing_lines"] == {"forward": {"count": 0, "first": []}}
+    assert again["traces"]["forward"]["lines_committed"] == N_LINES

@@ -606,6 +606,33 @@ def test_core_needs_two_observations_settle_apart() -> None:
     assert core.due_for_probe(4.0) == [(path, (100, 5))]
 
 
+def test_core_gives_up_at_once_on_a_quiet_broken_file_once_a_later_line_is_ready() -> None:
+    """A line file that has gone quiet but does not open is given up as soon as a later
+    line of the same scan is ready (the instrument moved on: it is truncated), not after
+    give_up_s; a broken file with no later line yet, or one still changing, is waited for,
+    and so is a later line's trouble in another scan folder."""
+    core = Candidates(settle_s=1.0, give_up_s=600.0, probe_retry_s=3.0)
+    torn = Path("/r/scan/line_00049_fwd.h5")
+    other_scan = Path("/r/other/line_00003_fwd.h5")
+    for path in (torn, other_scan):
+        core.observe(path, 100, 5, now_s=0.0)
+        core.observe(path, 100, 5, now_s=1.0)
+        assert core.record_probe(path, (100, 5), "truncated file", now_s=1.0) is None
+    assert core.expire(2.0) == []  # nothing later yet: it may still be finished
+    later = Path("/r/scan/line_00050_fwd.h5")
+    core.observe(later, 200, 7, now_s=2.0)
+    core.observe(later, 200, 7, now_s=3.0)
+    assert core.record_probe(later, (200, 7), None, now_s=3.0) is not None
+    (gave_up,) = core.expire(3.0)
+    assert gave_up.path == torn
+    assert gave_up.kind == "gave_up"
+    assert gave_up.reason == (
+        "does not open (truncated file) while a later line of the scan, line_00050_fwd.h5, "
+        "is complete: truncated or damaged, it will not be finished"
+    )
+    assert core.pending_paths() == [other_scan]
+
+
 _CORE_ACTIONS: list[tuple[str, object]] = [
     ("observe", (100, 1)),
     ("observe", (100, 1)),

@@ -477,17 +477,21 @@ class LinePipeline:
 
         Complete means: the last planned forward line is committed and, if the scan has a
         backward trace at all, its last planned line too (an instrument writing trace and
-        retrace finishes with the retrace of the last line). A failure is logged as an
-        error and never retried automatically (``strayline products`` remakes them).
+        retrace finishes with the retrace of the last line). A line committed after that
+        (one that came late, or a changed file) makes them again, so they never leave out
+        a line the store has. A failure is logged as an error and never retried
+        automatically (``strayline products`` remakes them).
         """
-        if scan.products_done:
-            return
         committed = scan.store.committed()
         last = scan.store.n_lines_planned - 1
         if (last, "forward") not in committed:
             return
         if (last, "backward") not in committed and any(d == "backward" for _, d in committed):
             return
+        if scan.products_done:
+            self._log.info(
+                "products_remade", scan=scan.scan_id, line=line.line_index, reason="a late line"
+            )
         scan.products_done = True
         job = partial(self._make_products, scan, line.nv_theta_rad, line.nv_phi_rad)
         if self._products is None:

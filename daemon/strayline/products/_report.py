@@ -168,6 +168,13 @@ def report_markdown(report: Mapping[str, Any]) -> str:
             "",
             f"- {trace['lines_committed']} lines committed, {trace['pixels_committed']} pixels; "
             f"fits OK {100 * trace['fit_ok_fraction']:.1f} %",
+        ]
+        missing = report.get("missing_lines", {}).get(direction)
+        if missing and missing["count"]:
+            shown = ", ".join(str(i) for i in missing["first"])
+            more = " …" if missing["count"] > len(missing["first"]) else ""
+            lines.append(f"- {missing['count']} planned lines missing: {shown}{more}")
+        lines += [
             f"- field along NV: {_field_line(trace['field_nv_t'])}",
             f"- PL {_fmt(trace['pl_rate_cps_median'], 1e-3, 'kcounts/s')}, contrast "
             f"{_fmt(trace['contrast_median'], 100, '%', 3)}, linewidth "

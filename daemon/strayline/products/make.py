@@ -402,6 +402,24 @@ def _vector(
     return None
 
 
+#: Missing line indices listed per trace in the report (the count is always whole).
+_MISSING_LISTED = 20
+
+
+def _missing_lines(snapshot: StoreSnapshot) -> dict[str, dict[str, Any]]:
+    """Per trace with any committed line: how many planned lines are not in the store, and
+    the first of them (a line quarantined or never delivered leaves a gap in the map)."""
+    planned = int(snapshot.attrs.get("n_lines_planned") or 0)  # type: ignore[call-overload]
+    out: dict[str, dict[str, Any]] = {}
+    for direction, lines in snapshot.committed.items():
+        if not lines:
+            continue
+        done = set(lines)
+        missing = [i for i in range(planned) if i not in done]
+        out[direction] = {"count": len(missing), "first": missing[:_MISSING_LISTED]}
+    return out
+
+
 def _report_dict(
     snapshot: StoreSnapshot,
     *,
@@ -444,6 +462,7 @@ def _report_dict(
         },
         "standoff_m": standoff_m,
         "traces": summaries,
+        "missing_lines": _missing_lines(snapshot),
         "alerts": alerts,
         "products": [
             {

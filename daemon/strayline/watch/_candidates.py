@@ -9,6 +9,10 @@ A file is *ready* when two observations at least ``settle_s`` apart saw the same
 signature (size in bytes, mtime in ns) and the probe then found it opens cleanly. A
 signature once reported (ready or given up) is not reported again; a new signature at
 the same path (the file was rewritten) makes it a candidate again.
+
+A file that has gone quiet but does not open is given up at once, without waiting
+``give_up_s``, as soon as a later line of the same scan folder is ready: the instrument
+has moved on, so the file will not be finished (a truncated or damaged copy).
 """
 
 from __future__ import annotations
@@ -17,6 +21,8 @@ import math
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Literal
+
+from strayline.lines import line_key_from_name
 
 __all__ = ["Candidates", "ReadyFile", "Signature"]
 
@@ -82,6 +88,8 @@ class Candidates:
         self._probe_retry_s = probe_retry_s
         self._pending: dict[Path, _Pending] = {}
         self._reported: dict[Path, Signature] = {}
+        # Per scan folder: the latest line index seen ready, and its file's name.
+        self._latest_ready: dict[Path, tuple[int, str]] = {}
 
     def __len__(self) -> int:
         return len(self._pending)
@@ -117,6 +125,9 @@ class Candidates:
             del self._pending[path]
         for path in [p for p in self._reported if p not in present]:
             del self._reported[path]
+        folders = {p.parent for p in present}
+        for folder in [f for f in self._latest_ready if f not in folders]:
+            del self._latest_ready[folder]
 
     def due_for_probe(self, now_s: float) -> list[tuple[Path, Signature]]:
         """Candidates that have been quiet for the settle time and may be probed now."""
@@ -144,15 +155,25 @@ class Candidates:
             return None
         del self._pending[path]
         self._reported[path] = signature
+        index, _ = line_key_from_name(path.name)
+        latest = self._latest_ready.get(path.parent)
+        if index is not None and (latest is None or index > latest[0]):
+            self._latest_ready[path.parent] = (index, path.name)
         return ReadyFile(path, signature[0], signature[1], "ready")
 
     def expire(self, now_s: float) -> list[ReadyFile]:
         """Give up on the candidates first seen ``give_up_s`` or more ago."""
         gave_up: list[ReadyFile] = []
         for path, entry in list(self._pending.items()):
-            if now_s - entry.first_seen_s < self._give_up_s:
+            overtaken = self._overtaken_by(path, entry)
+            if overtaken is not None:
+                reason = (
+                    f"does not open ({entry.last_error}) while a later line of the scan, "
+                    f"{overtaken}, is complete: truncated or damaged, it will not be finished"
+                )
+            elif now_s - entry.first_seen_s < self._give_up_s:
                 continue
-            if entry.last_error is not None:
+            elif entry.last_error is not None:
                 reason = f"does not open cleanly after {self._give_up_s:g} s: {entry.last_error}"
             else:
                 reason = f"still changing after {self._give_up_s:g} s"
@@ -161,6 +182,17 @@ class Candidates:
             size_bytes, mtime_ns = entry.signature
             gave_up.append(ReadyFile(path, size_bytes, mtime_ns, "gave_up", reason))
         return gave_up
+
+    def _overtaken_by(self, path: Path, entry: _Pending) -> str | None:
+        """The name of a later ready line of the same folder, for a quiet file that failed
+        its probe; None otherwise."""
+        if entry.last_error is None or entry.last_seen_s - entry.stable_since_s < self._settle_s:
+            return None
+        latest = self._latest_ready.get(path.parent)
+        index, _ = line_key_from_name(path.name)
+        if latest is None or index is None or index >= latest[0]:
+            return None
+        return latest[1]
 
     def next_deadline_s(self) -> float | None:
         """Earliest time at which a look at the candidates can change anything."""
