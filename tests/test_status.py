@@ -131,7 +131,8 @@ def test_status_of_a_pipeline_store_matches_its_ledger_and_maps(
 
 def test_status_shows_the_scans_latest_alerts(scan_files: Path, tmp_path: Path) -> None:
     """The scan's latest alerts (here a quarantined file) are listed with its status,
-    formatted as the alert log's readable lines."""
+    formatted as the alert log's readable lines, after the line files of its folder that
+    are not in the store yet (held back, or never to open) and the quarantine's count."""
     config, pipeline = _process(tmp_path, scan_files, 3)
     bad = tmp_path / "incoming" / SCAN / "line_00005_fwd.h5"
     bad.write_bytes(b"garbage")
@@ -144,7 +145,16 @@ def test_status_shows_the_scans_latest_alerts(scan_files: Path, tmp_path: Path) 
     assert status.last_alerts == tuple(format_alert(e) for e in events)[-3:]
     assert "[bad_file]" in status.last_alerts[-1]
     assert "line 5 (forward)" in status.last_alerts[-1]
-    assert format_scan_status(status).splitlines()[1] == "  " + status.last_alerts[-1]
+    shown = format_scan_status(status).splitlines()
+    assert shown[-1] == "  " + status.last_alerts[-1]
+    # Lines 3, 4, 6 and 7 were never processed here; line 5 went to the quarantine.
+    assert status.held == tuple(f"line_0000{i}_fwd.h5" for i in (3, 4, 6, 7))
+    assert status.quarantined == 1
+    assert shown[1] == (
+        "  4 line file(s) not in the store yet: line_00003_fwd.h5, line_00004_fwd.h5, "
+        "line_00006_fwd.h5 …"
+    )
+    assert shown[2] == "  1 file(s) in quarantine"
 
 
 # -- exact rate and ETA (fake clock) -----------------------------------------------------

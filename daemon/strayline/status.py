@@ -15,7 +15,7 @@ from typing import Any
 
 from strayline.alerts import AlertEvent, format_alert, read_alert_log
 from strayline.fit import FitStatus
-from strayline.lines import DIRECTIONS
+from strayline.lines import DIRECTIONS, QUARANTINE_DIR, line_key_from_name
 from strayline.store import STATUS_FILL, LedgerState, NotAScanStore, open_store_reader
 
 __all__ = ["ScanStatus", "format_scan_status", "scan_status", "scan_statuses"]
@@ -45,6 +45,11 @@ class ScanStatus:
     pixels_done : int
     last_alerts : tuple of str
         The scan's latest alert lines, readable.
+    held : tuple of str
+        Line files in the scan's folder whose line is not in the store yet (being
+        written, waiting to settle, or one that will never open), by name.
+    quarantined : int
+        Files of the scan's folder set aside in its quarantine.
     """
 
     scan_id: str
@@ -57,6 +62,8 @@ class ScanStatus:
     pixels_failed: int
     pixels_done: int
     last_alerts: tuple[str, ...]
+    held: tuple[str, ...] = ()
+    quarantined: int = 0
 
     def as_json_dict(self) -> dict[str, Any]:
         """Plain JSON-ready values (times as ISO 8601 strings, the store as a string)."""
@@ -66,6 +73,7 @@ class ScanStatus:
             value = data[key]
             data[key] = value.isoformat() if value is not None else None
         data["last_alerts"] = list(self.last_alerts)
+        data["held"] = list(self.held)
         return data
 
 
@@ -111,6 +119,7 @@ def scan_status(store_path: Path, alerts: Sequence[AlertEvent] | None = None) ->
         pixels += int(written.sum())
         failed += int((written & (status != FitStatus.OK)).sum())
     lines = tuple(format_alert(e) for e in (alerts or ()) if e.scan_id == scan_id)[-_ALERTS_SHOWN:]
+    held, quarantined = _scan_folder(state)
     return ScanStatus(
         scan_id=scan_id,
         store=store_path,
@@ -122,7 +131,34 @@ def scan_status(store_path: Path, alerts: Sequence[AlertEvent] | None = None) ->
         pixels_failed=failed,
         pixels_done=pixels,
         last_alerts=lines,
+        held=held,
+        quarantined=quarantined,
     )
+
+
+def _scan_folder(state: LedgerState) -> tuple[tuple[str, ...], int]:
+    """(line files not yet in the store, files in quarantine) of the folder the scan's
+    latest committed line came from; nothing where that folder cannot be listed."""
+    entries = sorted(state.committed.values(), key=lambda e: e.processed_time)
+    if not entries:
+        return (), 0
+    folder = Path(entries[-1].source).parent
+    try:
+        names = sorted(e.name for e in folder.iterdir() if e.is_file())
+        quarantine = folder / QUARANTINE_DIR
+        quarantined = (
+            sum(1 for e in quarantine.iterdir() if e.suffix == ".h5")
+            if (quarantine.is_dir())
+            else 0
+        )
+    except OSError:
+        return (), 0
+    held = []
+    for name in names:
+        index, direction = line_key_from_name(name)
+        if index is not None and (index, direction or "forward") not in state.committed:
+            held.append(name)
+    return tuple(held), quarantined
 
 
 def scan_statuses(output_root: Path, alert_log: Path | None = None) -> list[ScanStatus]:
@@ -172,5 +208,10 @@ def format_scan_status(status: ScanStatus) -> str:
         else ""
     )
     out = [f"{status.scan_id}: {traces}, {rate}, {eta}, {failed}".rstrip(", ")]
+    if status.held:
+        shown = ", ".join(status.held[:3]) + (" …" if len(status.held) > 3 else "")
+        out.append(f"  {len(status.held)} line file(s) not in the store yet: {shown}")
+    if status.quarantined:
+        out.append(f"  {status.quarantined} file(s) in quarantine")
     out.extend(f"  {line}" for line in status.last_alerts)
     return "\n".join(out)
