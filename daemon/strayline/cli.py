@@ -257,7 +257,7 @@ def _cmd_check_config(args: argparse.Namespace) -> int:
     available = config.available_profiles()
     profiles = ", ".join(available) or f"none in {config.profiles_dir}"
     print(f"{args.file}: ok (digest {config_digest(config)[:12]}; profiles: {profiles})")
-    if not available:
+    if not available and "profiles_dir" in config.model_fields_set:
         print(
             f"strayline: warning: no sample-type profile in {config.profiles_dir}; "
             "profiles_dir is taken relative to the config file's folder: point it at the "

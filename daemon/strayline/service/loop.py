@@ -180,7 +180,7 @@ class Service:
         self.watcher.start()  # arms the observer and lists the tree (catch-up)
         self._check_resources(force=True)
         self._notifier.notify("READY=1", f"STATUS={self._status_text()}")
-        if not self.config.available_profiles():
+        if "profiles_dir" in self.config.model_fields_set and not self.config.available_profiles():
             self._log.warning(
                 "no_profiles",
                 profiles_dir=str(self.config.profiles_dir),
