@@ -344,8 +344,8 @@ def test_a_copy_of_the_default_config_in_a_clean_folder_works_as_the_readme_says
 ) -> None:
     """README step 2: copy config/default.yaml, set the two paths. The state folder and the
     alert log then follow output_root (null in the file means the default below it), an
-    unquoted YAML `off` for the console is taken as meant, and a profile folder that is
-    not beside the copy is reported instead of vanishing in silence."""
+    unquoted YAML `off` for the console is taken as meant, and with no profile folder
+    beside the copy the shipped profiles are used, with a warning saying so."""
     text = (REPO / "config" / "default.yaml").read_text(encoding="utf-8")
     text = text.replace("/var/lib/strayline/incoming", str(tmp_path / "incoming"))
     text = text.replace("/var/lib/strayline/scans", str(tmp_path / "scans"))
@@ -355,9 +355,18 @@ def test_a_copy_of_the_default_config_in_a_clean_folder_works_as_the_readme_says
     monkeypatch.chdir(tmp_path)
     assert main(["check-config", str(copy)]) == 0
     captured = capsys.readouterr()
-    assert f"profiles: none in {tmp_path / 'profiles'}" in captured.out
-    assert "warning: no sample-type profile in" in captured.err
+    shipped = sorted(p.stem for p in (REPO / "config" / "profiles").glob("*.yaml"))
+    assert captured.out.rstrip().endswith(f"profiles: {', '.join(shipped)})")
+    assert captured.err == (
+        f"strayline: warning: no sample-type profile in {tmp_path / 'profiles'} (profiles_dir "
+        "is taken relative to the config file's folder); using the profiles shipped with "
+        f"strayline in {REPO / 'config' / 'profiles'}\n"
+    )
     config = load_config(copy)
     assert config.paths.state_dir == tmp_path / "scans" / ".strayline"
     assert config.paths.alert_log == tmp_path / "scans" / "alerts.jsonl"
     assert config.logging.console == "off"
+    assert config.available_profiles() == tuple(shipped)
+    assert config.with_profile(shipped[0]).source == REPO / "config" / "profiles" / (
+        f"{shipped[0]}.yaml"
+    )

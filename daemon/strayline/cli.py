@@ -255,9 +255,17 @@ def _cmd_check_config(args: argparse.Namespace) -> int:
 
     config = load_config(args.file)
     available = config.available_profiles()
-    profiles = ", ".join(available) or f"none in {config.profiles_dir}"
+    folder = config.profiles_folder
+    profiles = ", ".join(available) or f"none in {folder}"
     print(f"{args.file}: ok (digest {config_digest(config)[:12]}; profiles: {profiles})")
-    if not available and "profiles_dir" in config.model_fields_set:
+    if folder != config.profiles_dir:
+        print(
+            f"strayline: warning: no sample-type profile in {config.profiles_dir} "
+            f"(profiles_dir is taken relative to the config file's folder); using the "
+            f"profiles shipped with strayline in {folder}",
+            file=sys.stderr,
+        )
+    elif not available and "profiles_dir" in config.model_fields_set:
         print(
             f"strayline: warning: no sample-type profile in {config.profiles_dir}; "
             "profiles_dir is taken relative to the config file's folder: point it at the "

@@ -150,13 +150,21 @@ class Config(Section):
         """
         return self.model_dump(mode="json")
 
+    @property
+    def profiles_folder(self) -> Path:
+        """Where the profiles are read from: ``profiles_dir``; or, when a config file names
+        a ``profiles_dir`` that holds no profile (a copy of ``default.yaml`` moved away
+        from its ``profiles/``), the profiles shipped with strayline, if present."""
+        named_but_empty = "profiles_dir" in self.model_fields_set and not _profile_names(
+            self.profiles_dir
+        )
+        if named_but_empty and _profile_names(SHIPPED_PROFILES):
+            return SHIPPED_PROFILES
+        return self.profiles_dir
+
     def available_profiles(self) -> tuple[str, ...]:
-        """Names of the profiles found in ``profiles_dir``, sorted."""
-        try:
-            entries = sorted(p.stem for p in self.profiles_dir.glob("*.yaml") if p.is_file())
-        except OSError:
-            return ()
-        return tuple(name for name in entries if _PROFILE_NAME.fullmatch(name))
+        """Names of the profiles found in :attr:`profiles_folder`, sorted."""
+        return _profile_names(self.profiles_folder)
 
     def with_profile(self, name: str) -> Config:
         """This config with the profile ``name`` applied over its base (cached per name).
@@ -234,7 +242,7 @@ def load_config(path: str | os.PathLike[str]) -> Config:
         named.append(("default_profile", config.default_profile))
     available = config.available_profiles()
     problems = [
-        (key, _unknown_profile_problem(name, config.profiles_dir, available))
+        (key, _unknown_profile_problem(name, config.profiles_folder, available))
         for key, name in named
         if name not in available
     ]
@@ -242,6 +250,20 @@ def load_config(path: str | os.PathLike[str]) -> Config:
     for _, name in named:
         config.with_profile(name)
     return config
+
+
+#: The sample-type profiles that come with strayline: ``config/profiles`` of the checkout
+#: it runs from (absent from an installation without that folder).
+SHIPPED_PROFILES = Path(__file__).resolve().parents[3] / "config" / "profiles"
+
+
+def _profile_names(folder: Path) -> tuple[str, ...]:
+    """Names of the profiles in ``folder``, sorted (none where it cannot be listed)."""
+    try:
+        entries = sorted(p.stem for p in folder.glob("*.yaml") if p.is_file())
+    except OSError:
+        return ()
+    return tuple(name for name in entries if _PROFILE_NAME.fullmatch(name))
 
 
 def _unknown_profile_problem(name: str, profiles_dir: Path, available: tuple[str, ...]) -> str:
@@ -256,11 +278,11 @@ def _apply_profile(base: Config, name: str) -> Config:
     available = base.available_profiles()
     if not _PROFILE_NAME.fullmatch(name) or name not in available:
         raise ConfigError(
-            base.profiles_dir,
+            base.profiles_folder,
             "profile",
-            _unknown_profile_problem(name, base.profiles_dir, available),
+            _unknown_profile_problem(name, base.profiles_folder, available),
         )
-    profile_path = base.profiles_dir / f"{name}.yaml"
+    profile_path = base.profiles_folder / f"{name}.yaml"
     overlay = read_yaml_mapping(profile_path)
     raise_problems(profile_path, _daemon_wide_keys(overlay))
     merged = deep_merge(base.as_json_dict(), overlay)

@@ -180,10 +180,17 @@ class Service:
         self.watcher.start()  # arms the observer and lists the tree (catch-up)
         self._check_resources(force=True)
         self._notifier.notify("READY=1", f"STATUS={self._status_text()}")
-        if "profiles_dir" in self.config.model_fields_set and not self.config.available_profiles():
+        config = self.config
+        if config.profiles_folder != config.profiles_dir:
+            self._log.warning(
+                "profiles_dir_empty",
+                profiles_dir=str(config.profiles_dir),
+                using=str(config.profiles_folder),
+            )
+        elif "profiles_dir" in config.model_fields_set and not config.available_profiles():
             self._log.warning(
                 "no_profiles",
-                profiles_dir=str(self.config.profiles_dir),
+                profiles_dir=str(config.profiles_dir),
                 problem="no sample-type profile there: every scan runs with the base config",
             )
         self._log.info(
