@@ -4,7 +4,9 @@ Run: ``/work/venv/bin/python benchmarks/fit_throughput.py [--n 2048] [--n-ref 25
 
 Both fitters see the same simulated spectra (201 frequencies, two Lorentzian dips, Poisson
 noise) and the same starting points (the batched fitter's own initial guesses); the model
-has 6 parameters (2 centres, 2 contrasts, 1 shared FWHM, baseline). Two sets: separated
+has 6 parameters (2 centres, 2 contrasts, 1 shared FWHM, baseline). The baseline is an
+honest one: ``curve_fit`` on the model written out in numpy (no general helper), checked
+to compute the same values as the project's model. Two sets: separated
 dips (60–150 MHz apart) and overlapping dips (8–15 MHz apart, FWHM 8–12 MHz).
 
 The batched fitter runs with the default ``FitModel()``: a first pass, then a second
@@ -80,9 +82,24 @@ def starting_points(y: np.ndarray, model: FitModel) -> np.ndarray:
     return p
 
 
-def model_mhz(f, c0, c1, k0, k1, w, b):  # noqa: PLR0917 -- curve_fit passes positionally
-    """The fit model with centres and width in MHz (so finite differences are sane)."""
-    return lorentzian_dips(f, D_HZ + 1e6 * np.array([c0, c1]), np.array([k0, k1]), 1e6 * w, b)
+def model_mhz(f_mhz, c0, c1, k0, k1, w, b):  # noqa: PLR0917 -- curve_fit passes positionally
+    """The fit model written out in numpy, as one would for a curve_fit loop: two
+    Lorentzian dips with one FWHM ``w`` on a flat baseline ``b``, frequencies, centres and
+    width in MHz from D (so finite differences are sane). The same function as
+    :func:`strayline.physics.lorentzian_dips` (checked in :func:`check_plain_model`)."""
+    g = 0.25 * w * w
+    return b * (1.0 - k0 * g / ((f_mhz - c0) ** 2 + g) - k1 * g / ((f_mhz - c1) ** 2 + g))
+
+
+F_MHZ = (FREQ_HZ - D_HZ) / 1e6
+
+
+def check_plain_model() -> None:
+    """The plain baseline model computes what the project's model does."""
+    c, k, w, b = np.array([2.84e9, 2.90e9]), np.array([0.1, 0.15]), 10e6, 3000.0
+    ours = lorentzian_dips(FREQ_HZ, c, k, w, b)
+    plain = model_mhz(F_MHZ, *((c - D_HZ) / 1e6), *k, w / 1e6, b)
+    assert np.allclose(ours, plain, rtol=1e-12, atol=1e-9), "baseline model differs"
 
 
 def curve_fit_loop(y: np.ndarray, p0_hz: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -97,7 +114,7 @@ def curve_fit_loop(y: np.ndarray, p0_hz: np.ndarray) -> tuple[np.ndarray, np.nda
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", OptimizeWarning)
                 popt, pcov = curve_fit(
-                    model_mhz, FREQ_HZ, y[i], p0=p0, sigma=np.sqrt(np.maximum(y[i], 1.0))
+                    model_mhz, F_MHZ, y[i], p0=p0, sigma=np.sqrt(np.maximum(y[i], 1.0))
                 )
         except RuntimeError:
             continue
@@ -182,6 +199,7 @@ def run_set(name: str, split_hz: tuple[float, float], n: int, n_ref: int, seed: 
 
 
 def main() -> None:
+    check_plain_model()
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--n", type=int, default=2048, help="spectra for the batched fitter")
     parser.add_argument("--n-ref", type=int, default=256, help="spectra for curve_fit")
