@@ -8,6 +8,7 @@ scan-line file per completed line at instrument pace and the exact ground truth
 """
 
 from demo_stream.faults import FAULT_KINDS, Fault, fault_to_spec, parse_fault
+from demo_stream.presets import PRESETS, SignalPreset
 from demo_stream.scenes import (
     SCENES,
     Scene,
@@ -24,11 +25,13 @@ from demo_stream.writer import DemoConfig, config_to_dict, frequency_grid_hz, ru
 
 __all__ = [
     "FAULT_KINDS",
+    "PRESETS",
     "SCENES",
     "DemoConfig",
     "Fault",
     "ScanRenderer",
     "Scene",
+    "SignalPreset",
     "TipModel",
     "TraceTruth",
     "TruthRecord",

@@ -16,6 +16,7 @@ from pathlib import Path
 import numpy as np
 
 from demo_stream.faults import FAULT_KINDS, Fault, fault_to_spec, parse_fault
+from demo_stream.presets import PRESETS
 from demo_stream.scenes import SCENES, make_scene
 from demo_stream.tip import NV_100_PHI_RAD, NV_100_THETA_RAD, TipModel
 from demo_stream.truth import truth_paths
@@ -97,13 +98,22 @@ def build_parser() -> argparse.ArgumentParser:
     g.add_argument("--scan-id", default="demo-0001", help="scan identifier and folder name")
     g.add_argument("--profile", default=None, help="sample-type profile name for the files")
 
+    s = p.add_argument_group("signal")
+    s.add_argument(
+        "--signal",
+        choices=sorted(PRESETS),
+        default="strong",
+        help="signal preset: count rate, dwell, dips and sweep (the options below override "
+        "it): " + "; ".join(f"{name}: {preset.description}" for name, preset in PRESETS.items()),
+    )
+
     f = p.add_argument_group("microwave sweep")
     f.add_argument(
         "--freq-ghz",
         nargs=3,
         metavar=("START", "STOP", "N"),
         default=None,
-        help="uniform sweep from START to STOP GHz in N points [default: 2.66 3.08 201]",
+        help="uniform sweep from START to STOP GHz in N points [default: the signal preset's]",
     )
     f.add_argument(
         "--freq-list-ghz",
@@ -133,16 +143,14 @@ def build_parser() -> argparse.ArgumentParser:
     bias.add_argument(
         "--bias-along-nv-mt", type=float, default=None, help="bias field along the NV axis, mT"
     )
-    t.add_argument("--count-rate", type=float, default=2e5, help="PL count rate, counts/s")
-    t.add_argument("--contrast", type=float, default=0.15, help="depth of each ODMR dip")
-    t.add_argument("--linewidth-mhz", type=float, default=10.0, help="dip FWHM, MHz")
-    t.add_argument(
-        "--dwell-ms", type=float, default=3.0, help="dwell per pixel and frequency, ms (default 3)"
-    )
+    t.add_argument("--count-rate", type=float, default=None, help="PL count rate, counts/s")
+    t.add_argument("--contrast", type=float, default=None, help="depth of each ODMR dip")
+    t.add_argument("--linewidth-mhz", type=float, default=None, help="dip FWHM, MHz")
+    t.add_argument("--dwell-ms", type=float, default=None, help="dwell per pixel and frequency, ms")
     t.add_argument("--temperature-k", type=float, default=295.0, help="tip temperature, K")
     t.add_argument("--strain-mhz", type=float, default=0.0, help="transverse splitting E, MHz")
     t.add_argument(
-        "--hyperfine", choices=["none", "14N", "15N"], default="none", help="resolved hyperfine"
+        "--hyperfine", choices=["none", "14N", "15N"], default=None, help="resolved hyperfine"
     )
     t.add_argument("--drift-per-hour", type=float, default=0.03, help="linear PL drift, 1/h")
     t.add_argument("--wobble", type=float, default=0.0, help="sinusoidal PL drift amplitude")
@@ -180,28 +188,32 @@ def config_from_args(args: argparse.Namespace) -> DemoConfig:
         bias = tuple(args.bias_along_nv_mt * 1e-3 * c for c in u)  # type: ignore[assignment]
     else:
         bias = None
+    preset = PRESETS[args.signal]
+    hyperfine = preset.hyperfine if args.hyperfine is None else args.hyperfine
     tip = TipModel(
         standoff_m=args.standoff_nm * 1e-9,
         nv_theta_rad=theta,
         nv_phi_rad=phi,
-        count_rate_cps=args.count_rate,
-        contrast=args.contrast,
-        fwhm_hz=args.linewidth_mhz * 1e6,
-        dwell_s=args.dwell_ms * 1e-3,
+        count_rate_cps=preset.count_rate_cps if args.count_rate is None else args.count_rate,
+        contrast=preset.contrast if args.contrast is None else args.contrast,
+        fwhm_hz=preset.fwhm_hz if args.linewidth_mhz is None else args.linewidth_mhz * 1e6,
+        dwell_s=preset.dwell_s if args.dwell_ms is None else args.dwell_ms * 1e-3,
         temperature_k=args.temperature_k,
         strain_hz=args.strain_mhz * 1e6,
         bias_field_t=bias,
         pl_drift_per_hour=args.drift_per_hour,
         pl_wobble=args.wobble,
         pl_wobble_period_s=args.wobble_period_s,
-        hyperfine=None if args.hyperfine == "none" else args.hyperfine,
+        hyperfine=None if hyperfine in (None, "none") else hyperfine,
     )
     if args.freq_list_ghz is not None and args.freq_ghz is not None:
         raise ValueError("--freq-ghz and --freq-list-ghz: give one of them, not both")
     if args.freq_list_ghz is not None:
         freq_hz = args.freq_list_ghz
+    elif args.freq_ghz is None:
+        freq_hz = preset.freq_hz()
     else:
-        start, stop, n = args.freq_ghz or ("2.66", "3.08", "201")
+        start, stop, n = args.freq_ghz
         try:
             n_freq = int(n)
             start_hz, stop_hz = float(start) * 1e9, float(stop) * 1e9

@@ -13,8 +13,9 @@ import scipy.constants
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from demo_stream.__main__ import main
+from demo_stream.__main__ import build_parser, config_from_args, main
 from demo_stream.faults import FAULT_KINDS, Fault, fault_mask, fault_to_spec, parse_fault
+from demo_stream.presets import PRESETS
 from demo_stream.scenes import calibration_stripe, labyrinth, wire
 from demo_stream.tip import (
     NV_100_PHI_RAD,
@@ -27,6 +28,7 @@ from demo_stream.truth import load_truth, truth_paths
 from demo_stream.writer import DemoConfig, frequency_grid_hz, run_scan
 from strayline.errors import LineFileError
 from strayline.lines import line_file_name, read_line_file
+from strayline.physics import D_ROOM_HZ, GAMMA_NV_HZ_PER_T
 
 MU0 = scipy.constants.mu_0
 # γ_NV = g μB/h with g = 2.0028 (Loubser & van Wyk, Rep. Prog. Phys. 41, 1201 (1978),
@@ -643,3 +645,36 @@ def test_the_fault_examples_of_the_help_run_with_the_default_scan_size() -> None
     assert examples
     for example in examples:
         DemoConfig(faults=(parse_fault(example),))  # raises if it does not fit
+
+
+@pytest.mark.parametrize("name", sorted(PRESETS))
+def test_each_signal_preset_writes_the_signal_it_states(name: str, tmp_path: Path) -> None:
+    """A scan with each signal preset has its sweep and, off resonance, a mean of
+    count_rate × dwell counts per sample (Poisson: within 5 standard errors), and every
+    pixel's two resonances (from the truth) lie inside the sweep."""
+    preset = PRESETS[name]
+    tip = TipModel(**preset.tip_values())  # type: ignore[arg-type]
+    config = DemoConfig(n_lines=2, n_pixels=16, tip=tip, freq_hz=preset.freq_hz(), seed=5)
+    run_scan(config, tmp_path / "out", tmp_path / "truth")
+    line = read_line_file(sorted((tmp_path / "out" / config.scan_id).glob("*.h5"))[0])
+    np.testing.assert_array_equal(line.freq_hz, preset.freq_hz())
+    b_nv = load_truth(tmp_path / "truth", config.scan_id).map("field_nv_t", "forward")
+    shift = GAMMA_NV_HZ_PER_T * np.abs(b_nv[0])  # line 0, pixels in increasing x as written
+    resonances = np.concatenate([D_ROOM_HZ - shift, D_ROOM_HZ + shift])
+    gap = np.min(np.abs(line.freq_hz[:, None] - resonances[None, :]), axis=0)
+    assert np.all(gap < 1e6), gap.max()  # every resonance has a sweep point within 1 MHz
+    away = np.abs(line.freq_hz[None, :, None] - resonances.reshape(2, -1).T[:, None, :])
+    off = np.all(away > 5 * preset.fwhm_hz, axis=2)  # (pixel, frequency) far from both dips
+    samples = line.counts[off].astype(float)
+    expected = preset.count_rate_cps * preset.dwell_s
+    assert abs(samples.mean() - expected) < 5 * np.sqrt(expected / samples.size) + 0.05 * expected
+
+
+def test_the_signal_option_sets_the_preset_and_single_options_override_it() -> None:
+    """`--signal weak-wide` gives its 161-point sweep and 9 % dips; `--dwell-ms` still
+    overrides the preset's dwell."""
+    args = build_parser().parse_args(["--signal", "weak-wide", "--dwell-ms", "7"])
+    config = config_from_args(args)
+    assert config.freq_hz.size == 161
+    assert config.tip.contrast == 0.09
+    assert config.tip.dwell_s == pytest.approx(7e-3)

@@ -1,0 +1,110 @@
+"""Signal presets of the demo instrument: the range of ODMR signal a lab meets.
+
+Each preset sets the count rate, dwell, dip depth and width, hyperfine structure and the
+microwave sweep; the tip's other settings (stand-off, axis, bias field, drifts) stay as
+given. Counts per sample off resonance are ``count_rate_cps × dwell_s``.
+
+| preset | counts/sample | dips | sweep |
+|---|---|---|---|
+| ``strong`` | 600 | 15 %, FWHM 10 MHz | 2.66–3.08 GHz, 201 points |
+| ``weak-wide`` | 600 | 9 %, FWHM 9 MHz | 2.72–3.02 GHz, 161 points (1.9 MHz step) |
+| ``very-weak`` | 200 | 8 %, FWHM 10 MHz | 2.66–3.08 GHz, 201 points |
+| ``narrow-14n`` | 400 | 6 %, FWHM 0.8 MHz, ¹⁴N | two 120 MHz windows, 0.4 MHz step (*) |
+
+(*) around the resonances of the default bias, 3 mT along the NV axis.
+
+The values are ours, chosen to span CW ODMR of a single shallow NV in a scanning tip
+(linewidth 5–15 MHz at full power, contrast 5–30 %, 10⁵–10⁶ counts/s: common practice),
+down to the low-power regime where the ¹⁴N triplet (2.16 MHz spacing) is resolved.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from demo_stream.tip import TipModel
+from strayline.physics import D_ROOM_HZ, GAMMA_NV_HZ_PER_T
+
+__all__ = ["PRESETS", "SignalPreset"]
+
+
+@dataclass(frozen=True)
+class SignalPreset:
+    """One signal level of the demo instrument."""
+
+    name: str
+    description: str
+    count_rate_cps: float
+    dwell_s: float
+    contrast: float
+    fwhm_hz: float
+    hyperfine: str | None
+    windows_hz: tuple[tuple[float, float, int], ...]  # (start, stop, points) per window
+
+    def freq_hz(self) -> np.ndarray:
+        """The sweep, Hz, strictly increasing (the windows in order)."""
+        return np.concatenate([np.linspace(a, b, n) for a, b, n in self.windows_hz])
+
+    def tip_values(self) -> dict[str, object]:
+        """The :class:`~demo_stream.tip.TipModel` fields this preset sets."""
+        return {
+            "count_rate_cps": self.count_rate_cps,
+            "dwell_s": self.dwell_s,
+            "contrast": self.contrast,
+            "fwhm_hz": self.fwhm_hz,
+            "hyperfine": self.hyperfine,
+        }
+
+
+_SPLIT_3MT_HZ = GAMMA_NV_HZ_PER_T * 3e-3  # resonance shift of the default bias, Hz
+
+PRESETS: dict[str, SignalPreset] = {
+    preset.name: preset
+    for preset in (
+        SignalPreset(
+            "strong",
+            "bright NV, deep dips, a wide sweep (the default)",
+            count_rate_cps=TipModel.count_rate_cps,
+            dwell_s=TipModel.dwell_s,
+            contrast=TipModel.contrast,
+            fwhm_hz=TipModel.fwhm_hz,
+            hyperfine=None,
+            windows_hz=((2.66e9, 3.08e9, 201),),
+        ),
+        SignalPreset(
+            "weak-wide",
+            "an ordinary wide sweep at modest signal: each dip ~5σ under a matched filter",
+            count_rate_cps=1.2e5,
+            dwell_s=5e-3,
+            contrast=0.09,
+            fwhm_hz=9e6,
+            hyperfine=None,
+            windows_hz=((2.72e9, 3.02e9, 161),),
+        ),
+        SignalPreset(
+            "very-weak",
+            "a dim NV and a short dwell: 200 counts per sample",
+            count_rate_cps=1e5,
+            dwell_s=2e-3,
+            contrast=0.08,
+            fwhm_hz=10e6,
+            hyperfine=None,
+            windows_hz=((2.66e9, 3.08e9, 201),),
+        ),
+        SignalPreset(
+            "narrow-14n",
+            "low microwave and laser power: narrow lines with the 14N triplet resolved",
+            count_rate_cps=1e5,
+            dwell_s=4e-3,
+            contrast=0.06,
+            fwhm_hz=0.8e6,
+            hyperfine="14N",
+            windows_hz=(
+                (D_ROOM_HZ - _SPLIT_3MT_HZ - 60e6, D_ROOM_HZ - _SPLIT_3MT_HZ + 60e6, 301),
+                (D_ROOM_HZ + _SPLIT_3MT_HZ - 60e6, D_ROOM_HZ + _SPLIT_3MT_HZ + 60e6, 301),
+            ),
+        ),
+    )
+}
