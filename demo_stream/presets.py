@@ -9,7 +9,7 @@ given. Counts per sample off resonance are ``count_rate_cps × dwell_s``.
 | ``strong`` | 600 | 15 %, FWHM 10 MHz | 2.66–3.08 GHz, 201 points |
 | ``weak-wide`` | 600 | 9 %, FWHM 9 MHz | 2.72–3.02 GHz, 161 points (1.9 MHz step) |
 | ``very-weak`` | 200 | 8 %, FWHM 10 MHz | 2.66–3.08 GHz, 201 points |
-| ``narrow-14n`` | 400 | 6 %, FWHM 0.8 MHz, ¹⁴N | two 120 MHz windows, 0.4 MHz step (*) |
+| ``narrow-14n`` | 2000 | 10 %, FWHM 0.8 MHz, ¹⁴N | two 120 MHz windows, 0.2 MHz step (*) |
 
 (*) around the resonances of the default bias, 3 mT along the NV axis.
 
@@ -42,6 +42,7 @@ class SignalPreset:
     fwhm_hz: float
     hyperfine: str | None
     windows_hz: tuple[tuple[float, float, int], ...]  # (start, stop, points) per window
+    bias_along_nv_t: float | None = None  # the bias its sweep is laid out for, if any
 
     def freq_hz(self) -> np.ndarray:
         """The sweep, Hz, strictly increasing (the windows in order)."""
@@ -97,14 +98,15 @@ PRESETS: dict[str, SignalPreset] = {
             "narrow-14n",
             "low microwave and laser power: narrow lines with the 14N triplet resolved",
             count_rate_cps=1e5,
-            dwell_s=4e-3,
-            contrast=0.06,
+            dwell_s=20e-3,
+            contrast=0.10,
             fwhm_hz=0.8e6,
             hyperfine="14N",
             windows_hz=(
-                (D_ROOM_HZ - _SPLIT_3MT_HZ - 60e6, D_ROOM_HZ - _SPLIT_3MT_HZ + 60e6, 301),
-                (D_ROOM_HZ + _SPLIT_3MT_HZ - 60e6, D_ROOM_HZ + _SPLIT_3MT_HZ + 60e6, 301),
+                (D_ROOM_HZ - _SPLIT_3MT_HZ - 60e6, D_ROOM_HZ - _SPLIT_3MT_HZ + 60e6, 601),
+                (D_ROOM_HZ + _SPLIT_3MT_HZ - 60e6, D_ROOM_HZ + _SPLIT_3MT_HZ + 60e6, 601),
             ),
+            bias_along_nv_t=3e-3,
         ),
     )
 }
