@@ -7,7 +7,7 @@ by one :class:`AlertSink`, and read back by :func:`read_alert_log` (``strayline 
 
 from strayline.alerts.event import AlertEvent
 from strayline.alerts.log import follow_alerts, format_alert, read_alert_log
-from strayline.alerts.registry import ACTIVE_ALERTS_FILE, ActiveAlerts
+from strayline.alerts.registry import ACTIVE_ALERTS_FILE, ActiveAlerts, deliver_remembered
 from strayline.alerts.sink import (
     HOOK_PLACEHOLDERS,
     AlertNotLogged,
@@ -25,6 +25,7 @@ __all__ = [
     "AlertNotLogged",
     "AlertSink",
     "SinkStatistics",
+    "deliver_remembered",
     "fill_hook_arguments",
     "follow_alerts",
     "format_alert",

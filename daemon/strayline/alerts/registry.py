@@ -17,9 +17,10 @@ import structlog
 
 from strayline._atomic import write_text_atomic
 from strayline.alerts.event import AlertEvent
+from strayline.alerts.sink import AlertSink
 from strayline.errors import StoreError
 
-__all__ = ["ACTIVE_ALERTS_FILE", "ActiveAlerts"]
+__all__ = ["ACTIVE_ALERTS_FILE", "ActiveAlerts", "deliver_remembered"]
 
 #: File name of the registry inside the state folder.
 ACTIVE_ALERTS_FILE = "delivered_alerts.json"
@@ -94,3 +95,23 @@ def _load(path: Path) -> dict[tuple[str, str], AlertEvent]:
         )
         return {}
     return {(e.scan_id, e.rule): e for e in events}
+
+
+def deliver_remembered(
+    sink: AlertSink, active: ActiveAlerts, event: AlertEvent, *, notify: bool = True
+) -> None:
+    """Deliver an alert raised outside the rule engine and keep the record of active ones:
+    note it, deliver it through ``sink`` (``notify=False``: to the alert log only, for an
+    event announced before), then save the record.
+
+    Raises
+    ------
+    AlertNotLogged
+        The alert log could not be written (the event was announced and noted; the record
+        is saved once it is delivered again).
+    StoreError
+        The record could not be saved (the event was delivered).
+    """
+    active.note(event)
+    sink.deliver(event, notify=notify)
+    active.save()

@@ -27,7 +27,13 @@ from typing import Literal
 import numpy as np
 import structlog
 
-from strayline.alerts import ACTIVE_ALERTS_FILE, ActiveAlerts, AlertEvent, AlertSink
+from strayline.alerts import (
+    ACTIVE_ALERTS_FILE,
+    ActiveAlerts,
+    AlertEvent,
+    AlertSink,
+    deliver_remembered,
+)
 from strayline.config import Config, config_digest, select_profile
 from strayline.errors import ConfigError, LineFileError, StoreError
 from strayline.field import LineField, field_from_fit
@@ -361,9 +367,7 @@ class LinePipeline:
         StoreError
             If the remembered state cannot be saved (the event was delivered).
         """
-        self._sink.deliver(event, notify=notify)
-        self._active.note(event)
-        self._active.save()
+        deliver_remembered(self._sink, self._active, event, notify=notify)
 
     def active_alerts(self) -> tuple[AlertEvent, ...]:
         """Raise events still active: the rule engine's, then those from :meth:`deliver`."""

@@ -36,7 +36,13 @@ from types import FrameType
 import structlog
 
 from strayline._numbers import MIB
-from strayline.alerts import ACTIVE_ALERTS_FILE, ActiveAlerts, AlertEvent, AlertSink
+from strayline.alerts import (
+    ACTIVE_ALERTS_FILE,
+    ActiveAlerts,
+    AlertEvent,
+    AlertSink,
+    deliver_remembered,
+)
 from strayline.config import Config, load_config
 from strayline.errors import ConfigError, StoreError
 from strayline.logs import configure_logging, reopen_log_files
@@ -525,17 +531,13 @@ class Service:
         append it to the alert log; one the log cannot take yet is kept and logged once
         the output works again (``notify=False``: it was announced already)."""
         self._last_alert = event
-        self._alerts.note(event)
         try:
-            self._sink.deliver(event, notify=notify)
+            deliver_remembered(self._sink, self._alerts, event, notify=notify)
+        except StoreError as exc:  # delivered; only remembering it failed
+            self._log.warning("alert_state_not_saved", rule=event.rule, error=str(exc))
         except OSError as exc:  # the alert log's disk: the announcement went out
             self._log.error("alert_not_logged", rule=event.rule, error=str(exc))
             self._unlogged.append(event)
-            return
-        try:
-            self._alerts.save()
-        except StoreError as exc:  # delivered; only remembering it failed
-            self._log.warning("alert_state_not_saved", rule=event.rule, error=str(exc))
 
     # -- systemd ------------------------------------------------------------------------
 

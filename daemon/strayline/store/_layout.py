@@ -61,6 +61,7 @@ __all__ = [
     "fsync_with_parents",
     "remove_creation_leftovers",
     "remove_partials",
+    "row_blocks_on_disk",
     "status_flags",
 ]
 
@@ -126,6 +127,21 @@ def compressors(level: int) -> list[BloscCodec]:
 def chunk_file(store_path: Path, array_path: str, chunk_coords: Iterable[int]) -> Path:
     """File holding one chunk of an array, under the default "/" chunk key encoding."""
     return store_path.joinpath(array_path, "c", *(str(c) for c in chunk_coords))
+
+
+def row_blocks_on_disk(
+    store_path: Path, array_path: str, block: int, n_rows: int
+) -> list[tuple[int, int]]:
+    """Row ranges ``[start, stop)`` of the chunks of a row-chunked array that exist on disk,
+    increasing: what a reader must look at, so that reading a store costs what was written,
+    not what the scan plans (65,536 planned lines with one written: one chunk, not 65,536)."""
+    chunk_dir = store_path / array_path / "c"
+    try:
+        entries = [e.name for e in chunk_dir.iterdir()]
+    except (FileNotFoundError, NotADirectoryError):
+        return []
+    starts = sorted(int(name) * block for name in entries if name.isdigit())
+    return [(start, min(start + block, n_rows)) for start in starts]
 
 
 def create_layout(

@@ -16,7 +16,7 @@ import zarr
 
 from strayline.errors import StoreError
 from strayline.lines import DIRECTIONS
-from strayline.store._layout import STORE_FORMAT
+from strayline.store._layout import STORE_FORMAT, row_blocks_on_disk
 from strayline.store._ledger import LEDGER_FILE, LedgerState, read_ledger_state
 
 __all__ = [
@@ -112,7 +112,7 @@ class StoreReader:
         if not isinstance(array, zarr.Array):
             raise StoreError(f"{self.path}: {direction}/{name} must be an array; found a group")
         try:
-            return _read_sparse(array, self.path / direction / name / "c")
+            return _read_sparse(array, self.path, f"{direction}/{name}")
         except OSError as error:
             raise StoreError(f"{self.path}: reading {direction}/{name} failed: {error}") from error
 
@@ -137,7 +137,7 @@ class StoreReader:
         return None
 
 
-def _read_sparse(array: zarr.Array, chunk_dir: Path) -> np.ndarray:
+def _read_sparse(array: zarr.Array, store_path: Path, array_path: str) -> np.ndarray:
     """The whole array, reading only the row chunks on disk when they are few.
 
     A scan of 65,536 planned lines with a few written has a few chunk files: reading
@@ -147,16 +147,11 @@ def _read_sparse(array: zarr.Array, chunk_dir: Path) -> np.ndarray:
     if array.ndim != 2:
         return np.asarray(array[:])
     block = array.chunks[0]
-    n_blocks = -(-array.shape[0] // block)
-    try:
-        starts = [int(e.name) * block for e in chunk_dir.iterdir() if e.name.isdigit()]
-    except FileNotFoundError:
-        starts = []
-    if 2 * len(starts) >= n_blocks:
+    blocks = row_blocks_on_disk(store_path, array_path, block, array.shape[0])
+    if 2 * len(blocks) >= -(-array.shape[0] // block):
         return np.asarray(array[:])
     out = np.full(array.shape, array.fill_value, dtype=array.dtype)
-    for start in starts:
-        stop = min(start + block, array.shape[0])
+    for start, stop in blocks:
         out[start:stop] = array[start:stop]
     return out
 

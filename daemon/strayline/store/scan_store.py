@@ -62,6 +62,7 @@ from strayline.store._layout import (
     fsync_with_parents,
     remove_creation_leftovers,
     remove_partials,
+    row_blocks_on_disk,
 )
 from strayline.store._ledger import Key, Ledger, LedgerEntry, format_time, parse_time
 from strayline.store._rows import count_failures, line_rows, planned_y
@@ -461,15 +462,9 @@ class ScanStore:
         return lines - done
 
     def _blocks_on_disk(self, direction: str, name: str) -> list[tuple[int, int]]:
-        """Row ranges ``[start, stop)`` of the chunks of one map that exist on disk: what a
-        reader must look at, so that opening a store costs what was written, not what the
-        scan plans (65,536 planned lines with one written read one chunk, not 65,536)."""
+        """Row ranges of the chunks of one map that exist on disk."""
         block = self._maps[direction][name].chunks[0]
-        chunk_dir = self.path / direction / name / "c"
-        if not chunk_dir.is_dir():
-            return []
-        starts = sorted(int(e.name) * block for e in chunk_dir.iterdir() if e.name.isdigit())
-        return [(start, min(start + block, self.n_lines_planned)) for start in starts]
+        return row_blocks_on_disk(self.path, f"{direction}/{name}", block, self.n_lines_planned)
 
     def _clear_rows(self, key: Key) -> None:
         index, direction = key
