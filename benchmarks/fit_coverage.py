@@ -16,11 +16,22 @@ Printed per preset:
 
 - *resolvable*: spectra whose two dips each exceed 5σ under a matched filter against the
   truth, ``S = k·sqrt(b·Σ_f L(f)²)`` (the SNR of a known Lorentzian of depth ``k`` on a
-  Poisson baseline of ``b`` counts per sample, common practice) and lie more than one FWHM
-  apart;
+  Poisson baseline of ``b`` counts per sample, common practice), and whose pair is told
+  from a single dip at 5σ: on the noise-free spectrum (the "Asimov" data set of G. Cowan,
+  K. Cranmer, E. Gross and O. Vitells, Eur. Phys. J. C 71, 1554 (2011)) the best single
+  dip of free width leaves a likelihood-ratio χ² of at least 25; with resolved hyperfine
+  lines, also each centre from its satellite alias (the dip moved by one hyperfine
+  spacing, other parameters as they are: an upper bound on that χ², so the count of
+  resolvable spectra is generous and the yield a conservative figure);
 - *yield*: of those, the fraction fitted OK (the issue asks ≥ 98 %);
-- *coverage* of OK pixels: rms of (fitted − true)/σ and the fraction within 3σ, for the
-  two centres and for B along the NV axis (1.0 and 99.7 % expected).
+- *coverage* of OK pixels: rms of (fitted − true)/σ and the fraction within 1, 2, 3σ, for
+  the two centres and for B along the NV axis (1.0 and 68.3 / 95.4 / 99.7 % expected);
+- *ambiguous*: pixels whose centre has a rival solution a hyperfine spacing away;
+- *false dips*: spectra of pure noise at the preset's counts that come back with a
+  resonance (OK, MERGED or ONE_RESONANCE; the issue asks ≤ 0.5 %).
+
+Seed 1 is the tuning seed (thresholds were looked at on it); report held-out seeds
+(``--seed 2`` and up).
 
 No assertions: a measurement to track, on spectra no detector was tuned on.
 """
@@ -67,32 +78,53 @@ def draw(preset_name: str, n: int, seed: int) -> tuple[np.ndarray, dict[str, np.
     base = preset.count_rate_cps * preset.dwell_s
     mean = np.full((n, freq.size), base)
     sig = np.empty((n, 2))
-    for k in range(2):
-        dip = sum(
-            w * lorentzian(freq[None, :], centres[:, k : k + 1] + off, preset.fwhm_hz)
+    alias = np.full(n, np.inf)
+    spacing = np.min(np.diff(np.sort(offsets))) if offsets.size > 1 else 0.0
+
+    def dip_shape(centre: np.ndarray) -> np.ndarray:
+        return sum(
+            w * lorentzian(freq[None, :], centre[:, None] + off, preset.fwhm_hz)
             for off, w in zip(offsets, weights, strict=True)
         )
+
+    for k in range(2):
+        dip = dip_shape(centres[:, k])
         mean -= base * depth[:, k : k + 1] * dip
         # Matched-filter significance of this dip alone, against the truth.
         sig[:, k] = depth[:, k] * np.sqrt(base * np.sum(dip**2, axis=1))
+        for shift in (-spacing, spacing) if spacing else ():
+            moved = base * depth[:, k : k + 1] * (dip - dip_shape(centres[:, k] + shift))
+            alias = np.minimum(alias, np.sum(moved**2, axis=1) / base)
     counts = rng.poisson(mean)
-    apart = np.diff(centres, axis=1)[:, 0] > preset.fwhm_hz
+    apart = _single_dip_chi2(freq, mean, preset.hyperfine) >= 25.0
     truth = {
         "center_hz": centres,
         "field_nv_t": b[:, 2],
-        "resolvable": apart & (sig.min(1) > 5),
+        "resolvable": apart & (sig.min(1) > 5) & (alias >= 25.0),
         "significance": sig.min(1),
     }
     return counts, truth
 
 
-def z_stats(value: np.ndarray, sigma: np.ndarray, truth: np.ndarray) -> tuple[float, float]:
-    """(rms of the normalised errors, fraction within 3σ) over finite entries."""
+def _single_dip_chi2(freq: np.ndarray, mean: np.ndarray, hyperfine: str | None) -> np.ndarray:
+    """χ² that the best single dip (free width) leaves on noise-free spectra, shape (n,)."""
+    model = FitModel(n_dips=1, hyperfine=hyperfine, line_width_spread=None)
+    out = []
+    for start in range(0, mean.shape[0], LINE):
+        fit = fit_line(freq, mean[start : start + LINE], model)
+        dof = freq.size - 4
+        out.append(np.where(np.isfinite(fit.chi2_red), fit.chi2_red * dof, np.inf))
+    return np.concatenate(out)
+
+
+def z_stats(value: np.ndarray, sigma: np.ndarray, truth: np.ndarray) -> str:
+    """rms of the normalised errors and the fractions within 1, 2, 3σ, finite entries."""
     z = (value - truth) / sigma
     z = z[np.isfinite(z)]
     if z.size == 0:
-        return float("nan"), float("nan")
-    return float(np.sqrt(np.mean(z**2))), float(np.mean(np.abs(z) < 3.0))
+        return f"{'-':>5s} {'-':>6s} {'-':>6s} {'-':>6s}"
+    within = [np.mean(np.abs(z) < k) for k in (1.0, 2.0, 3.0)]
+    return f"{np.sqrt(np.mean(z**2)):5.2f} " + " ".join(f"{w:6.1%}" for w in within)
 
 
 def run(preset_name: str, n: int, seed: int) -> None:
@@ -109,19 +141,27 @@ def run(preset_name: str, n: int, seed: int) -> None:
         centre_sigma.append(fit.center_sigma_hz)
         field.append(line_field.field_nv_t)
         field_sigma.append(line_field.field_nv_sigma_t)
-    ok = np.concatenate(status) == FitStatus.OK
+    st = np.concatenate(status)
+    ok = st == FitStatus.OK
     resolvable = truth["resolvable"]
     c, cs = np.concatenate(centre), np.concatenate(centre_sigma)
     f, fs = np.concatenate(field), np.concatenate(field_sigma)
-    # CW ODMR tells |B_NV| only (no bias here): compare magnitudes.
-    rms_c, in3_c = z_stats(c[ok], cs[ok], truth["center_hz"][ok])
-    rms_b, in3_b = z_stats(np.abs(f[ok]), fs[ok], np.abs(truth["field_nv_t"][ok]))
+    noise = np.random.default_rng(seed + 1000).poisson(
+        preset.count_rate_cps * preset.dwell_s, (n, freq.size)
+    )
+    noise_status = np.concatenate(
+        [fit_line(freq, noise[i : i + LINE], model).status for i in range(0, n, LINE)]
+    )
+    claimed = np.isin(noise_status, [FitStatus.OK, FitStatus.MERGED, FitStatus.ONE_RESONANCE])
     counts_per_sample = preset.count_rate_cps * preset.dwell_s
     print(
-        f"{preset_name:11s} {counts_per_sample:6.0f} {np.median(truth['significance']):6.1f} "
-        f"{resolvable.mean():8.1%} {_share(ok, resolvable):>8s} {_share(ok, ~resolvable):>8s} "
-        f"{rms_c:7.2f} {in3_c:7.1%} {rms_b:7.2f} {in3_b:7.1%}"
+        f"{preset_name:11s} {counts_per_sample:6.0f} {np.median(truth['significance']):5.1f} "
+        f"{resolvable.mean():7.1%} {_share(ok, resolvable):>7s} {_share(ok, ~resolvable):>7s} "
+        f"{np.mean(st == FitStatus.AMBIGUOUS):6.1%} {claimed.mean():6.2%}"
     )
+    # CW ODMR tells |B_NV| only (no bias here): compare magnitudes.
+    print(f"{'':11s} centres  {z_stats(c[ok], cs[ok], truth['center_hz'][ok])}")
+    print(f"{'':11s} |B_NV|   {z_stats(np.abs(f[ok]), fs[ok], np.abs(truth['field_nv_t'][ok]))}")
 
 
 def _share(ok: np.ndarray, among: np.ndarray) -> str:
@@ -139,17 +179,18 @@ def main() -> None:
         f"{GAMMA_NV_HZ_PER_T / 1e9:.4f} GHz/T"
     )
     print(
-        f"{'preset':11s} {'counts':>6s} {'S_med':>6s} {'resolv.':>8s} {'yield':>8s} "
-        f"{'OK else':>8s} "
-        f"{'rms z_f':>7s} {'<3s f':>7s} {'rms z_B':>7s} {'<3s B':>7s}"
+        f"{'preset':11s} {'counts':>6s} {'S_med':>5s} {'resolv':>7s} {'yield':>7s} "
+        f"{'OK else':>7s} {'ambig':>6s} {'false':>6s}"
     )
+    print(f"{'':11s} {'OK pixels':8s} {'rms z':>5s} {'<1s':>6s} {'<2s':>6s} {'<3s':>6s}")
     for name in PRESETS:
         run(name, args.n, args.seed)
     print(
-        "S_med: median significance of the weaker dip (matched filter); "
-        "resolv.: both dips > 5 sigma (matched filter) and > 1 FWHM apart; yield: OK among "
-        "those; OK else: OK among the rest; rms z and <3s: normalised errors of OK pixels "
-        "(1.0 and 99.7 % expected)"
+        "S_med: median significance of the weaker dip (matched filter); resolv: both dips "
+        "> 5 sigma and the pair (and any hyperfine alias) told apart at 5 sigma; yield: OK "
+        "among those; OK else: OK among the rest; ambig: AMBIGUOUS among all; false: pure-"
+        "noise spectra that come back with a resonance; rms z and <ks: normalised errors "
+        "of OK pixels (1.0 and 68.3 / 95.4 / 99.7 % expected)"
     )
 
 

@@ -67,10 +67,11 @@ def starting_points(y: np.ndarray, model: FitModel) -> np.ndarray:
         hf_w=np.ones(1),
         fwhm_bounds=(model.fwhm_bounds_hz[0] / half, model.fwhm_bounds_hz[1] / half),
         contrast_max=model.contrast_bounds[1],
-        guess_sigmas=model.guess_sigmas,
+        poisson=True,
+        false_dip_rate=model.false_dip_rate,
+        false_partner_rate=model.false_partner_rate,
         pair_center=0.0,  # the window is centred on D
         mirror_tol=2.0 * model.pair_tolerance_hz / half,
-        partner_sigmas=model.partner_significance,
     )
     rows = np.arange(y.shape[0])
     p = _start(model._main, g, rows, g.n_found == 1)

@@ -1,28 +1,22 @@
-"""Starting points for the batched ODMR fit, compiled (numba, one thread per spectrum).
+"""Starting points for the batched ODMR fit: the line's width, then matched-filter dips.
 
-Steps for each spectrum, in the scaled frequency ``x`` of :mod:`strayline.fit._kernel`:
+1. *The line's width.* Each spectrum is smoothed lightly (5-point binomial kernel along
+   the grid index, mirrored ends; with a hyperfine pattern, correlated with the pattern's
+   comb so that the deepest point is the pattern's centre), its baseline taken as the
+   80th percentile and its noise from the mean absolute first difference of the raw
+   counts (floored at half the Poisson noise √b); the deepest point's half-depth
+   crossings give a rough FWHM (corrected for the smoothing). The median rough FWHM of
+   the clearly dipped spectra (deeper than ``_CONFIDENT`` noise units) places a matched
+   filter, and the line's width is the template width that best matches the clearest
+   dips. All this on a subsample of the line; a caller that knows the width (the
+   previous line's pooled FWHM, a profile's) skips it.
+2. *Dips.* :mod:`strayline.fit._detect` scans a matched filter of that width over the
+   sweep, with detection thresholds set by the look-elsewhere effect for the stated
+   false-dip rates.
 
-1. smooth lightly (5-point binomial kernel along the grid index, mirrored ends); with a
-   hyperfine pattern, correlate with the pattern's comb so that the deepest point is the
-   pattern's centre, not one of its components;
-2. baseline from the 80th percentile of the smoothed spectrum, noise from the mean
-   absolute first difference of the raw counts (dips barely change it), floored at half
-   the Poisson noise √b;
-3. the deepest dip: depth, centre (midpoint of the half-depth crossings) and FWHM
-   (distance between them); found when deeper than ``guess_sigmas`` smoothed-noise units;
-4. divide that dip's Lorentzian out of the raw counts, blank a FWHM around it and scan a
-   box filter one typical FWHM wide over every grid point (a near-matched filter for a
-   Lorentzian: the mean of a unit dip over ±FWHM/2 is π/4). The second dip is the best
-   box inside the *mirror window* (within ``mirror_tol`` of 2·pair_centre − c₁, where the
-   partner of a Zeeman pair must lie) when its score reaches ``partner_sigmas``, else the
-   best box anywhere when its score reaches ``guess_sigmas``; its centre is then refined
-   to the deepest smoothed point inside the box.
-
-The typical FWHM of step 4 is the median first-dip FWHM of the batch, the only quantity
-shared between spectra; it is computed serially between two parallel passes, so the
-result does not depend on the number of threads (bit-for-bit deterministic).
-
-Only the ordering and rough size matter: the fit refines everything.
+The line's width is the only quantity shared between spectra; it is computed serially
+between two parallel passes, so the result does not depend on the number of threads
+(bit-for-bit deterministic).
 """
 
 # Compiled kernels take their arrays positionally (numba calls them so from prange bodies).
@@ -36,11 +30,21 @@ from dataclasses import dataclass
 import numpy as np
 from numba import njit, prange
 
+from strayline.fit._detect import (
+    detect_dips,
+    dip_templates,
+    ladder_width,
+    matched_width,
+    rice_threshold,
+)
+
 __all__ = ["DipGuess", "guess_dips"]
 
 _SMOOTH = np.array([1.0, 4.0, 6.0, 4.0, 1.0]) / 16.0
 _SMOOTH_NOISE = float(np.sqrt(np.sum(_SMOOTH**2)))  # noise factor of the smoothed data
 _BASELINE_PERCENTILE = 80.0
+_CONFIDENT = 6.0  # depth, in smoothed-noise units, of a spectrum that shows the line's width
+_WIDTH_SAMPLE = 128  # spectra of a line looked at for its width
 _FASTMATH = {"contract", "arcp", "reassoc", "nsz", "afn"}
 
 
@@ -50,21 +54,22 @@ class DipGuess:
 
     Attributes
     ----------
-    center, contrast, fwhm : ndarray, shape (n, 2)
-        Dip 0 is the deepest, dip 1 the second (NaN when not found).
+    center, contrast, significance : ndarray, shape (n, 2)
+        Dip 0 is the first (largest) dip, dip 1 its partner (NaN when not found);
+        significance is the matched-filter statistic.
+    fwhm : float
+        The line's width, the same for every dip.
     baseline : ndarray
         Off-resonance counts per sample.
-    noise : ndarray
-        Per-sample noise estimate of the raw counts.
     n_found : ndarray of int64
         Number of dips found (0, 1 or 2).
     """
 
     center: np.ndarray
     contrast: np.ndarray
-    fwhm: np.ndarray
+    significance: np.ndarray
+    fwhm: float
     baseline: np.ndarray
-    noise: np.ndarray
     n_found: np.ndarray
 
 
@@ -123,33 +128,32 @@ def _kth_smallest(a, k):
 
 
 @njit(cache=True, error_model="numpy", fastmath=_FASTMATH)
-def _unit_depth(fwhm, hf_off, hf_w):
-    """Depth of a unit-contrast dip at its centre, including its hyperfine components."""
-    h2 = 0.25 * fwhm * fwhm
-    acc = 0.0
-    for m in range(hf_off.shape[0]):
-        acc += hf_w[m] * h2 / (hf_off[m] * hf_off[m] + h2)
-    return acc
+def _unsmoothed(fwhm_v, step):
+    """Lorentzian FWHM whose convolution with the smoothing kernel has FWHM ``fwhm_v``.
+
+    The binomial kernel is close to a Gaussian of σ = 1 sample (FWHM 2.355 ``step``); the
+    Voigt FWHM f_V ≈ 0.5346 f_L + √(0.2166 f_L² + f_G²) (J. J. Olivero and R. L.
+    Longbothum, J. Quant. Spectrosc. Radiat. Transfer 17, 233 (1977); from memory) is
+    solved for the Lorentzian f_L.
+    """
+    f_g = 2.3548 * step
+    if fwhm_v <= f_g:
+        return 0.0
+    disc = 1.0692 * 1.0692 * fwhm_v * fwhm_v - 4.0 * 0.0692 * (fwhm_v * fwhm_v - f_g * f_g)
+    return (1.0692 * fwhm_v - math.sqrt(max(disc, 0.0))) / (2.0 * 0.0692)
 
 
 @njit(cache=True, error_model="numpy", fastmath=_FASTMATH, parallel=True)
-def _first_dip(
-    x, y, comb_j, comb_t, hf_off, hf_w, use_comb, k_base, lo_w, hi_w, contrast_max, guess_sigmas
-):
-    """Steps 1-3 for every row of ``y``; returns smoothed rows and the first dip."""
+def _rough_widths(x, y, comb_j, comb_t, hf_off, hf_w, use_comb, k_base, lo_w, hi_w):
+    """The deepest dip's FWHM and depth (in noise units of the smoothed data) per row."""
     n_spec, n = y.shape
-    s_all = np.empty((n_spec, n))
-    base = np.empty(n_spec)
-    noise = np.empty(n_spec)
-    c1 = np.empty(n_spec)
     w1 = np.empty(n_spec)
-    k1 = np.empty(n_spec)
-    found = np.empty(n_spec, dtype=np.int64)
+    z1 = np.empty(n_spec)
     span = x[n - 1] - x[0]
     hf_spread = np.max(hf_off) - np.min(hf_off)
     for r in prange(n_spec):
         yr = y[r]
-        s = s_all[r]
+        s = np.empty(n)
         tmp = np.empty(n)
         _smooth_row(yr, comb_j, comb_t, hf_w, use_comb, s, tmp)
         for k in range(n):
@@ -191,105 +195,13 @@ def _first_dip(
             xr = 2.0 * xm - xl
         elif has_r and not has_l:
             xl = 2.0 * xm - xr
-        # a comb-correlated pattern has side lobes that make the crossings asymmetric
-        cen = xm if use_comb or not (has_l and has_r) else 0.5 * (xl + xr)
         width = span if not (has_l or has_r) else xr - xl
-        width = min(max(width - hf_spread, lo_w), hi_w)
-        safe_b = b if b > 0.0 else 1.0
-        con = depth / safe_b / _unit_depth(width, hf_off, hf_w)
-        base[r] = b
-        noise[r] = nz
-        c1[r] = cen
-        w1[r] = width
-        k1[r] = min(max(con, 1e-3), contrast_max)
-        found[r] = 1 if depth > guess_sigmas * nz * _SMOOTH_NOISE else 0
-    return s_all, base, noise, c1, w1, k1, found
-
-
-@njit(cache=True, error_model="numpy", fastmath=_FASTMATH, parallel=True)
-def _second_dip(
-    x,
-    y,
-    s_all,
-    base,
-    noise,
-    c1,
-    w1,
-    k1,
-    found1,
-    hf_off,
-    hf_w,
-    box_lo,
-    box_hi,
-    w_box,
-    w_ref,
-    contrast_max,
-    guess_sigmas,
-    pair_x,
-    mirror_tol,
-    partner_sigmas,
-):
-    """Step 4 for every row; returns the second dip's centre and contrast and found flags."""
-    n_spec, n = y.shape
-    c2 = np.empty(n_spec)
-    k2 = np.empty(n_spec)
-    found2 = np.empty(n_spec, dtype=np.int64)
-    span = x[n - 1] - x[0]
-    unit2 = _unit_depth(w_ref, hf_off, hf_w)
-    for r in prange(n_spec):
-        yr = y[r]
-        s = s_all[r]
-        div = np.empty(n)
-        csum = np.empty(n + 1)
-        h2 = 0.25 * w1[r] * w1[r]
-        blank = max(w1[r], 4.0 * span / n)
-        csum[0] = 0.0
-        for k in range(n):
-            lor = 0.0
-            for m in range(hf_off.shape[0]):
-                d = x[k] - c1[r] - hf_off[m]
-                lor += hf_w[m] * h2 / (d * d + h2)
-            div[k] = max(1.0 - k1[r] * lor, 0.05)
-            resid = 0.0 if abs(x[k] - c1[r]) < blank else base[r] - yr[k] / div[k]
-            csum[k + 1] = csum[k] + resid
-        # best box anywhere, and best box in the mirror window of the first dip
-        mirror = 2.0 * pair_x - c1[r]
-        j_any = 0
-        best_any = -np.inf
-        j_mir = -1
-        best_mir = -np.inf
-        for k in range(n):
-            cnt = box_hi[k] - box_lo[k]
-            score = (csum[box_hi[k]] - csum[box_lo[k]]) / math.sqrt(cnt) / noise[r]
-            if score > best_any:
-                best_any = score
-                j_any = k
-            if abs(x[k] - mirror) <= mirror_tol and score > best_mir:
-                best_mir = score
-                j_mir = k
-        if j_mir >= 0 and best_mir > partner_sigmas:
-            j2 = j_mir
-            ok = True
-        else:
-            j2 = j_any
-            ok = best_any > guess_sigmas
-        cnt = box_hi[j2] - box_lo[j2]
-        box = (csum[box_hi[j2]] - csum[box_lo[j2]]) / cnt
-        # refine: the deepest point of the (comb-correlated) smoothed data inside that box
-        i_best = -1
-        q_best = np.inf
-        for k in range(n):
-            if abs(x[k] - x[j2]) <= 0.5 * w_box:
-                q = s[k] / div[k]
-                if q < q_best:
-                    q_best = q
-                    i_best = k
-        safe_b = base[r] if base[r] > 0.0 else 1.0
-        con = box / (math.pi / 4.0) / safe_b / unit2
-        c2[r] = x[i_best] if i_best >= 0 else x[j2]
-        k2[r] = min(max(con, 1e-3), contrast_max)
-        found2[r] = 1 if (found1[r] == 1 and ok) else 0
-    return c2, k2, found2
+        k_hi = min(imin + 1, n - 1)
+        k_lo = max(imin - 1, 0)
+        step = (x[k_hi] - x[k_lo]) / (k_hi - k_lo)
+        w1[r] = min(max(_unsmoothed(width - hf_spread, step), lo_w), hi_w)
+        z1[r] = depth / (nz * _SMOOTH_NOISE)
+    return w1, z1
 
 
 def _comb_tables(x: np.ndarray, hf_off: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -305,6 +217,41 @@ def _comb_tables(x: np.ndarray, hf_off: np.ndarray) -> tuple[np.ndarray, np.ndar
     return np.ascontiguousarray(j, dtype=np.int64), np.ascontiguousarray(t, dtype=np.float64)
 
 
+def line_width(
+    x: np.ndarray,
+    y: np.ndarray,
+    hf_off: np.ndarray,
+    hf_w: np.ndarray,
+    fwhm_bounds: tuple[float, float],
+    center_range: tuple[float, float],
+    pair_center: float = np.nan,
+    mirror_tol: float = -1.0,
+) -> float:
+    """The line's FWHM (scaled), from a subsample of its spectra.
+
+    A rough width (the median half-depth width of the clearly dipped spectra of the
+    subsample, :func:`_rough_widths`) places the matched filter; the width is then the
+    median, over the spectra with the clearest dips, of the template width that
+    correlates best with each one's dip (:func:`strayline.fit._detect.matched_width`).
+    """
+    sub = y[:: max(1, y.shape[0] // _WIDTH_SAMPLE)]
+    n = sub.shape[1]
+    comb_j, comb_t = _comb_tables(x, hf_off)
+    use_comb = not (hf_off.shape[0] == 1 and hf_off[0] == 0.0)
+    k_base = round(_BASELINE_PERCENTILE / 100.0 * (n - 1))
+    w1, z1 = _rough_widths(
+        x, sub, comb_j, comb_t, hf_off, hf_w, use_comb, k_base, fwhm_bounds[0], fwhm_bounds[1]
+    )
+    rough = float(np.median(w1))
+    for floor in (_CONFIDENT, 0.5 * _CONFIDENT):
+        if np.count_nonzero(z1 > floor) >= 3:
+            rough = float(np.median(w1[z1 > floor]))
+            break
+    return matched_width(
+        x, sub, rough, hf_off, hf_w, fwhm_bounds, center_range, pair_center, mirror_tol
+    )
+
+
 def guess_dips(
     x: np.ndarray,
     y: np.ndarray,
@@ -313,10 +260,13 @@ def guess_dips(
     hf_w: np.ndarray,
     fwhm_bounds: tuple[float, float],
     contrast_max: float,
-    guess_sigmas: float,
+    poisson: bool,
+    false_dip_rate: float,
+    false_partner_rate: float,
+    fwhm: float | None = None,
+    center_range: tuple[float, float] = (-np.inf, np.inf),
     pair_center: float = np.nan,
-    mirror_tol: float = 0.0,
-    partner_sigmas: float = np.inf,
+    mirror_tol: float = -1.0,
 ) -> DipGuess:
     """Find up to two dips per spectrum.
 
@@ -332,74 +282,51 @@ def guess_dips(
         Allowed FWHM range (scaled).
     contrast_max : float
         Upper bound of the contrast.
-    guess_sigmas : float
-        A dip counts as found when deeper than this many noise units (of the smoothed data
-        for the first dip, of the box filter for a second dip anywhere).
+    poisson : bool
+        Noise of Poisson counts (σ² = mean) or estimated from the data.
+    false_dip_rate : float
+        Chance that a spectrum of pure noise shows a dip anywhere in the sweep.
+    false_partner_rate : float
+        Chance that noise fakes a partner inside the mirror window of a real dip.
+    fwhm : float, optional
+        The line's width when known (scaled); else estimated from the spectra.
+    center_range : (float, float)
+        Where dip centres may lie (scaled).
     pair_center : float
         Expected midpoint of the two resonances (scaled); NaN disables the mirror window.
     mirror_tol : float
-        Half-width of the mirror window (scaled).
-    partner_sigmas : float
-        Box-filter score that a second dip inside the mirror window needs.
-
-    Returns
-    -------
-    DipGuess
+        Half-width of the mirror window (scaled); negative disables it.
     """
     yc = np.ascontiguousarray(y, dtype=np.float64)
     xc = np.ascontiguousarray(x, dtype=np.float64)
     off = np.ascontiguousarray(hf_off, dtype=np.float64)
     wts = np.ascontiguousarray(hf_w, dtype=np.float64)
-    n = yc.shape[1]
-    comb_j, comb_t = _comb_tables(xc, off)
-    use_comb = not (off.shape[0] == 1 and off[0] == 0.0)
-    k_base = round(_BASELINE_PERCENTILE / 100.0 * (n - 1))
     lo_w, hi_w = float(fwhm_bounds[0]), float(fwhm_bounds[1])
-    s_all, base, noise, c1, w1, k1, found1 = _first_dip(
+    if fwhm is None:
+        width = line_width(xc, yc, off, wts, (lo_w, hi_w), center_range, pair_center, mirror_tol)
+    else:
+        width = float(fwhm)
+    width = min(max(width, lo_w), hi_w)
+    templates = dip_templates(xc, ladder_width(width), off, wts, *center_range)
+    u_single = rice_threshold(templates.arc, false_dip_rate)
+    window_arc = min(templates.arc, templates.arc_per_x * 2.0 * max(mirror_tol, 0.0))
+    u_partner = rice_threshold(window_arc, false_partner_rate)
+    found = detect_dips(
         xc,
         yc,
-        comb_j,
-        comb_t,
-        off,
-        wts,
-        use_comb,
-        k_base,
-        lo_w,
-        hi_w,
-        float(contrast_max),
-        float(guess_sigmas),
+        templates,
+        poisson=poisson,
+        u_single=u_single,
+        u_partner=u_partner,
+        pair_center=pair_center,
+        mirror_tol=mirror_tol,
     )
-    # The one quantity shared between spectra, computed serially: the box width.
-    w_ref = float(np.median(w1[found1 == 1])) if np.any(found1 == 1) else float(np.median(w1))
-    w_box = w_ref + float(off.max() - off.min())
-    box_lo = np.searchsorted(xc, xc - 0.5 * w_box, side="left").astype(np.int64)
-    box_hi = np.searchsorted(xc, xc + 0.5 * w_box, side="right").astype(np.int64)
-    pair_x = float(pair_center) if np.isfinite(pair_center) else 0.0
-    tol = float(mirror_tol) if np.isfinite(pair_center) else -1.0
-    c2, k2, found2 = _second_dip(
-        xc,
-        yc,
-        s_all,
-        base,
-        noise,
-        c1,
-        w1,
-        k1,
-        found1,
-        off,
-        wts,
-        box_lo,
-        box_hi,
-        w_box,
-        w_ref,
-        float(contrast_max),
-        float(guess_sigmas),
-        pair_x,
-        tol,
-        float(partner_sigmas),
+    contrast = np.clip(found.depth, 1e-3, contrast_max)
+    return DipGuess(
+        center=found.center,
+        contrast=contrast,
+        significance=found.significance,
+        fwhm=width,
+        baseline=found.baseline,
+        n_found=found.n_found,
     )
-    two = found2 == 1
-    center = np.stack([c1, np.where(two, c2, np.nan)], axis=1)
-    contrast = np.stack([k1, np.where(two, k2, np.nan)], axis=1)
-    fwhm = np.stack([w1, np.where(two, w_ref, np.nan)], axis=1)
-    return DipGuess(center, contrast, fwhm, base, noise, found1 + found2)

@@ -409,7 +409,10 @@ def _fit_one(
     wv,
     free,
 ):
-    """Fit one spectrum in place; returns (pearson χ², iterations, exit code).
+    """Fit one spectrum in place; returns (Pearson χ² per dof, objective, iterations, code).
+
+    The objective is the likelihood-ratio χ² (or the sum of squares) at the solution,
+    without the width prior's term.
 
     Scratch space, every element written before it is read: ``ws`` (n_par + 4, n_freq),
     ``wm`` (3, n_par, n_par), ``wv`` (5, n_par), ``free`` (n_par,) bool.
@@ -539,7 +542,9 @@ def _fit_one(
     if not done and not _inverse_diag(a, dmax, free, gt, m, delta, s2, sigma):
         for i in range(n_par):
             sigma[i] = np.inf
-    return pear / n_free_dof, it, code
+    for i in range(2 * n_dips, 2 * n_dips + n_widths):
+        obj -= w_ivar * (p[i] - w0) * (p[i] - w0)
+    return pear / n_free_dof, obj, it, code
 
 
 @njit(cache=True, error_model="numpy", fastmath=_FASTMATH)
@@ -615,6 +620,10 @@ def lm_batch(
         1σ of each parameter (NaN where undetermined, inf for a singular matrix).
     chi2_red : ndarray, shape (n_spec,)
         Pearson χ² (weights 1/max(mu, 1)) per degree of freedom.
+    objective : ndarray, shape (n_spec,)
+        The objective at the solution without the width prior: the likelihood-ratio χ²
+        (Poisson), or the sum of squares; differences between models are likelihood-ratio
+        statistics.
     n_iter : ndarray of int32, shape (n_spec,)
     code : ndarray of int8, shape (n_spec,)
         :data:`CONVERGED`, :data:`STALLED` or :data:`MAX_ITER`.
@@ -622,6 +631,7 @@ def lm_batch(
     n_spec, n_par = p.shape
     sigma = np.empty((n_spec, n_par))
     chi2 = np.empty(n_spec)
+    objective = np.empty(n_spec)
     n_iter = np.empty(n_spec, dtype=np.int32)
     code = np.empty(n_spec, dtype=np.int8)
     # Spectra in chunks of _CHUNK, each with its own scratch space (allocated once per
@@ -652,6 +662,7 @@ def lm_batch(
                 observed,
                 sigma,
                 chi2,
+                objective,
                 n_iter,
                 code,
                 sidx,
@@ -660,7 +671,7 @@ def lm_batch(
                 wv,
                 free,
             )
-    return sigma, chi2, n_iter, code
+    return sigma, chi2, objective, n_iter, code
 
 
 @njit(cache=True, error_model="numpy", fastmath=_FASTMATH)
@@ -683,6 +694,7 @@ def _fit_into(
     observed,
     sigma,
     chi2,
+    objective,
     n_iter,
     code,
     sidx,
@@ -692,7 +704,7 @@ def _fit_into(
     free,
 ):
     """Fit spectrum ``sidx`` of the batch and store its results."""
-    c2, it, cd = _fit_one(
+    c2, obj, it, cd = _fit_one(
         x,
         y[sidx],
         p[sidx],
@@ -716,6 +728,7 @@ def _fit_into(
         free,
     )
     chi2[sidx] = c2
+    objective[sidx] = obj
     n_iter[sidx] = it
     code[sidx] = cd
 

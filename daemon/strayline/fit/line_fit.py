@@ -20,6 +20,7 @@ grid and runs.
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from enum import IntEnum
 from typing import Literal
@@ -44,6 +45,7 @@ class FitStatus(IntEnum):
     NOT_CONVERGED = 4  # iteration limit reached
     LOW_COUNTS = 5  # too few photons to fit
     ONE_RESONANCE = 6  # two-dip model asked for, only one dip inside the window
+    AMBIGUOUS = 7  # another solution, a hyperfine spacing away, fits about as well
 
 
 @dataclass(frozen=True, eq=False)
@@ -161,14 +163,33 @@ class FitModel:
     line_width_spread : float or None
         Relative 1σ by which the true FWHM may differ between the pixels of one line. The
         linewidth is set by the NV and the microwave and laser powers, which a line does
-        not change (common practice), so the line's median fitted FWHM enters every
-        pixel's fit as a Gaussian prior of this relative width (loosened when the fitted
-        widths scatter more than their 1σ explain). This tames noise-driven narrow-width
+        not change (common practice), so the line's FWHM (measured by the matched filter
+        on its clearest dips) enters every pixel's fit as a Gaussian prior of this
+        relative width (loosened when the fitted widths scatter more than their 1σ
+        explain). This tames noise-driven narrow-width
         solutions at low counts. None fits every width freely.
-    guess_sigmas : float
-        Depth, in noise units of the lightly smoothed spectrum, for the starting-point
-        search to count a dip (a second dip at the mirror position of the first, about
-        the pair centre, needs only ``partner_significance``).
+    false_dip_rate : float
+        Chance that a spectrum of pure noise shows a dip: the detection threshold of the
+        matched filter over the sweep is set from it by the look-elsewhere effect
+        (:mod:`strayline.fit._detect`). Spectra without a detected dip are NO_RESONANCE.
+    false_partner_rate : float
+        Chance that noise fakes a partner inside the mirror window of a real dip (the
+        window where a Zeeman partner must lie, ``2 pair_tolerance_hz`` wide); sets the
+        partner's detection threshold the same way.
+    split_chi2 : float
+        Likelihood-ratio χ² by which a solution must beat its rival: two close dips
+        against one broadened dip, a centre against its hyperfine alias. 9.2 is the 1 %
+        point of χ² with two degrees of freedom (the two extra parameters of a second
+        dip); as posterior odds between two solutions with equal priors it is 1 : 100.
+    sigma_kappa : float
+        Low-signal correction of the centres' 1σ: each is widened by √(1 + κ/z²), z the
+        significance (contrast / 1σ) of its dip. The inverse information is the leading
+        term of an estimator's variance, whose next term falls off as 1/z² (the
+        likelihood is not yet quadratic over the centre's spread); κ is calibrated by
+        simulation on a family of random sweeps, widths, counts and contrasts (tuning
+        seeds; ``benchmarks/sigma_calibration.py``): 13.5 brings the rms of (fitted −
+        true)/σ of OK centres to 1.00 on held-out seeds (1.15 without it) and the share
+        within 3σ from 98.9 % to 99.4 %. 0 reports the inverse information alone.
     pair_center_hz : float or None
         Expected midpoint (f₋ + f₊)/2 of the two resonances (≈ D), Hz; None = the middle of
         the line's frequency window. A single dip within ``merge_radius_hz`` of it is two
@@ -181,7 +202,7 @@ class FitModel:
     shared_width: bool = True
     hyperfine: Hyperfine = None
     fit_slope: bool = False
-    fwhm_bounds_hz: tuple[float, float] = (1e6, 60e6)
+    fwhm_bounds_hz: tuple[float, float] = (0.1e6, 60e6)
     contrast_bounds: tuple[float, float] = (0.0, 0.6)
     center_bounds_hz: tuple[float, float] | None = None
     weighting: Weighting = "poisson"
@@ -190,7 +211,10 @@ class FitModel:
     min_counts: float = 3.0
     min_significance: float = 4.0
     partner_significance: float = 2.5
-    guess_sigmas: float = 4.0
+    false_dip_rate: float = 0.005
+    false_partner_rate: float = 0.05
+    split_chi2: float = 9.2
+    sigma_kappa: float = 13.5
     pair_center_hz: float | None = None
     merge_radius_hz: float = 20e6
     pair_tolerance_hz: float = 10e6
@@ -233,6 +257,12 @@ class FitModel:
             problems.append(
                 f"line_width_spread must be > 0 or None; found {self.line_width_spread}"
             )
+        for name in ("false_dip_rate", "false_partner_rate"):
+            rate = getattr(self, name)
+            if not 0.0 < rate < 0.5:
+                problems.append(f"{name} must lie in (0, 0.5); found {rate}")
+        if not self.sigma_kappa >= 0.0:
+            problems.append(f"sigma_kappa must be >= 0; found {self.sigma_kappa}")
         if not self.pair_tolerance_hz >= 0.0:
             problems.append(f"pair_tolerance_hz must be >= 0; found {self.pair_tolerance_hz}")
         if problems:
@@ -246,7 +276,13 @@ class FitModel:
 
 
 def _bounds(
-    layout: _Layout, model: FitModel, x: np.ndarray, half_hz: float, ref_hz: float
+    layout: _Layout,
+    model: FitModel,
+    x: np.ndarray,
+    *,
+    half_hz: float,
+    ref_hz: float,
+    fwhm_lo_hz: float,
 ) -> tuple[np.ndarray, np.ndarray]:
     """Box bounds of a kernel row in scaled units, shape (n_par,) each."""
     nd, nw = layout.n_dips, layout.n_widths
@@ -260,7 +296,7 @@ def _bounds(
             c_lo, c_hi = x[0], x[-1]
     lo[:nd], hi[:nd] = c_lo, c_hi
     lo[nd : 2 * nd], hi[nd : 2 * nd] = model.contrast_bounds
-    lo[2 * nd : 2 * nd + nw] = model.fwhm_bounds_hz[0] / half_hz
+    lo[2 * nd : 2 * nd + nw] = fwhm_lo_hz / half_hz
     hi[2 * nd : 2 * nd + nw] = model.fwhm_bounds_hz[1] / half_hz
     lo[layout.i_baseline] = 0.0
     return lo, hi
@@ -270,32 +306,26 @@ def _start(layout: _Layout, guess: DipGuess, rows: np.ndarray, split: np.ndarray
     """Kernel starting rows, shape (len(rows), n_par).
 
     Two-dip rows with one dip found (``split``) start as a symmetric pair around it: two
-    dips a quarter FWHM either side, 0.8 of its width and 0.7 of its contrast each (their
-    sum then has about the depth and width of the single dip).
+    dips a quarter FWHM either side, 0.8 of the line's width and 0.7 of its contrast each
+    (their sum then has about the depth and width of the single dip).
     """
     nd = layout.n_dips
     c = guess.center[rows]
     k = guess.contrast[rows]
-    w = guess.fwhm[rows]
-    b = guess.baseline[rows]
+    w = guess.fwhm
     p = np.zeros((rows.shape[0], layout.n_par))
     if nd == 1:
-        p[:, 0], p[:, 1], p[:, 2] = c[:, 0], k[:, 0], w[:, 0]
+        p[:, 0], p[:, 1], p[:, 2] = c[:, 0], k[:, 0], w
     else:
         sp = split[rows]
-        c_pair = np.where(
-            sp[:, None], c[:, :1] + np.array([-0.25, 0.25]) * w[:, :1], np.sort(c, axis=1)
-        )
+        c_pair = np.where(sp[:, None], c[:, :1] + np.array([-0.25, 0.25]) * w, np.sort(c, axis=1))
         order = np.argsort(c, axis=1)
         k_pair = np.where(sp[:, None], 0.7 * k[:, :1], np.take_along_axis(k, order, axis=1))
-        w_pair = np.where(sp[:, None], 0.8 * w[:, :1], np.take_along_axis(w, order, axis=1))
         p[:, 0:2] = c_pair
         p[:, 2:4] = k_pair
-        if layout.n_widths == 1:
-            p[:, 4] = np.mean(w_pair, axis=1)
-        else:
-            p[:, 4:6] = w_pair
-    p[:, layout.i_baseline] = b
+        w_pair = np.where(sp, 0.8 * w, w)
+        p[:, 4 : 4 + layout.n_widths] = w_pair[:, None]
+    p[:, layout.i_baseline] = guess.baseline[rows]
     return p
 
 
@@ -308,6 +338,7 @@ def _run(
     p0: np.ndarray,
     half_hz: float,
     ref_hz: float,
+    fwhm_lo_hz: float,
     width_prior: tuple[float, float] = (0.0, 0.0),
     final: bool = True,
 ) -> dict[str, np.ndarray]:
@@ -318,9 +349,9 @@ def _run(
     observed information; otherwise (a first pass that another one refines) stop at
     ``_FIRST_XTOL`` and take σ from the expected information, which costs no extra pass.
     """
-    lo, hi = _bounds(layout, model, x, half_hz, ref_hz)
+    lo, hi = _bounds(layout, model, x, half_hz=half_hz, ref_hz=ref_hz, fwhm_lo_hz=fwhm_lo_hz)
     p = np.ascontiguousarray(np.clip(p0, lo, hi))
-    sigma, chi2, n_iter, code = lm_batch(
+    sigma, chi2, objective, n_iter, code = lm_batch(
         x,
         y,
         p,
@@ -343,6 +374,7 @@ def _run(
         "p": p,
         "sigma": sigma,
         "chi2": chi2,
+        "objective": objective,
         "n_iter": n_iter,
         "code": code,
         "at_bound": at_bound,
@@ -362,60 +394,127 @@ def _significance(res: dict[str, np.ndarray], nd: int) -> np.ndarray:
 
 
 def _line_width_prior(
-    res: dict[str, np.ndarray], keep: np.ndarray, i_width: int, spread: float | None
+    res: dict[str, np.ndarray],
+    keep: np.ndarray,
+    i_width: int,
+    spread: float | None,
+    centre: float,
 ) -> tuple[float, float] | None:
     """(centre, inverse variance) of the line's width prior, scaled units, or None.
 
-    Centre G₀: the median FWHM of the line's kept fits. Variance: (spread·G₀)² plus the
-    part of the fitted widths' scatter (1.4826 × MAD; 1.4826 = 1/Φ⁻¹(¾) makes the median
-    absolute deviation a Gaussian σ, common practice) that their own 1σ does not explain,
-    so a line whose widths truly differ gets a looser prior. None without ``spread`` or
-    with fewer than ``_MIN_POOLED`` kept fits.
+    Centre: the line's width as the matched filter measured it on its clearest dips
+    (:func:`strayline.fit._detect.matched_width`). The median of the kept fits' widths
+    would do worse: at low signal the fits that pass the significance cut are those
+    that noise made narrow and deep, and a prior at their median narrows every fit
+    (measured: 8.7 MHz for 10 MHz lines at 4σ dips, against 9.6 MHz from the matched
+    filter). Variance: (spread·G₀)² plus the part of the kept fits' scatter (1.4826 ×
+    MAD; 1.4826 = 1/Φ⁻¹(¾) makes the median absolute deviation a Gaussian σ, common
+    practice) that their own 1σ does not explain, so a line whose widths truly differ
+    gets a looser prior. None without ``spread`` or with fewer than ``_MIN_POOLED`` kept
+    fits.
     """
     if spread is None or np.count_nonzero(keep) < _MIN_POOLED:
         return None
     widths = res["p"][keep, i_width]
     w_sigma = res["sigma"][keep, i_width]
-    g0 = float(np.median(widths))
-    scatter2 = (MAD_TO_SIGMA * float(np.median(np.abs(widths - g0)))) ** 2
+    scatter2 = (MAD_TO_SIGMA * float(np.median(np.abs(widths - np.median(widths))))) ** 2
     own2 = float(np.median(np.where(np.isfinite(w_sigma), w_sigma, 0.0) ** 2))
-    var = (spread * g0) ** 2 + max(scatter2 - own2, 0.0)
-    return g0, 1.0 / var
+    var = (spread * centre) ** 2 + max(scatter2 - own2, 0.0)
+    return centre, 1.0 / var
 
 
 def _pair_kept(
-    res: dict[str, np.ndarray], model: FitModel, n_widths: int, pair_x: float, tol_x: float
+    res: dict[str, np.ndarray],
+    model: FitModel,
+    *,
+    n_widths: int,
+    detected_two: np.ndarray,
+    pair_x: float,
+    tol_x: float,
 ) -> np.ndarray:
     """Two-dip rows that stay two dips, shape (n,).
 
-    Kept when the dips are at least half a FWHM apart and both reach ``min_significance``
-    (S), or when they are at least max(FWHM, 4 ``tol_x``) apart (so that the window where
-    the partner is expected excludes the first dip), the pair's midpoint lies within
-    ``tol_x`` of the pair centre, the weaker dip reaches ``partner_significance`` (P) and the pair
-    carries the evidence of a significant dip plus a partner at the floor:
-    z₀² + z₁² ≥ S² + P² (z² is the χ² gain of a dip, so the sum is the pair's
-    likelihood-ratio statistic). A Zeeman pair lies symmetric about D (PHYSICS.md §2), so a
-    partner at the mirror position of a clearly separate dip needs less evidence than a
-    second dip anywhere; overlapping dips get no such allowance, since noise readily splits
-    one broad dip into two (common practice).
+    The two resonances of one NV lie symmetric about D (PHYSICS.md §2), so a pair is kept
+    only with its midpoint within ``tol_x`` of the pair centre; two dips far from that
+    symmetry are not one NV's pair (a noise dip beside a real one, most often) and fall
+    to the one-dip fit. Symmetric pairs are kept when the fitted dips are at least half a
+    FWHM apart and both reach ``min_significance``, or when the matched filter found the
+    partner (``detected_two``) at least max(FWHM, 4 ``tol_x``) from the first dip (so
+    that the window where the partner is expected excludes the first dip) and the weaker
+    fitted dip still reaches ``partner_significance``. Overlapping dips get no such
+    allowance, since noise readily splits one broad dip into two (common practice).
     """
     p = res["p"]
     z = _significance(res, 2)
-    big, floor = model.min_significance, model.partner_significance
     sep = np.abs(p[:, 1] - p[:, 0])
     width = np.max(p[:, 4 : 4 + n_widths], axis=1)
-    both = (z[:, 0] >= big) & (z[:, 1] >= big) & (sep >= 0.5 * width)
-    mirrored = (np.abs(0.5 * (p[:, 0] + p[:, 1]) - pair_x) <= tol_x) & (
-        sep >= np.maximum(width, 4.0 * tol_x)
-    )
-    joint = (np.min(z, axis=1) >= floor) & (np.sum(z * z, axis=1) >= big * big + floor * floor)
-    return both | (mirrored & joint)
+    z_min = np.min(z, axis=1)
+    symmetric = np.abs(0.5 * (p[:, 0] + p[:, 1]) - pair_x) <= tol_x
+    both = (z_min >= model.min_significance) & (sep >= 0.5 * width)
+    far = sep >= np.maximum(width, 4.0 * tol_x)
+    partner = detected_two & far & (z_min >= model.partner_significance)
+    return symmetric & (both | partner)
+
+
+def _best_alias(
+    layout: _Layout,
+    res: dict[str, np.ndarray],
+    spacing_x: float,
+    refit: Callable[[np.ndarray, np.ndarray], dict[str, np.ndarray]],
+    split_chi2: float,
+) -> tuple[dict[str, np.ndarray], np.ndarray]:
+    """Each row's best solution among its own and those shifted by one hyperfine spacing.
+
+    With resolved hyperfine lines the likelihood has a local minimum wherever all but one
+    component of a dip line up with the data, one spacing either side of the true centre
+    (a fit locks onto a satellite, common practice). Every dip of every row is refitted
+    from ±``spacing_x`` (scaled) off its centre, and the row keeps the solution with the
+    lowest objective. ``refit(rows, p0)`` fits rows ``rows`` of the batch from ``p0``.
+
+    Returns the best solutions and, per row, whether a solution with a centre at least
+    half a spacing away comes within ``split_chi2`` of the best (the data cannot tell
+    which component is which: the centre is uncertain by a whole spacing, far beyond
+    its local 1σ).
+    """
+    nd = layout.n_dips
+    n = res["p"].shape[0]
+    if n == 0:
+        return res, np.zeros(0, dtype=bool)
+    starts = []
+    for i in range(nd):
+        for shift in (-spacing_x, spacing_x):
+            p0 = res["p"].copy()
+            p0[:, i] += shift
+            starts.append(p0)
+    rows = np.tile(np.arange(n), 2 * nd)
+    alt = refit(rows, np.concatenate(starts))
+    solutions = [res] + [{k: v[a * n : (a + 1) * n] for k, v in alt.items()} for a in range(2 * nd)]
+    objective = np.stack([sol["objective"] for sol in solutions])  # (1 + 2 nd, n)
+    objective = np.where(np.isfinite(objective), objective, np.inf)
+    pick = np.argmin(objective, axis=0)
+    cols = np.arange(n)
+    best = {k: np.stack([sol[k] for sol in solutions])[pick, cols] for k in res}
+    best["n_iter"] = res["n_iter"] + alt["n_iter"].reshape(2 * nd, n).sum(axis=0)
+    centres = np.stack([np.sort(sol["p"][:, :nd], axis=1) for sol in solutions])
+    moved = np.any(np.abs(centres - np.sort(best["p"][:, :nd], axis=1)) > 0.5 * spacing_x, axis=2)
+    rival = moved & (objective < objective[pick, cols] + split_chi2)
+    return best, np.any(rival, axis=0)
+
+
+def _close(res: dict[str, np.ndarray], layout: _Layout) -> np.ndarray:
+    """Two-dip rows whose dips lie within two FWHM of each other, shape (n,)."""
+    if layout.n_dips == 1:
+        return np.zeros(res["p"].shape[0], dtype=bool)
+    p = res["p"]
+    width = np.max(p[:, 4 : 4 + layout.n_widths], axis=1)
+    return np.abs(p[:, 1] - p[:, 0]) < 2.0 * width
 
 
 class _Out:
     """Mutable assembly area for a LineFit (n pixels)."""
 
-    def __init__(self, n: int) -> None:
+    def __init__(self, n: int, sigma_kappa: float) -> None:
+        self.sigma_kappa = sigma_kappa
         nan2 = np.full((n, 2), np.nan)
         self.center, self.center_s = nan2.copy(), nan2.copy()
         self.contrast, self.contrast_s = nan2.copy(), nan2.copy()
@@ -443,9 +542,12 @@ class _Out:
             return np.take_along_axis(a, order, axis=1)
 
         self.center[rows, :nd] = ref + half * take(p[:, :nd])
-        self.center_s[rows, :nd] = half * take(s[:, :nd])
         self.contrast[rows, :nd] = take(p[:, nd : 2 * nd])
         self.contrast_s[rows, :nd] = take(s[:, nd : 2 * nd])
+        z = np.abs(self.contrast[rows, :nd]) / self.contrast_s[rows, :nd]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            widen = np.sqrt(1.0 + self.sigma_kappa / (z * z))
+        self.center_s[rows, :nd] = half * take(s[:, :nd]) * np.where(np.isfinite(widen), widen, 1.0)
         if nw == 1:
             self.fwhm[rows, :nd] = half * p[:, 2 * nd : 2 * nd + 1]
             self.fwhm_s[rows, :nd] = half * s[:, 2 * nd : 2 * nd + 1]
@@ -475,6 +577,12 @@ class _Out:
         )
 
 
+def _mark_ambiguous(status: np.ndarray, rows: np.ndarray, ambiguous: np.ndarray) -> None:
+    """OK rows among ``rows`` whose solution has a rival become AMBIGUOUS."""
+    target = rows[ambiguous]
+    status[target[status[target] == FitStatus.OK]] = FitStatus.AMBIGUOUS
+
+
 def _quality(res: dict[str, np.ndarray], good: FitStatus) -> np.ndarray:
     """NOT_CONVERGED, else AT_BOUND, else ``good``; shape (n,)."""
     status = np.full(res["code"].shape, good, dtype=np.uint8)
@@ -483,7 +591,13 @@ def _quality(res: dict[str, np.ndarray], good: FitStatus) -> np.ndarray:
     return status
 
 
-def fit_line(freq_hz: np.ndarray, counts: np.ndarray, model: FitModel | None = None) -> LineFit:
+def fit_line(
+    freq_hz: np.ndarray,
+    counts: np.ndarray,
+    model: FitModel | None = None,
+    *,
+    line_fwhm_hz: float | None = None,
+) -> LineFit:
     """Fit every ODMR spectrum of one scan line.
 
     Parameters
@@ -494,6 +608,9 @@ def fit_line(freq_hz: np.ndarray, counts: np.ndarray, model: FitModel | None = N
         Photon counts per sample (any real or integer dtype).
     model : FitModel, optional
         What to fit; default ``FitModel()`` (two dips, shared width, Poisson weights).
+    line_fwhm_hz : float, optional
+        The line's FWHM when known (the previous line's, a profile's), Hz: the width of
+        the matched filter that finds the dips. Else estimated from the line itself.
 
     Returns
     -------
@@ -513,23 +630,26 @@ def fit_line(freq_hz: np.ndarray, counts: np.ndarray, model: FitModel | None = N
     Notes
     -----
     Spectra whose mean is below ``model.min_counts`` (or that hold non-finite values)
-    are LOW_COUNTS. The others get starting points (:func:`strayline.fit._guess.guess_dips`);
-    without any significant dip they are NO_RESONANCE. The rest are fitted together by
-    :func:`strayline.fit._kernel.lm_batch`. With the two-dip model, a fit whose dips are
-    closer than half the FWHM, or that is not a significant pair (both dips at
-    ``min_significance``, or a pair about the pair centre whose weaker dip reaches
-    ``partner_significance`` and whose joint significance reaches that of a significant
-    dip plus such a partner), is refitted with one dip; that dip is MERGED when it lies
-    within ``merge_radius_hz`` of the pair centre, ONE_RESONANCE otherwise.
+    are LOW_COUNTS. The others are searched for dips by a matched filter at the line's
+    width (:func:`strayline.fit._guess.guess_dips`), with the threshold set by the
+    look-elsewhere effect for ``false_dip_rate``; without a dip they are NO_RESONANCE.
+    The rest are fitted together by :func:`strayline.fit._kernel.lm_batch`. With the
+    two-dip model, a fit that is not a significant Zeeman pair (:func:`_pair_kept`) is
+    refitted with one dip, and so is a pair closer than two FWHM, which stays a pair only
+    when two dips beat one broadened dip by ``split_chi2`` in likelihood-ratio χ²; a single
+    dip is MERGED when it lies within ``merge_radius_hz`` of the pair centre,
+    ONE_RESONANCE otherwise. With resolved hyperfine lines, every kept fit is also tried
+    one hyperfine spacing either side (:func:`_best_alias`): the best solution is kept,
+    and a rival within ``split_chi2`` makes the pixel AMBIGUOUS.
 
     With ``line_width_spread`` set, the fit runs twice: a first pass to 0.3σ with the
-    expected-information σ, then, from its solutions, a second pass to ``xtol_sigma``
-    with the line's median FWHM as a Gaussian prior (:func:`_line_width_prior`) and σ from
-    the observed information. On simulated demo spectra (600 counts per point, dips
-    ~6σ, FWHM 10 MHz, 64-pixel lines) the pair rule, the observed information and the
-    prior took the share of pixels whose B∥ lies within 3σ of the truth from 98.3 % to
-    99.4-99.6 %; alone, the free-width fits leave 2 % of FWHMs below 6 MHz with centre
-    σ too small for their real scatter.
+    expected-information σ, then, from its solutions, a second pass to ``xtol_sigma`` with
+    the line's FWHM (as the matched filter measured it) as a Gaussian prior
+    (:func:`_line_width_prior`) and σ from the observed information. On simulated demo
+    spectra (600 counts per point, dips ~6σ, FWHM 10 MHz, 64-pixel lines) the pair rule, the
+    observed information and the prior took the share of pixels whose B∥ lies within 3σ of
+    the truth from 98.3 % to 99.4-99.6 %; alone, the free-width fits leave 2 % of FWHMs
+    below 6 MHz with centre σ too small for their real scatter.
     """
     model = FitModel() if model is None else model
     freq = np.asarray(freq_hz, dtype=np.float64)
@@ -554,7 +674,7 @@ def fit_line(freq_hz: np.ndarray, counts: np.ndarray, model: FitModel | None = N
     ref = float(np.mean(freq))
     half = 0.5 * float(freq[-1] - freq[0])
     x = (freq - ref) / half
-    out = _Out(n_pix)
+    out = _Out(n_pix, model.sigma_kappa)
 
     finite = np.all(np.isfinite(y), axis=1)
     mean = np.where(finite, np.mean(np.where(finite[:, None], y, 0.0), axis=1), np.nan)
@@ -580,23 +700,29 @@ def fit_line(freq_hz: np.ndarray, counts: np.ndarray, model: FitModel | None = N
     pair_center = ref if model.pair_center_hz is None else float(model.pair_center_hz)
     pair_x = (pair_center - ref) / half
     tol_x = model.pair_tolerance_hz / half
+    fwhm_lo = max(model.fwhm_bounds_hz[0], float(np.median(np.diff(freq))))
+    c_lo, c_hi = _bounds(layout, model, x, half_hz=half, ref_hz=ref, fwhm_lo_hz=fwhm_lo)
     guess = guess_dips(
         x,
         y[cand],
         hf_off=hf_off,
         hf_w=model._hf_w,
-        fwhm_bounds=(model.fwhm_bounds_hz[0] / half, model.fwhm_bounds_hz[1] / half),
+        fwhm_bounds=(fwhm_lo / half, model.fwhm_bounds_hz[1] / half),
         contrast_max=model.contrast_bounds[1],
-        guess_sigmas=model.guess_sigmas,
+        poisson=model.weighting == "poisson",
+        false_dip_rate=model.false_dip_rate,
+        false_partner_rate=model.false_partner_rate,
+        fwhm=None if line_fwhm_hz is None else line_fwhm_hz / half,
+        center_range=(float(c_lo[0]), float(c_hi[0])),
         # the partner's mirror image 2·pc − c₁ moves by twice the midpoint's tolerance
         pair_center=pair_x if layout.n_dips == 2 else np.nan,
         mirror_tol=2.0 * tol_x,
-        partner_sigmas=model.partner_significance,
     )
     fit_rows = np.flatnonzero(guess.n_found > 0)  # indices into cand
     if fit_rows.size == 0:
         return out.freeze()
     split = guess.n_found == 1
+    two_found = guess.n_found[fit_rows] == 2
     two_pass = model.line_width_spread is not None
     res = _run(
         layout,
@@ -606,6 +732,7 @@ def fit_line(freq_hz: np.ndarray, counts: np.ndarray, model: FitModel | None = N
         p0=_start(layout, guess, fit_rows, split),
         half_hz=half,
         ref_hz=ref,
+        fwhm_lo_hz=fwhm_lo,
         final=not two_pass,
     )
     nd = layout.n_dips
@@ -613,13 +740,19 @@ def fit_line(freq_hz: np.ndarray, counts: np.ndarray, model: FitModel | None = N
     def kept_rows(r: dict[str, np.ndarray]) -> np.ndarray:
         if nd == 1:
             return _significance(r, 1)[:, 0] >= model.min_significance
-        return _pair_kept(r, model, layout.n_widths, pair_x, tol_x)
+        return _pair_kept(
+            r, model, n_widths=layout.n_widths, detected_two=two_found, pair_x=pair_x, tol_x=tol_x
+        )
 
     keep = kept_rows(res)
+    ambiguous = np.zeros(keep.shape, dtype=bool)
+    prior = None
     if two_pass:
         # Second pass from the first one's solutions, with the line's width as a prior
-        # (none when too few fits were kept to pool it).
-        prior = _line_width_prior(res, keep, 2 * nd, model.line_width_spread)
+        # (none when too few clearly separate pairs were kept to judge its spread).
+        prior = _line_width_prior(
+            res, keep & ~_close(res, layout), 2 * nd, model.line_width_spread, guess.fwhm
+        )
         first_iter = res["n_iter"]
         res = _run(
             layout,
@@ -629,30 +762,67 @@ def fit_line(freq_hz: np.ndarray, counts: np.ndarray, model: FitModel | None = N
             p0=res["p"],
             half_hz=half,
             ref_hz=ref,
+            fwhm_lo_hz=fwhm_lo,
             width_prior=(0.0, 0.0) if prior is None else prior,
         )
         res["n_iter"] = res["n_iter"] + first_iter
         keep = kept_rows(res)
-    kept = cand[fit_rows[keep]]
-    out.put(kept, layout, {k: v[keep] for k, v in res.items()}, half, ref)
-    out.status[kept] = _quality({k: v[keep] for k, v in res.items()}, FitStatus.OK)
+    if model.hyperfine is not None:
+        spacing = float(np.min(np.diff(np.sort(model._hf_off_hz)))) / half
+
+        def refit(rows: np.ndarray, p0: np.ndarray) -> dict[str, np.ndarray]:
+            return _run(
+                layout,
+                model=model,
+                x=x,
+                y=y[cand[fit_rows[keep][rows]]],
+                p0=p0,
+                half_hz=half,
+                ref_hz=ref,
+                fwhm_lo_hz=fwhm_lo,
+                width_prior=(0.0, 0.0) if prior is None else prior,
+            )
+
+        kept_res, rivalled = _best_alias(
+            layout, {k: v[keep] for k, v in res.items()}, spacing, refit, model.split_chi2
+        )
+        for k in res:
+            res[k][keep] = kept_res[k]
+        ambiguous[keep] = rivalled
+        keep = kept_rows(res)
     if nd == 1:
+        kept = cand[fit_rows[keep]]
+        out.put(kept, layout, {k: v[keep] for k, v in res.items()}, half, ref)
+        out.status[kept] = _quality({k: v[keep] for k, v in res.items()}, FitStatus.OK)
+        _mark_ambiguous(out.status, kept, ambiguous[keep])
         return out.freeze()
 
-    # Two-dip fits that did not give two separate, significant dips: one dip.
-    single_rows = fit_rows[~keep]
-    if single_rows.size == 0:
-        return out.freeze()
+    # Two-dip fits that did not give two separate, significant dips, and close pairs
+    # (which one broadened dip may explain as well): one dip.
+    close = keep & _close(res, layout)
+    single_at = np.flatnonzero(~keep | close)
     single = model._single
     res1 = _run(
         single,
         model=model,
         x=x,
-        y=y[cand[single_rows]],
-        p0=_start(single, guess, single_rows, split),
+        y=y[cand[fit_rows[single_at]]],
+        p0=_start(single, guess, fit_rows[single_at], split),
         half_hz=half,
         ref_hz=ref,
+        fwhm_lo_hz=fwhm_lo,
     )
+    # A close pair stays a pair when two dips beat one by the likelihood ratio.
+    gain = res1["objective"] - res["objective"][single_at]
+    one = ~keep[single_at] | (gain < model.split_chi2)
+    keep[single_at[~one]] = True
+    keep[single_at[one]] = False
+    kept = cand[fit_rows[keep]]
+    out.put(kept, layout, {k: v[keep] for k, v in res.items()}, half, ref)
+    out.status[kept] = _quality({k: v[keep] for k, v in res.items()}, FitStatus.OK)
+    _mark_ambiguous(out.status, kept, ambiguous[keep])
+    res1 = {k: v[one] for k, v in res1.items()}
+    single_rows = fit_rows[single_at[one]]
     sig1 = _significance(res1, 1)[:, 0] >= model.min_significance
     rows1 = cand[single_rows[sig1]]
     res1 = {k: v[sig1] for k, v in res1.items()}

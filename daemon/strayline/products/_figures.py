@@ -37,6 +37,7 @@ _STATUS_COLOURS = {
     int(FitStatus.NOT_CONVERGED): "#ef6c00",
     int(FitStatus.LOW_COUNTS): "#37474f",
     int(FitStatus.ONE_RESONANCE): "#0277bd",
+    int(FitStatus.AMBIGUOUS): "#8d6e63",
     STATUS_FILL: "#e0e0e0",
 }
 _STATUS_LABELS = {int(s): s.name.lower().replace("_", " ") for s in FitStatus} | {
