@@ -10,7 +10,8 @@ spin Hamiltonian (:func:`strayline.physics.transition_frequencies_hz`), Lorentzi
 the preset's width (with its hyperfine pattern) and of its depth times 0.7–1.3 each,
 Poisson counts. The spectra are
 fitted as the daemon fits them (``FitModel()`` of the preset's hyperfine, lines of 256
-pixels), the field taken with :func:`strayline.field.field_from_fit`.
+pixels, the pair centre at D), the field
+taken with :func:`strayline.field.field_from_fit`.
 
 Printed per preset:
 
@@ -134,7 +135,7 @@ def run(preset_name: str, n: int, seed: int) -> None:
     model = FitModel(hyperfine=preset.hyperfine)
     status, centre, centre_sigma, field, field_sigma = [], [], [], [], []
     for start in range(0, n, LINE):
-        fit = fit_line(freq, counts[start : start + LINE], model)
+        fit = fit_line(freq, counts[start : start + LINE], model, pair_center_hz=D_ROOM_HZ)
         line_field = field_from_fit(fit, zfs_hz=D_ROOM_HZ)
         status.append(fit.status)
         centre.append(fit.center_hz)

@@ -198,12 +198,12 @@ def test_sigma_is_the_inverse_observed_information():
     log-likelihood at the solution (the observed information; Efron & Hinkley, Biometrika
     65, 457 (1978), Sec. 1), here computed by central differences with numpy, for a model
     with slope, separate widths and the ¹⁴N pattern, without the low-signal widening
-    (``sigma_kappa=0``; within 1 %; observed when written:
+    (``sigma_kappa=0``, ``profile_below=0``; within 1 %; observed when written:
     0.12 %, while the expected information's σ differ from it by up to 24 % on this draw)."""
     freq = np.linspace(2.80e9, 2.94e9, 281)
     model = FitModel(
         fit_slope=True, shared_width=False, hyperfine="14N", line_width_spread=None,
-        xtol_sigma=1e-6, fwhm_bounds_hz=(0.3e6, 20e6), sigma_kappa=0.0,
+        xtol_sigma=1e-6, fwhm_bounds_hz=(0.3e6, 20e6), sigma_kappa=0.0, profile_below=0.0,
     )  # fmt: skip
     mu = lorentzian_dips(
         freq, [2.84e9, 2.90e9], [0.15, 0.12], [3e6, 4e6], 800.0, 1e-7, hyperfine="14N"
@@ -246,9 +246,9 @@ def test_centre_precision_reaches_the_cramer_rao_bound():
     """The centre scatter over 4000 Poisson draws is within 1.1x of the Cramér–Rao bound
     from the Fisher information F = Σ_f (∂μ/∂p)(∂μ/∂p)ᵀ / μ for Poisson counts (Cramér,
     Mathematical Methods of Statistics (1946), Sec. 32.3 [from memory]); observed 1.013,
-    1.037. The reported σ is compared without the low-signal widening (``sigma_kappa=0``),
-    which is the bound's own estimate."""
-    fit = _repeated(4000, 6, FitModel(sigma_kappa=0.0))
+    1.037. The reported σ is compared without the low-signal corrections
+    (``sigma_kappa=0``, ``profile_below=0``), which is the bound's own estimate."""
+    fit = _repeated(4000, 6, FitModel(sigma_kappa=0.0, profile_below=0.0))
     p = np.array([2.83e9, 2.91e9, 0.15, 0.12, 10e6, 1000.0])
 
     def mu(q: np.ndarray) -> np.ndarray:

@@ -56,7 +56,7 @@ def test_huge_baseline_offset():
     the information's σ shrinking as 1/√counts (Poisson shot noise, common practice; the
     low-signal widening, which does not scale so, is left out)."""
     y = _poisson(_pair(baseline=1e7), 64, 4)
-    model = FitModel(sigma_kappa=0.0)
+    model = FitModel(sigma_kappa=0.0, profile_below=0.0)
     fit = fit_line(FREQ_HZ, y, model)
     assert np.all(fit.status == FitStatus.OK)
     assert np.all(np.abs(fit.center_hz - PAIR_HZ) < 3 * fit.center_sigma_hz)

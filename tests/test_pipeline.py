@@ -782,11 +782,11 @@ def test_an_unexpected_error_on_a_line_sets_the_file_aside_with_a_note_and_an_al
 
     calls: list[int] = []
 
-    def fails_on_line_2(freq_hz: Any, counts: Any, model: Any) -> Any:
+    def fails_on_line_2(freq_hz: Any, counts: Any, model: Any, **options: Any) -> Any:
         calls.append(1)
         if len(calls) == 3:
             raise IndexError("index 3 is out of bounds")
-        return real_fit(freq_hz, counts, model)
+        return real_fit(freq_hz, counts, model, **options)
 
     monkeypatch.setattr(pipeline_module, "fit_line", fails_on_line_2)
     summary = process_folder(config, folder)

@@ -193,7 +193,7 @@ class FitSection(Section):
     shared_width: bool = True
     hyperfine: Literal["14N", "15N"] | None = None
     fit_slope: bool = False
-    fwhm_min_mhz: Annotated[float, Field(gt=0)] = 1.0
+    fwhm_min_mhz: Annotated[float, Field(gt=0)] = 0.1
     fwhm_max_mhz: Annotated[float, Field(gt=0)] = 60.0
     center_min_mhz: Annotated[float, Field(gt=0)] | None = None
     center_max_mhz: Annotated[float, Field(gt=0)] | None = None

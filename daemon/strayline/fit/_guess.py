@@ -8,8 +8,7 @@
    crossings give a rough FWHM (corrected for the smoothing). The median rough FWHM of
    the clearly dipped spectra (deeper than ``_CONFIDENT`` noise units) places a matched
    filter, and the line's width is the template width that best matches the clearest
-   dips. All this on a subsample of the line; a caller that knows the width (the
-   previous line's pooled FWHM, a profile's) skips it.
+   dips. All this on a subsample of the line.
 2. *Dips.* :mod:`strayline.fit._detect` scans a matched filter of that width over the
    sweep, with detection thresholds set by the look-elsewhere effect for the stated
    false-dip rates.
@@ -224,15 +223,15 @@ def line_width(
     hf_w: np.ndarray,
     fwhm_bounds: tuple[float, float],
     center_range: tuple[float, float],
+    *,
     pair_center: float = np.nan,
     mirror_tol: float = -1.0,
 ) -> float:
     """The line's FWHM (scaled), from a subsample of its spectra.
 
-    A rough width (the median half-depth width of the clearly dipped spectra of the
-    subsample, :func:`_rough_widths`) places the matched filter; the width is then the
-    median, over the spectra with the clearest dips, of the template width that
-    correlates best with each one's dip (:func:`strayline.fit._detect.matched_width`).
+    The median half-depth width of the clearly dipped spectra of the subsample
+    (:func:`_rough_widths`) places the matched filter; the width is then the one that
+    best explains the clearest dips (:func:`strayline.fit._detect.matched_width`).
     """
     sub = y[:: max(1, y.shape[0] // _WIDTH_SAMPLE)]
     n = sub.shape[1]
@@ -263,7 +262,6 @@ def guess_dips(
     poisson: bool,
     false_dip_rate: float,
     false_partner_rate: float,
-    fwhm: float | None = None,
     center_range: tuple[float, float] = (-np.inf, np.inf),
     pair_center: float = np.nan,
     mirror_tol: float = -1.0,
@@ -288,8 +286,6 @@ def guess_dips(
         Chance that a spectrum of pure noise shows a dip anywhere in the sweep.
     false_partner_rate : float
         Chance that noise fakes a partner inside the mirror window of a real dip.
-    fwhm : float, optional
-        The line's width when known (scaled); else estimated from the spectra.
     center_range : (float, float)
         Where dip centres may lie (scaled).
     pair_center : float
@@ -302,11 +298,16 @@ def guess_dips(
     off = np.ascontiguousarray(hf_off, dtype=np.float64)
     wts = np.ascontiguousarray(hf_w, dtype=np.float64)
     lo_w, hi_w = float(fwhm_bounds[0]), float(fwhm_bounds[1])
-    if fwhm is None:
-        width = line_width(xc, yc, off, wts, (lo_w, hi_w), center_range, pair_center, mirror_tol)
-    else:
-        width = float(fwhm)
-    width = min(max(width, lo_w), hi_w)
+    width = line_width(
+        xc,
+        yc,
+        off,
+        wts,
+        (lo_w, hi_w),
+        center_range,
+        pair_center=pair_center,
+        mirror_tol=mirror_tol,
+    )
     templates = dip_templates(xc, ladder_width(width), off, wts, *center_range)
     u_single = rice_threshold(templates.arc, false_dip_rate)
     window_arc = min(templates.arc, templates.arc_per_x * 2.0 * max(mirror_tol, 0.0))

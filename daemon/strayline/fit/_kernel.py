@@ -595,8 +595,9 @@ def lm_batch(
         Counts, float64, C-contiguous.
     p : ndarray, shape (n_spec, n_par)
         Initial parameters (scaled units); overwritten with the solution.
-    lo, hi : ndarray, shape (n_par,)
-        Box bounds (scaled units; ±inf allowed).
+    lo, hi : ndarray, shape (n_spec, n_par)
+        Box bounds of each row (scaled units; ±inf allowed; equal bounds hold a
+        parameter fixed, as a profile likelihood needs).
     n_dips, n_widths : int
         Number of dips and of width parameters (1 when shared).
     hf_off, hf_w : ndarray, shape (n_hf,)
@@ -708,8 +709,8 @@ def _fit_into(
         x,
         y[sidx],
         p[sidx],
-        lo,
-        hi,
+        lo[sidx],
+        hi[sidx],
         n_dips,
         n_widths,
         hf_off,

@@ -20,6 +20,7 @@ grid and runs.
 
 from __future__ import annotations
 
+import math
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from enum import IntEnum
@@ -73,6 +74,9 @@ class LineFit:
         :class:`FitStatus` codes.
     n_iter : ndarray of int32, shape (n_pixels,)
         Iterations used (both passes when the line's width is pooled).
+    line_fwhm_hz : float
+        The line's FWHM as the matched filter measured it, Hz (NaN when no spectrum was
+        searched for dips).
     """
 
     center_hz: np.ndarray
@@ -87,6 +91,7 @@ class LineFit:
     chi2_red: np.ndarray
     status: np.ndarray
     n_iter: np.ndarray
+    line_fwhm_hz: float = math.nan
 
     @property
     def n_pixels(self) -> int:
@@ -182,14 +187,19 @@ class FitModel:
         point of χ² with two degrees of freedom (the two extra parameters of a second
         dip); as posterior odds between two solutions with equal priors it is 1 : 100.
     sigma_kappa : float
-        Low-signal correction of the centres' 1σ: each is widened by √(1 + κ/z²), z the
-        significance (contrast / 1σ) of its dip. The inverse information is the leading
-        term of an estimator's variance, whose next term falls off as 1/z² (the
-        likelihood is not yet quadratic over the centre's spread); κ is calibrated by
-        simulation on a family of random sweeps, widths, counts and contrasts (tuning
-        seeds; ``benchmarks/sigma_calibration.py``): 13.5 brings the rms of (fitted −
-        true)/σ of OK centres to 1.00 on held-out seeds (1.15 without it) and the share
-        within 3σ from 98.9 % to 99.4 %. 0 reports the inverse information alone.
+        Correction of the centres' 1σ for dips at or above ``profile_below``: each is
+        widened by √(1 + κ/z²), z the significance (contrast / 1σ) of its dip. The inverse
+        information is the leading term of an estimator's variance, whose next term falls
+        off as 1/z² (the likelihood is not quite quadratic over the centre's spread); κ is
+        calibrated by simulation on a family of random sweeps, widths, counts and
+        contrasts (tuning seeds; ``benchmarks/sigma_calibration.py``). 0 reports the
+        inverse information alone.
+    profile_below : float
+        Centres of dips weaker than this significance take their 1σ from the profile
+        likelihood (:func:`_profile_sigma`), which follows the likelihood where it is far
+        from quadratic. With 9.5 and 6, the rms of (fitted − true)/σ of OK centres on
+        held-out seeds of that family is 1.01 (1.15 with neither) and 99.5 % lie within
+        3σ (98.9 %). 0 turns the profile off.
     pair_center_hz : float or None
         Expected midpoint (f₋ + f₊)/2 of the two resonances (≈ D), Hz; None = the middle of
         the line's frequency window. A single dip within ``merge_radius_hz`` of it is two
@@ -214,7 +224,8 @@ class FitModel:
     false_dip_rate: float = 0.005
     false_partner_rate: float = 0.05
     split_chi2: float = 9.2
-    sigma_kappa: float = 13.5
+    sigma_kappa: float = 9.5
+    profile_below: float = 6.0
     pair_center_hz: float | None = None
     merge_radius_hz: float = 20e6
     pair_tolerance_hz: float = 10e6
@@ -261,6 +272,8 @@ class FitModel:
             rate = getattr(self, name)
             if not 0.0 < rate < 0.5:
                 problems.append(f"{name} must lie in (0, 0.5); found {rate}")
+        if not self.profile_below >= 0.0:
+            problems.append(f"profile_below must be >= 0; found {self.profile_below}")
         if not self.sigma_kappa >= 0.0:
             problems.append(f"sigma_kappa must be >= 0; found {self.sigma_kappa}")
         if not self.pair_tolerance_hz >= 0.0:
@@ -341,6 +354,7 @@ def _run(
     fwhm_lo_hz: float,
     width_prior: tuple[float, float] = (0.0, 0.0),
     final: bool = True,
+    pin: tuple[np.ndarray, np.ndarray] | None = None,
 ) -> dict[str, np.ndarray]:
     """Run the kernel on the rows of ``y``; returns the raw (scaled) results.
 
@@ -349,7 +363,12 @@ def _run(
     observed information; otherwise (a first pass that another one refines) stop at
     ``_FIRST_XTOL`` and take σ from the expected information, which costs no extra pass.
     """
-    lo, hi = _bounds(layout, model, x, half_hz=half_hz, ref_hz=ref_hz, fwhm_lo_hz=fwhm_lo_hz)
+    lo1, hi1 = _bounds(layout, model, x, half_hz=half_hz, ref_hz=ref_hz, fwhm_lo_hz=fwhm_lo_hz)
+    lo = np.ascontiguousarray(np.broadcast_to(lo1, p0.shape))
+    hi = np.ascontiguousarray(np.broadcast_to(hi1, p0.shape))
+    if pin is not None:  # hold parameter pin[0][r] of row r at pin[1][r]
+        rows = np.arange(p0.shape[0])
+        lo[rows, pin[0]] = hi[rows, pin[0]] = pin[1]
     p = np.ascontiguousarray(np.clip(p0, lo, hi))
     sigma, chi2, objective, n_iter, code = lm_batch(
         x,
@@ -501,6 +520,79 @@ def _best_alias(
     return best, np.any(rival, axis=0)
 
 
+def _penalised(
+    res: dict[str, np.ndarray], layout: _Layout, prior: tuple[float, float] | None
+) -> np.ndarray:
+    """The objective the fit minimised: the likelihood-ratio χ² plus the width prior."""
+    if prior is None:
+        return res["objective"]
+    i0 = 2 * layout.n_dips
+    widths = res["p"][:, i0 : i0 + layout.n_widths]
+    return res["objective"] + prior[1] * np.sum((widths - prior[0]) ** 2, axis=1)
+
+
+def _profile_sigma(
+    layout: _Layout,
+    res: dict[str, np.ndarray],
+    z_max: float,
+    refit: Callable[[np.ndarray, np.ndarray, tuple[np.ndarray, np.ndarray]], dict[str, np.ndarray]],
+    prior: tuple[float, float] | None,
+) -> np.ndarray:
+    """Centres' 1σ from the profile likelihood where their dip is weaker than ``z_max``.
+
+    For such a centre the profile of the objective (every other parameter refitted with
+    the centre held) is followed out to where it has risen by 9 on each side, the 3σ
+    points of a likelihood-ratio interval (Venzon & Moolgavkar, Appl. Stat. 37, 87
+    (1988); from memory), and 1σ is a sixth of that interval. Where the likelihood is
+    flatter than its curvature says, as at low signal, this is wider than the inverse
+    information. Two held fits per side: one at 3σ of the information, one where a
+    quadratic through that point reaches 9; the 3σ point is interpolated linearly in
+    √Δχ² (exact for a quadratic profile). ``refit(rows, p0, pin)`` fits rows of the
+    batch from ``p0`` with ``pin`` = (parameter index, value) per row held.
+
+    Returns the centres' 1σ, shape (n, n_dips): the profile's where profiled, the
+    information's elsewhere.
+    """
+    nd = layout.n_dips
+    p, sigma = res["p"], res["sigma"]
+    out = sigma[:, :nd].copy()
+    z = np.abs(p[:, nd : 2 * nd]) / sigma[:, nd : 2 * nd]
+    rows, dips = np.nonzero((z < z_max) & np.isfinite(sigma[:, :nd]))
+    if rows.size == 0:
+        return out
+    base = _penalised(res, layout, prior)[rows]
+    step = 3.0 * sigma[rows, dips]
+    side_rows = np.concatenate([rows, rows])
+    side_dips = np.concatenate([dips, dips])
+    sign = np.concatenate([-np.ones(rows.size), np.ones(rows.size)])
+    centre = p[side_rows, side_dips]
+    rise = []
+    d_first = np.concatenate([step, step])
+    distances = [d_first]
+    for k in range(2):
+        d = distances[k]
+        held = centre + sign * d
+        p0 = p[side_rows].copy()
+        p0[np.arange(side_rows.size), side_dips] = held
+        fitted = refit(side_rows, p0, (side_dips, held))
+        gain = _penalised(fitted, layout, prior) - np.concatenate([base, base])
+        rise.append(np.sqrt(np.clip(gain, 0.0, None)))
+        if k == 0:
+            # where a quadratic through this point reaches 9
+            distances.append(np.clip(d * 3.0 / np.maximum(rise[0], 0.5), 0.5 * d, 6.0 * d))
+    d1, d2 = distances
+    r1, r2 = rise
+    slope = (r2 - r1) / (d2 - d1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        linear = d2 + (3.0 - r2) / slope
+        quadratic = d2 * 3.0 / np.maximum(r2, 1e-9)
+    reach = np.where((slope > 0.0) & np.isfinite(linear), linear, quadratic)
+    reach = np.clip(reach, 0.25 * d1, 6.0 * d1)
+    half = 0.5 * (reach[: rows.size] + reach[rows.size :])
+    out[rows, dips] = np.maximum(half / 3.0, sigma[rows, dips])
+    return out
+
+
 def _close(res: dict[str, np.ndarray], layout: _Layout) -> np.ndarray:
     """Two-dip rows whose dips lie within two FWHM of each other, shape (n,)."""
     if layout.n_dips == 1:
@@ -524,6 +616,7 @@ class _Out:
         self.chi2 = np.full(n, np.nan)
         self.status = np.full(n, FitStatus.NO_RESONANCE, dtype=np.uint8)
         self.n_iter = np.zeros(n, dtype=np.int32)
+        self.line_fwhm_hz = math.nan
 
     def put(
         self,
@@ -547,7 +640,10 @@ class _Out:
         z = np.abs(self.contrast[rows, :nd]) / self.contrast_s[rows, :nd]
         with np.errstate(divide="ignore", invalid="ignore"):
             widen = np.sqrt(1.0 + self.sigma_kappa / (z * z))
-        self.center_s[rows, :nd] = half * take(s[:, :nd]) * np.where(np.isfinite(widen), widen, 1.0)
+        widen = np.where(np.isfinite(widen), widen, 1.0)
+        if "profiled" in res:
+            widen = np.where(take(res["profiled"]), 1.0, widen)
+        self.center_s[rows, :nd] = half * take(s[:, :nd]) * widen
         if nw == 1:
             self.fwhm[rows, :nd] = half * p[:, 2 * nd : 2 * nd + 1]
             self.fwhm_s[rows, :nd] = half * s[:, 2 * nd : 2 * nd + 1]
@@ -574,6 +670,7 @@ class _Out:
             chi2_red=self.chi2,
             status=self.status,
             n_iter=self.n_iter,
+            line_fwhm_hz=self.line_fwhm_hz,
         )
 
 
@@ -596,7 +693,7 @@ def fit_line(
     counts: np.ndarray,
     model: FitModel | None = None,
     *,
-    line_fwhm_hz: float | None = None,
+    pair_center_hz: float | None = None,
 ) -> LineFit:
     """Fit every ODMR spectrum of one scan line.
 
@@ -608,9 +705,9 @@ def fit_line(
         Photon counts per sample (any real or integer dtype).
     model : FitModel, optional
         What to fit; default ``FitModel()`` (two dips, shared width, Poisson weights).
-    line_fwhm_hz : float, optional
-        The line's FWHM when known (the previous line's, a profile's), Hz: the width of
-        the matched filter that finds the dips. Else estimated from the line itself.
+    pair_center_hz : float, optional
+        Expected midpoint of the two resonances for this line, Hz (D at the line's
+        temperature); overrides ``model.pair_center_hz``.
 
     Returns
     -------
@@ -697,7 +794,9 @@ def fit_line(
     if cand.size == 0:
         return out.freeze()
     hf_off = model._hf_off_hz / half
-    pair_center = ref if model.pair_center_hz is None else float(model.pair_center_hz)
+    if pair_center_hz is None:
+        pair_center_hz = model.pair_center_hz
+    pair_center = ref if pair_center_hz is None else float(pair_center_hz)
     pair_x = (pair_center - ref) / half
     tol_x = model.pair_tolerance_hz / half
     fwhm_lo = max(model.fwhm_bounds_hz[0], float(np.median(np.diff(freq))))
@@ -712,12 +811,12 @@ def fit_line(
         poisson=model.weighting == "poisson",
         false_dip_rate=model.false_dip_rate,
         false_partner_rate=model.false_partner_rate,
-        fwhm=None if line_fwhm_hz is None else line_fwhm_hz / half,
         center_range=(float(c_lo[0]), float(c_hi[0])),
         # the partner's mirror image 2·pc − c₁ moves by twice the midpoint's tolerance
         pair_center=pair_x if layout.n_dips == 2 else np.nan,
         mirror_tol=2.0 * tol_x,
     )
+    out.line_fwhm_hz = guess.fwhm * half
     fit_rows = np.flatnonzero(guess.n_found > 0)  # indices into cand
     if fit_rows.size == 0:
         return out.freeze()
@@ -767,6 +866,37 @@ def fit_line(
         )
         res["n_iter"] = res["n_iter"] + first_iter
         keep = kept_rows(res)
+
+    def profiled(rows: np.ndarray) -> dict[str, np.ndarray]:
+        """The kept rows' results, weak centres' 1σ from the profile likelihood."""
+        kept_res = {k: v[rows] for k, v in res.items()}
+        if model.profile_below <= 0.0 or not np.any(rows):
+            return kept_res
+        at = np.flatnonzero(rows)
+
+        def refit_held(
+            sub: np.ndarray, p0: np.ndarray, pin: tuple[np.ndarray, np.ndarray]
+        ) -> dict[str, np.ndarray]:
+            return _run(
+                layout,
+                model=model,
+                x=x,
+                y=y[cand[fit_rows[at[sub]]]],
+                p0=p0,
+                half_hz=half,
+                ref_hz=ref,
+                fwhm_lo_hz=fwhm_lo,
+                width_prior=(0.0, 0.0) if prior is None else prior,
+                pin=pin,
+            )
+
+        centre_sigma = _profile_sigma(layout, kept_res, model.profile_below, refit_held, prior)
+        z = np.abs(kept_res["p"][:, nd : 2 * nd]) / kept_res["sigma"][:, nd : 2 * nd]
+        kept_res["profiled"] = z < model.profile_below
+        kept_res["sigma"] = kept_res["sigma"].copy()
+        kept_res["sigma"][:, :nd] = centre_sigma
+        return kept_res
+
     if model.hyperfine is not None:
         spacing = float(np.min(np.diff(np.sort(model._hf_off_hz)))) / half
 
@@ -792,7 +922,7 @@ def fit_line(
         keep = kept_rows(res)
     if nd == 1:
         kept = cand[fit_rows[keep]]
-        out.put(kept, layout, {k: v[keep] for k, v in res.items()}, half, ref)
+        out.put(kept, layout, profiled(keep), half, ref)
         out.status[kept] = _quality({k: v[keep] for k, v in res.items()}, FitStatus.OK)
         _mark_ambiguous(out.status, kept, ambiguous[keep])
         return out.freeze()
@@ -818,7 +948,7 @@ def fit_line(
     keep[single_at[~one]] = True
     keep[single_at[one]] = False
     kept = cand[fit_rows[keep]]
-    out.put(kept, layout, {k: v[keep] for k, v in res.items()}, half, ref)
+    out.put(kept, layout, profiled(keep), half, ref)
     out.status[kept] = _quality({k: v[keep] for k, v in res.items()}, FitStatus.OK)
     _mark_ambiguous(out.status, kept, ambiguous[keep])
     res1 = {k: v[one] for k, v in res1.items()}

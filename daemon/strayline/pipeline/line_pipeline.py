@@ -205,10 +205,10 @@ class LinePipeline:
             if decision == "duplicate" and not unevaluated:
                 return self._duplicate(path, line, opening_events)
             t0 = time.perf_counter()
-            fit = fit_line(line.freq_hz, line.counts, scan.fit_model)
-            line_field = field_from_fit(
-                fit, zfs_hz=scan.zfs_for(line), sign=scan.sign, branch=scan.branch
-            )
+            zfs_hz = scan.zfs_for(line)
+            # a line's fit depends on its own file and the config alone (refits agree)
+            fit = fit_line(line.freq_hz, line.counts, scan.fit_model, pair_center_hz=zfs_hz)
+            line_field = field_from_fit(fit, zfs_hz=zfs_hz, sign=scan.sign, branch=scan.branch)
             t1 = time.perf_counter()
             receipt = None if unevaluated else scan.store.write_line(line, fit, line_field)
         except FileNotFoundError:
