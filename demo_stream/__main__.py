@@ -82,7 +82,12 @@ def build_parser() -> argparse.ArgumentParser:
         formatter_class=_Formatter,
     )
     g = p.add_argument_group("sample and scan")
-    g.add_argument("--scene", choices=list(SCENES), default="labyrinth", help="invented sample")
+    g.add_argument(
+        "--scene",
+        choices=list(SCENES),
+        default=None,
+        help="invented sample (default: the one the signal preset's sweep suits)",
+    )
     g.add_argument(
         "--scene-param",
         metavar="KEY=VALUE",
@@ -147,7 +152,12 @@ def build_parser() -> argparse.ArgumentParser:
     t.add_argument("--contrast", type=float, default=None, help="depth of each ODMR dip")
     t.add_argument("--linewidth-mhz", type=float, default=None, help="dip FWHM, MHz")
     t.add_argument("--dwell-ms", type=float, default=None, help="dwell per pixel and frequency, ms")
-    t.add_argument("--temperature-k", type=float, default=295.0, help="tip temperature, K")
+    t.add_argument(
+        "--temperature-k",
+        type=float,
+        default=None,
+        help="tip temperature, K (default: the signal preset's, else 295)",
+    )
     t.add_argument("--strain-mhz", type=float, default=0.0, help="transverse splitting E, MHz")
     t.add_argument(
         "--hyperfine", choices=["none", "14N", "15N"], default=None, help="resolved hyperfine"
@@ -178,7 +188,7 @@ def config_from_args(args: argparse.Namespace) -> DemoConfig:
     ValueError
         An option value is out of range; the message names the option's field.
     """
-    scene = make_scene(args.scene, **dict(args.scene_param))
+    scene = make_scene(args.scene or PRESETS[args.signal].scene, **dict(args.scene_param))
     theta = math.radians(args.nv_theta_deg)
     phi = math.radians(args.nv_phi_deg)
     if args.bias_mt is not None:
@@ -187,7 +197,7 @@ def config_from_args(args: argparse.Namespace) -> DemoConfig:
         u = (math.sin(theta) * math.cos(phi), math.sin(theta) * math.sin(phi), math.cos(theta))
         bias = tuple(args.bias_along_nv_mt * 1e-3 * c for c in u)  # type: ignore[assignment]
     else:
-        bias = None
+        bias = (0.0, 0.0, 0.0) if PRESETS[args.signal].bias_along_nv_t == 0.0 else None
     preset = PRESETS[args.signal]
     hyperfine = preset.hyperfine if args.hyperfine is None else args.hyperfine
     tip = TipModel(
@@ -198,7 +208,11 @@ def config_from_args(args: argparse.Namespace) -> DemoConfig:
         contrast=preset.contrast if args.contrast is None else args.contrast,
         fwhm_hz=preset.fwhm_hz if args.linewidth_mhz is None else args.linewidth_mhz * 1e6,
         dwell_s=preset.dwell_s if args.dwell_ms is None else args.dwell_ms * 1e-3,
-        temperature_k=args.temperature_k,
+        temperature_k=(
+            args.temperature_k
+            if args.temperature_k is not None
+            else preset.temperature_k or TipModel.temperature_k
+        ),
         strain_hz=args.strain_mhz * 1e6,
         bias_field_t=bias,
         pl_drift_per_hour=args.drift_per_hour,

@@ -16,7 +16,7 @@ from hypothesis import strategies as st
 from demo_stream.__main__ import build_parser, config_from_args, main
 from demo_stream.faults import FAULT_KINDS, Fault, fault_mask, fault_to_spec, parse_fault
 from demo_stream.presets import PRESETS
-from demo_stream.scenes import calibration_stripe, labyrinth, wire
+from demo_stream.scenes import calibration_stripe, labyrinth, make_scene, wire
 from demo_stream.tip import (
     NV_100_PHI_RAD,
     NV_100_THETA_RAD,
@@ -28,7 +28,7 @@ from demo_stream.truth import load_truth, truth_paths
 from demo_stream.writer import DemoConfig, frequency_grid_hz, run_scan
 from strayline.errors import LineFileError
 from strayline.lines import line_file_name, read_line_file
-from strayline.physics import D_ROOM_HZ, GAMMA_NV_HZ_PER_T
+from strayline.physics import GAMMA_NV_HZ_PER_T
 
 MU0 = scipy.constants.mu_0
 # γ_NV = g μB/h with g = 2.0028 (Loubser & van Wyk, Rep. Prog. Phys. 41, 1201 (1978),
@@ -651,16 +651,24 @@ def test_the_fault_examples_of_the_help_run_with_the_default_scan_size() -> None
 def test_each_signal_preset_writes_the_signal_it_states(name: str, tmp_path: Path) -> None:
     """A scan with each signal preset has its sweep and, off resonance, a mean of
     count_rate × dwell counts per sample (Poisson: within 5 standard errors), and every
-    pixel's two resonances (from the truth) lie inside the sweep."""
+    pixel's two resonances (from the truth, about D at the preset's temperature) lie
+    inside the sweep over the scene the preset suits."""
     preset = PRESETS[name]
     tip = TipModel(**preset.tip_values())  # type: ignore[arg-type]
-    config = DemoConfig(n_lines=2, n_pixels=16, tip=tip, freq_hz=preset.freq_hz(), seed=5)
+    config = DemoConfig(
+        n_lines=2,
+        n_pixels=16,
+        tip=tip,
+        freq_hz=preset.freq_hz(),
+        seed=5,
+        scene=make_scene(preset.scene),
+    )
     run_scan(config, tmp_path / "out", tmp_path / "truth")
     line = read_line_file(sorted((tmp_path / "out" / config.scan_id).glob("*.h5"))[0])
     np.testing.assert_array_equal(line.freq_hz, preset.freq_hz())
     b_nv = load_truth(tmp_path / "truth", config.scan_id).map("field_nv_t", "forward")
     shift = GAMMA_NV_HZ_PER_T * np.abs(b_nv[0])  # line 0, pixels in increasing x as written
-    resonances = np.concatenate([D_ROOM_HZ - shift, D_ROOM_HZ + shift])
+    resonances = np.concatenate([preset.zfs_hz - shift, preset.zfs_hz + shift])
     gap = np.min(np.abs(line.freq_hz[:, None] - resonances[None, :]), axis=0)
     assert np.all(gap < 1e6), gap.max()  # every resonance has a sweep point within 1 MHz
     away = np.abs(line.freq_hz[None, :, None] - resonances.reshape(2, -1).T[:, None, :])

@@ -95,6 +95,7 @@ def records(
     field = LineField(
         field_nv_t=b,
         field_nv_sigma_t=np.full(N, 2e-6),
+        field_nv_bound_t=np.full(N, np.nan),
         field_abs_t=np.abs(b),
         field_abs_sigma_t=np.full(N, 2e-6),
         angle_rad=np.zeros(N),

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import math
 import shutil
@@ -126,6 +127,7 @@ def line_records(
     field = LineField(
         field_nv_t=field_row_t.copy(),
         field_nv_sigma_t=np.full(n, 2e-6),
+        field_nv_bound_t=np.where(status_row == FitStatus.MERGED, 1.5e-4, np.nan),
         field_abs_t=np.abs(field_row_t),
         field_abs_sigma_t=np.full(n, 2e-6),
         angle_rad=np.zeros(n),
@@ -552,6 +554,83 @@ def test_partial_scan_covers_only_its_committed_lines(tmp_path: Path) -> None:
     assert (trace["lines_committed"], trace["line_range"]) == (10, [0, 9])
     group = zarr.open_group(tmp_path / "p" / VECTOR_ZARR, mode="r")["forward"]
     assert group["bz_t"].shape == (10, 12)
+
+
+def _merged_scan(root: Path, scan_id: str = "low") -> tuple[Path, np.ndarray]:
+    """A 12 x 10 scan whose left block of pixels is below resolution (MERGED, no B∥)."""
+    rng = np.random.default_rng(8)
+    status = np.zeros((12, 10), np.uint8)
+    status[2:9, 1:4] = FitStatus.MERGED
+    status[0, 9] = FitStatus.NO_RESONANCE
+    b = np.where(status == FitStatus.OK, rng.normal(1e-3, 1e-5, status.shape), np.nan)
+    store, _ = write_store(root, b, status, scan_id=scan_id)
+    return store, status
+
+
+def test_quicklook_shows_merged_pixels_below_resolution_not_as_failures(tmp_path: Path) -> None:
+    """The field panel draws exactly the MERGED pixels in one neutral colour with a legend
+    entry "below resolution (|B∥| < bound, …)" giving the median bound; the status legend
+    names them below resolution; a scan without them gets no such entry."""
+    from strayline.products._figures import BELOW_RESOLUTION_LABEL, quicklook_figure
+    from strayline.products._read import read_snapshot
+
+    store, status = _merged_scan(tmp_path)
+    trace = read_snapshot(store).traces["forward"]
+    fig = quicklook_figure(trace, "low")
+    field_ax, status_ax = fig.axes[0], fig.axes[3]
+    assert BELOW_RESOLUTION_LABEL == "below resolution (|B∥| < bound)"
+    labels = [t.get_text() for t in field_ax.get_legend().get_texts()]
+    assert labels == ["below resolution (|B∥| < bound, median 150 µT)"]  # bounds of 1.5e-4 T
+    overlay = field_ax.get_images()[-1].get_array()
+    np.testing.assert_array_equal(~np.ma.getmaskarray(overlay), status == FitStatus.MERGED)
+    status_labels = [t.get_text() for t in status_ax.get_legend().get_texts()]
+    share = 100 * np.mean(status == FitStatus.MERGED)
+    assert f"below resolution (merged dips) ({share:.1f} %)" in status_labels
+    assert not any(label.startswith("merged") for label in status_labels)
+    plain = dataclasses.replace(trace, maps={**trace.maps, "status": np.zeros_like(status)})
+    assert quicklook_figure(plain, "low").axes[0].get_legend() is None
+
+
+def test_report_lists_merged_pixels_with_their_bound_apart_from_failures(tmp_path: Path) -> None:
+    """report.json gives the bound's distribution (T); report.md states the share below
+    resolution with the level and median bound, and lists only real failures as not OK."""
+    store, status = _merged_scan(tmp_path)
+    make_products(
+        store,
+        standoff_m=None,
+        nv_theta_rad=THETA,
+        nv_phi_rad=PHI,
+        out_dir=tmp_path / "p",
+        images=False,
+    )
+    trace = json.loads((tmp_path / "p" / REPORT_JSON).read_text(encoding="utf-8"))
+    bound = trace["traces"]["forward"]["field_nv_bound_t"]
+    assert (bound["unit"], bound["count"]) == ("T", np.count_nonzero(status == FitStatus.MERGED))
+    assert bound["median"] == pytest.approx(1.5e-4)
+    md = (tmp_path / "p" / REPORT_MD).read_text(encoding="utf-8")
+    assert (
+        "- below resolution (merged dips) 17.5 %: |B∥| < bound (95 %, one-sided), "
+        "median bound 150 µT" in md
+    )
+    assert "- not OK: no resonance 0.8 %\n" in md
+
+
+def test_products_of_a_store_written_before_the_bound_existed(tmp_path: Path) -> None:
+    """A store without the field_nv_bound_t map (an older version's) still gives products:
+    the bound reads as NaN, so the report has no bound distribution."""
+    store, _ = _merged_scan(tmp_path)
+    shutil.rmtree(store / "forward" / "field_nv_bound_t")
+    shutil.rmtree(store / "backward" / "field_nv_bound_t")
+    make_products(
+        store,
+        standoff_m=None,
+        nv_theta_rad=THETA,
+        nv_phi_rad=PHI,
+        out_dir=tmp_path / "p",
+    )
+    trace = json.loads((tmp_path / "p" / REPORT_JSON).read_text(encoding="utf-8"))
+    assert trace["traces"]["forward"]["field_nv_bound_t"] is None
+    assert (tmp_path / "p" / "quicklook_forward.png").is_file()
 
 
 def test_empty_store_gives_a_report_saying_so(tmp_path: Path) -> None:

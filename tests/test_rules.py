@@ -153,6 +153,7 @@ def scan_lines(scene: Scene) -> list[tuple[ScanLine, LineFit, LineField]]:
         fld = LineField(
             field_nv_t=b_meas,
             field_nv_sigma_t=np.full(n, 5e-6),
+            field_nv_bound_t=np.full(n, np.nan),
             field_abs_t=np.abs(b_meas),
             field_abs_sigma_t=np.full(n, 5e-6),
             angle_rad=np.zeros(n),

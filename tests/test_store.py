@@ -7,6 +7,7 @@ import dataclasses
 import errno
 import json
 import os
+import shutil
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
 from typing import Any
@@ -101,6 +102,7 @@ def make_records(
     field = LineField(
         field_nv_t=rng.normal(1e-3, 1e-4, n),
         field_nv_sigma_t=rng.uniform(1e-7, 3e-7, n),
+        field_nv_bound_t=np.where(status == FitStatus.MERGED, 1e-4, np.nan),
         field_abs_t=rng.normal(2e-3, 1e-4, n),
         field_abs_sigma_t=rng.uniform(1e-7, 3e-7, n),
         angle_rad=rng.uniform(0.0, 1.0, n),
@@ -309,6 +311,69 @@ def test_the_nv_axis_is_recorded_at_creation_and_added_to_an_older_store(
     assert open_store_reader(path).nv_axis_rad() is None
     open_store(tmp_path / "old", nv_axis_rad=(0.5, 1.0)).close()
     assert open_store_reader(path).nv_axis_rad() == (0.5, 1.0)
+
+
+def merged_records(index: int) -> tuple[ScanLine, LineFit, LineField]:
+    """make_records with pixels 1 and 4 merged (status MERGED, a bound on |B∥|, no B∥)."""
+    line, fit, field = make_records(index)
+    status = field.status.copy()
+    status[[1, 4]] = FitStatus.MERGED
+    bound = np.where(status == FitStatus.MERGED, [0, 1.1e-4, 0, 0, 2.3e-4, 0], np.nan)
+    field_nv = np.where(status == FitStatus.MERGED, np.nan, field.field_nv_t)
+    merged = dataclasses.replace(field, status=status, field_nv_bound_t=bound, field_nv_t=field_nv)
+    return line, dataclasses.replace(fit, status=status), merged
+
+
+def test_the_bound_on_merged_pixels_is_stored_with_its_units(tmp_path: Path) -> None:
+    """field_nv_bound_t is a map like the field's: the LineField row read back bit for bit
+    (NaN on every pixel that is not MERGED), in T, its long name stating the level."""
+    records = merged_records(2)
+    with open_store(tmp_path) as store:
+        store.write_line(*records)
+        row = store.read_map("field_nv_bound_t", "forward")[2]
+        attrs = zarr.open_array(store.path / "forward" / "field_nv_bound_t", mode="r").attrs
+    np.testing.assert_array_equal(row, records[2].field_nv_bound_t)
+    assert np.isfinite(row).sum() == 2
+    assert attrs["units"] == "T"
+    assert str(attrs["long_name"]).startswith("upper bound (95 %, one-sided) on the magnitude")
+
+
+def test_an_older_store_without_the_bound_map_is_read_and_reopened(tmp_path: Path) -> None:
+    """A store written before field_nv_bound_t existed (the same layout without that map)
+    reads as NaN there; reopening it for writing adds the map (NaN for the lines it holds,
+    nothing reset) and new lines store their bounds. A map the store has always had is
+    still required."""
+    with open_store(tmp_path) as store:
+        old = [make_records(0), make_records(1, "backward")]
+        for records in old:
+            store.write_line(*records)
+        path = store.path
+    for direction in ("forward", "backward"):
+        shutil.rmtree(path / direction / "field_nv_bound_t")  # as an older version wrote it
+    reader = open_store_reader(path)
+    bound = reader.read_array("field_nv_bound_t", "forward")
+    assert bound.shape == (N_LINES, N_PIXELS)
+    assert bound.dtype == np.float64
+    assert np.isnan(bound).all()
+    np.testing.assert_array_equal(
+        reader.read_array("field_nv_t", "forward")[0], old[0][2].field_nv_t
+    )
+    with open_store(tmp_path) as store:
+        assert store.recovered_lines == []
+        assert sorted(store.committed()) == [(0, "forward"), (1, "backward")]
+        assert np.isnan(store.read_map("field_nv_bound_t", "backward")).all()
+        assert_rows(store, "forward", 0, line_rows(*old[0]) | {"field_nv_bound_t": np.nan})
+        new = merged_records(3)
+        store.write_line(*new)
+    attrs = zarr.open_array(path / "forward" / "field_nv_bound_t", mode="r").attrs
+    assert attrs["units"] == "T"
+    assert "lines committed before then" in str(attrs["comment"])
+    with open_store(tmp_path) as store:
+        assert store.recovered_lines == []
+        assert_rows(store, "forward", 3, line_rows(*new))
+    shutil.rmtree(path / "forward" / "chi2_red")
+    with pytest.raises(StoreError, match=r"store layout incomplete: missing .*chi2_red"):
+        open_store_reader(path).read_array("chi2_red", "forward")
 
 
 # ---------------------------------------------------------------------------- validation

@@ -73,8 +73,9 @@ def records(index: int, direction: str, version: int) -> tuple[ScanLine, LineFit
     status = rng.choice([FitStatus.OK, FitStatus.MERGED], n).astype(np.uint8)
     fit = LineFit(pair * 2.8e9, pair, pair, pair, pair, pair, single, single, single, single,
                   status, np.ones(n, dtype=np.int32))  # fmt: skip
-    field = LineField(single * 1e-3, single, single, single, single, single, single, single,
-                      status)  # fmt: skip
+    bound = np.where(status == FitStatus.MERGED, single * 1e-4, np.nan)
+    field = LineField(single * 1e-3, single, bound, single, single, single, single, single,
+                      single, status)  # fmt: skip
     return line, fit, field
 
 

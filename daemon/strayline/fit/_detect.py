@@ -32,9 +32,8 @@ Steps per spectrum (one compiled pass per batch, a thread per spectrum):
 2. with the first dip's least-squares fit removed, score the candidates of the mirror
    window ``2·pair_centre − c₁ ± tol`` (where a Zeeman partner must lie; the whole
    sweep without a pair centre): the partner is the best one that passes the partner
-   threshold, or the sweep threshold where it lies within max(FWHM, 2 tol) of the first
-   dip (so close, the window holds the first dip itself and a merged pair would find a
-   partner in its own broadening);
+   threshold, or the sweep threshold where it lies within one FWHM of the first dip
+   (where a merged pair could find a partner in its own broadening);
 3. fit both depths jointly and score the first dip again (a second dip in a short sweep
    lowers the first one's apparent baseline).
 """
@@ -322,7 +321,7 @@ def _detect(
         c1 = _peak(x, cand, tv, j1, n_cand)
         reach = k0[j1] + n_taps[j1]
         mirror = 2.0 * pair_x - c1
-        far = max(fwhm, 2.0 * mirror_tol)
+        far = fwhm
         j2 = -1
         for j in range(n_cand):
             xj = x[cand[j]]

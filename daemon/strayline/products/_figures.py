@@ -4,7 +4,10 @@ No pyplot: figures are built as :class:`matplotlib.figure.Figure` objects that n
 registry holds, so nothing stays open after a product is written and no display is
 needed. Colour scales are robust (1st–99th percentile), the field scale is diverging and
 centred on the map's median (or on zero for the reconstructed components, whose mean is
-not measurable), the status map is categorical with a legend.
+not measurable), the status map is categorical with a legend. Pixels whose two resonances
+merged into one dip are a measurement too, an upper bound on |B∥|
+(:func:`strayline.field.merged_field_bound_t`): both panels show them as "below
+resolution" in one neutral colour, not as failures.
 """
 
 from __future__ import annotations
@@ -26,13 +29,17 @@ from strayline.fit import FitStatus
 from strayline.products._maps import TraceMaps, VectorField, contrast_map
 from strayline.store import STATUS_FILL
 
-__all__ = ["quicklook_figure", "save_png", "vector_figure"]
+__all__ = ["BELOW_RESOLUTION_LABEL", "quicklook_figure", "save_png", "vector_figure"]
 
 _DPI = 110
+# Pixels below resolution (status MERGED): a neutral blue-grey, apart from the field's
+# diverging scale, from the light grey of "no value" and from the failures' colours.
+_BELOW_RESOLUTION_COLOUR = "#90a4ae"
+BELOW_RESOLUTION_LABEL = "below resolution (|B∥| < bound)"
 _STATUS_COLOURS = {
     int(FitStatus.OK): "#2e7d32",
     int(FitStatus.NO_RESONANCE): "#c62828",
-    int(FitStatus.MERGED): "#f9a825",
+    int(FitStatus.MERGED): _BELOW_RESOLUTION_COLOUR,
     int(FitStatus.AT_BOUND): "#6a1b9a",
     int(FitStatus.NOT_CONVERGED): "#ef6c00",
     int(FitStatus.LOW_COUNTS): "#37474f",
@@ -41,7 +48,8 @@ _STATUS_COLOURS = {
     STATUS_FILL: "#e0e0e0",
 }
 _STATUS_LABELS = {int(s): s.name.lower().replace("_", " ") for s in FitStatus} | {
-    STATUS_FILL: "not written"
+    int(FitStatus.MERGED): "below resolution (merged dips)",
+    STATUS_FILL: "not written",
 }
 # Drawn width of one map panel, inches: 12.5 in × (0.86 − 0.07) / (2 + wspace 0.42).
 _PANEL_W_IN = 4.08
@@ -166,6 +174,35 @@ def _field_panel(
     _label_axes(ax, title)
 
 
+def _below_resolution(ax: Axes, trace: TraceMaps) -> None:
+    """Draw the pixels below resolution (status MERGED) over a field panel in the neutral
+    colour, with a legend entry giving the median of their bound on |B∥|."""
+    merged = trace.committed[:, None] & (np.asarray(trace.maps["status"]) == FitStatus.MERGED)
+    if not np.any(merged):
+        return
+    ax.imshow(
+        np.where(merged, 1.0, np.nan),
+        origin="lower",
+        extent=_extent_um(trace),
+        aspect=_aspect(trace),
+        cmap=ListedColormap([_BELOW_RESOLUTION_COLOUR]),
+        interpolation="nearest",
+    )
+    bound = np.asarray(trace.maps["field_nv_bound_t"])[merged]
+    bound = bound[np.isfinite(bound)]
+    label = BELOW_RESOLUTION_LABEL
+    if bound.size:
+        median = float(np.median(bound))
+        unit, scale = field_unit(median)
+        label = f"below resolution (|B∥| < bound, median {median * scale:.3g} {unit})"
+    ax.legend(
+        handles=[Patch(facecolor=_BELOW_RESOLUTION_COLOUR, label=label)],
+        loc="lower left",
+        fontsize=7,
+        framealpha=0.85,
+    )
+
+
 def _scalar_panel(
     ax: Axes, trace: TraceMaps, values: np.ndarray, *, title: str, label: str, cmap: str
 ) -> None:
@@ -222,9 +259,11 @@ def _status_panel(ax: Axes, trace: TraceMaps) -> None:
 
 
 def quicklook_figure(trace: TraceMaps, scan_id: str) -> Figure:
-    """Four panels: B_NV (diverging, median-centred), PL rate, contrast, fit status."""
+    """Four panels: B_NV (diverging, median-centred; pixels below resolution in a neutral
+    colour), PL rate, contrast, fit status."""
     fig, axes = _figure(trace)
     _field_panel(axes[0, 0], trace, trace.maps["field_nv_t"], name="B along NV", centre=None)
+    _below_resolution(axes[0, 0], trace)
     _scalar_panel(
         axes[0, 1],
         trace,

@@ -15,6 +15,7 @@ from typing import Any
 import numpy as np
 
 from strayline.alerts import AlertEvent
+from strayline.field import FIELD_BOUND_LEVEL
 from strayline.fit import FitStatus
 from strayline.products._maps import TraceMaps, VectorField, contrast_map
 
@@ -96,6 +97,7 @@ def trace_summary(trace: TraceMaps) -> dict[str, Any]:
         "fit_status_fractions": fractions,
         "field_nv_t": distribution(maps["field_nv_t"], "T"),
         "field_nv_sigma_t_median": _median(maps["field_nv_sigma_t"]),
+        "field_nv_bound_t": distribution(maps["field_nv_bound_t"], "T"),
         "pl_rate_cps_median": _median(maps["pl_rate_cps"]),
         "contrast_median": _median(contrast_map(trace)[rows]),
         "contrast_lo_median": _median(maps["contrast_lo"]),
@@ -135,6 +137,11 @@ def alert_summary(events: Sequence[AlertEvent]) -> dict[str, Any]:
 
 def _fmt(value: float | None, scale: float, unit: str, digits: int = 4) -> str:
     return "n/a" if value is None else f"{value * scale:.{digits}g} {unit}"
+
+
+def _bound_value(value_t: float) -> str:
+    scale, unit = (1e3, "mT") if abs(value_t) >= 1e-3 else (1e6, "µT")
+    return f"{value_t * scale:.3g} {unit}"
 
 
 def _field_line(stats: Mapping[str, Any] | None) -> str:
@@ -180,7 +187,15 @@ def report_markdown(report: Mapping[str, Any]) -> str:
             f"{_fmt(trace['contrast_median'], 100, '%', 3)}, linewidth "
             f"{_fmt(trace['fwhm_hz_median'], 1e-6, 'MHz', 3)} (medians)",
         ]
-        failed = {k: v for k, v in trace["fit_status_fractions"].items() if k != "ok" and v > 0}
+        fractions = trace["fit_status_fractions"]
+        if fractions.get("merged", 0.0) > 0:
+            bound = trace.get("field_nv_bound_t")
+            median = "" if bound is None else f", median bound {_bound_value(bound['median'])}"
+            lines.append(
+                f"- below resolution (merged dips) {100 * fractions['merged']:.1f} %: "
+                f"|B∥| < bound ({100 * FIELD_BOUND_LEVEL:.0f} %, one-sided){median}"
+            )
+        failed = {k: v for k, v in fractions.items() if k not in ("ok", "merged") and v > 0}
         if failed:
             listing = ", ".join(f"{k.replace('_', ' ')} {100 * v:.1f} %" for k, v in failed.items())
             lines.append(f"- not OK: {listing}")

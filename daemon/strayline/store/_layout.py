@@ -21,6 +21,11 @@ Raw spectra are kept per line because n_freq may change from line to line: a lin
 spectra stay self-contained (no padding), and superseding or resetting a line removes one
 group.
 
+A map added to the layout after stores were first written (``MapSpec.added_later``) may be
+missing from an older store: the writer creates it when it reopens such a store (filled
+for the lines already committed, which the older version wrote without it), and the
+reader gives its fill value meanwhile, so an older store is read without a conversion.
+
 Maps are float64. The field's 1σ (~1e-7 T) against fields of up to ~0.1 T would fit float32
 (about 7 significant digits), but float64 keeps the fitter's numbers bit for bit, which
 makes a stored scan refittable and comparable without a precision caveat; Blosc-Zstd with
@@ -42,6 +47,7 @@ import numpy as np
 import zarr
 from zarr.codecs import BloscCodec
 
+from strayline.field import FIELD_BOUND_LEVEL
 from strayline.fit import FitStatus
 from strayline.lines import DIRECTIONS
 from strayline.store._ledger import LEDGER_FILE
@@ -54,6 +60,7 @@ __all__ = [
     "STORE_FORMAT",
     "STORE_FORMAT_VERSION",
     "MapSpec",
+    "add_missing_maps",
     "chunk_file",
     "compressors",
     "create_layout",
@@ -81,12 +88,17 @@ _PARTIAL = re.compile(r"\.[0-9a-f]{32}\.partial$")
 
 @dataclass(frozen=True)
 class MapSpec:
-    """One per-pixel map of a trace group."""
+    """One per-pixel map of a trace group.
+
+    ``added_later``: the map joined the layout after stores of this format were first
+    written, so an older store may lack it (see the module notes).
+    """
 
     name: str
     units: str
     long_name: str
     dtype: str = "float64"
+    added_later: bool = False
 
     @property
     def fill(self) -> float | int:
@@ -96,6 +108,13 @@ class MapSpec:
 MAPS: tuple[MapSpec, ...] = (
     MapSpec("field_nv_t", "T", "magnetic field along the NV axis"),
     MapSpec("field_nv_sigma_t", "T", "1-sigma uncertainty of the field along the NV axis"),
+    MapSpec(
+        "field_nv_bound_t",
+        "T",
+        f"upper bound ({100 * FIELD_BOUND_LEVEL:.0f} %, one-sided) on the magnitude of the "
+        "field along the NV axis where the resonances are merged",
+        added_later=True,
+    ),
     MapSpec("field_abs_t", "T", "magnetic field magnitude"),
     MapSpec("angle_rad", "rad", "angle between the magnetic field and the NV axis"),
     MapSpec("center_mean_hz", "Hz", "mean of the lower and upper resonance frequencies"),
@@ -170,25 +189,17 @@ def create_layout(
     try:
         root = zarr.open_group(tmp, mode="w-", zarr_format=3, attributes=dict(attributes))
         codecs = compressors(compression_level)
-        flag_values, flag_meanings = status_flags()
         for direction in DIRECTIONS:
             trace = root.create_group(
                 direction, attributes={"direction": direction, "long_name": f"{direction} trace"}
             )
             for spec in MAPS:
-                attrs: dict[str, Any] = {"units": spec.units, "long_name": spec.long_name}
-                if spec.name == "status":
-                    attrs |= {"flag_values": flag_values, "flag_meanings": flag_meanings}
-                trace.create_array(
-                    spec.name,
-                    shape=(n_lines_planned, n_pixels),
-                    chunks=(chunk_lines, n_pixels),
-                    dtype=spec.dtype,
-                    fill_value=spec.fill,
-                    compressors=codecs,
-                    chunk_key_encoding=_CHUNK_KEY_ENCODING,
-                    dimension_names=("y", "x"),
-                    attributes=attrs,
+                _create_map(
+                    trace,
+                    spec,
+                    (n_lines_planned, n_pixels),
+                    chunk_lines=chunk_lines,
+                    codecs=codecs,
                 )
             x = trace.create_array(
                 "x",
@@ -236,6 +247,83 @@ def create_layout(
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
+
+
+def _create_map(
+    trace: zarr.Group,
+    spec: MapSpec,
+    shape: tuple[int, int],
+    *,
+    chunk_lines: int,
+    codecs: list[BloscCodec],
+    comment: str | None = None,
+) -> None:
+    """Create one map of a trace group, filled with the map's fill value."""
+    attrs: dict[str, Any] = {"units": spec.units, "long_name": spec.long_name}
+    if spec.name == "status":
+        flag_values, flag_meanings = status_flags()
+        attrs |= {"flag_values": flag_values, "flag_meanings": flag_meanings}
+    if comment is not None:
+        attrs["comment"] = comment
+    trace.create_array(
+        spec.name,
+        shape=shape,
+        chunks=(chunk_lines, shape[1]),
+        dtype=spec.dtype,
+        fill_value=spec.fill,
+        compressors=codecs,
+        chunk_key_encoding=_CHUNK_KEY_ENCODING,
+        dimension_names=("y", "x"),
+        attributes=attrs,
+    )
+
+
+def add_missing_maps(path: Path, root: zarr.Group, compression_level: int) -> list[str]:
+    """Create the maps an older store lacks (``MapSpec.added_later``), durably.
+
+    Each takes the shape and row chunking of the trace's ``status`` map and is filled
+    (NaN) for every line: the lines committed so far were written without it. Run by the
+    store's one writer, under its lock.
+
+    Returns
+    -------
+    list of str
+        The arrays created, as ``<direction>/<name>``.
+
+    Raises
+    ------
+    KeyError
+        If a trace group or its ``status`` map is missing (the layout is incomplete).
+    OSError
+        On disk failures.
+    """
+    created = []
+    for direction in DIRECTIONS:
+        trace = root[direction]
+        if not isinstance(trace, zarr.Group):
+            raise KeyError(direction)
+        present = set(trace.array_keys())
+        missing = [spec for spec in MAPS if spec.added_later and spec.name not in present]
+        if not missing:
+            continue
+        status = trace["status"]
+        if not isinstance(status, zarr.Array):
+            raise KeyError(f"{direction}/status")
+        shape = (int(status.shape[0]), int(status.shape[1]))
+        for spec in missing:
+            _create_map(
+                trace,
+                spec,
+                shape,
+                chunk_lines=int(status.chunks[0]),
+                codecs=compressors(compression_level),
+                comment="added when the store was reopened; lines committed before then "
+                "were written without this map and hold its fill value",
+            )
+            created.append(f"{direction}/{spec.name}")
+    if created:
+        fsync_with_parents([path / name / "zarr.json" for name in created], path)
+    return created
 
 
 def remove_creation_leftovers(path: Path) -> list[Path]:

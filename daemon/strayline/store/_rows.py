@@ -59,6 +59,7 @@ def line_rows(line: ScanLine, fit: LineFit, field: LineField) -> dict[str, np.nd
         "LineFit.chi2_red": fit.chi2_red,
         "LineField.field_nv_t": field.field_nv_t,
         "LineField.field_nv_sigma_t": field.field_nv_sigma_t,
+        "LineField.field_nv_bound_t": field.field_nv_bound_t,
         "LineField.field_abs_t": field.field_abs_t,
         "LineField.angle_rad": field.angle_rad,
         "LineField.center_mean_hz": field.center_mean_hz,
@@ -80,6 +81,7 @@ def line_rows(line: ScanLine, fit: LineFit, field: LineField) -> dict[str, np.nd
     return {
         "field_nv_t": f64(field.field_nv_t),
         "field_nv_sigma_t": f64(field.field_nv_sigma_t),
+        "field_nv_bound_t": f64(field.field_nv_bound_t),
         "field_abs_t": f64(field.field_abs_t),
         "angle_rad": f64(field.angle_rad),
         "center_mean_hz": f64(field.center_mean_hz),

@@ -16,7 +16,7 @@ import zarr
 
 from strayline.errors import StoreError
 from strayline.lines import DIRECTIONS
-from strayline.store._layout import STORE_FORMAT, row_blocks_on_disk
+from strayline.store._layout import MAPS, STORE_FORMAT, row_blocks_on_disk
 from strayline.store._ledger import LEDGER_FILE, LedgerState, read_ledger_state
 
 __all__ = [
@@ -100,6 +100,10 @@ class StoreReader:
     def read_array(self, name: str, direction: str) -> np.ndarray:
         """The whole array ``<direction>/<name>`` (a map, ``x`` or ``y``).
 
+        A map added to the layout after the store was written (``MapSpec.added_later``)
+        and not yet created in it (its writer has not reopened it since) reads as its
+        fill value, shape (n_lines_planned, n_pixels).
+
         Raises
         ------
         StoreError
@@ -108,6 +112,10 @@ class StoreReader:
         try:
             array = self._group[f"{direction}/{name}"]
         except KeyError as error:
+            later = _LATER_MAPS.get(name)
+            if later is not None and direction in DIRECTIONS:
+                shape = (self.n_lines_planned, int(self.attrs["n_pixels"]))
+                return np.full(shape, later.fill, dtype=later.dtype)
             raise StoreError(f"{self.path}: store layout incomplete: missing {error}") from error
         if not isinstance(array, zarr.Array):
             raise StoreError(f"{self.path}: {direction}/{name} must be an array; found a group")
@@ -135,6 +143,9 @@ class StoreReader:
                 if "nv_theta_rad" in attrs and "nv_phi_rad" in attrs:
                     return float(attrs["nv_theta_rad"]), float(attrs["nv_phi_rad"])  # type: ignore[arg-type]
         return None
+
+
+_LATER_MAPS = {spec.name: spec for spec in MAPS if spec.added_later}
 
 
 def _read_sparse(array: zarr.Array, store_path: Path, array_path: str) -> np.ndarray:

@@ -56,6 +56,7 @@ from strayline.store._layout import (
     STATUS_FILL,
     STORE_FORMAT,
     STORE_FORMAT_VERSION,
+    add_missing_maps,
     chunk_file,
     compressors,
     create_layout,
@@ -301,6 +302,11 @@ class ScanStore:
         StoreError
             If the store cannot be created or read, is held by another writer, or is
             incompatible (another format, scan, n_pixels or n_lines_planned).
+
+        Notes
+        -----
+        A store written by an older version that lacks a map added since gets it here,
+        filled for the lines it already holds (:func:`strayline.store._layout.add_missing_maps`).
         ValueError
             If an argument is invalid (a caller's bug).
         """
@@ -356,6 +362,7 @@ class ScanStore:
         ledger = Ledger.open(path / LEDGER_FILE)  # takes the writer's lock
         try:
             remove_partials(path)
+            add_missing_maps(path, root, compression_level)
             store = cls(
                 path,
                 root,
