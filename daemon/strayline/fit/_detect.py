@@ -63,7 +63,13 @@ __all__ = [
 ]
 
 _FASTMATH = {"contract", "arcp", "reassoc", "nsz", "afn"}
-_REACH_HALF_WIDTHS = 10.0  # a template is cut where the Lorentzian falls below 1 %
+# A template is cut at 4 half-widths, where the Lorentzian is down to 6 %: it keeps
+# 99.4 % of the squared norm of the full shape (∫ (1 + u²)⁻² over |u| < 4 against π/2),
+# so the filter loses 0.3 % of significance, and scans in half the time of a cut at 10.
+_REACH_HALF_WIDTHS = 4.0
+# Candidate centres are taken every k-th grid point, k the largest with k steps within a
+# quarter of the FWHM (the peak is refined by a parabola through three candidates).
+_CANDIDATES_PER_FWHM = 8.0
 _WIDTH_STEPS_PER_OCTAVE = 8  # templates are built for widths on this geometric ladder
 
 
@@ -145,6 +151,8 @@ def _templates_cached(
     cand = np.flatnonzero((x >= lo) & (x <= hi))
     if cand.size == 0:
         cand = np.arange(n)
+    stride = max(1, int(fwhm / _CANDIDATES_PER_FWHM / float(np.median(np.diff(x)))))
+    cand = cand[::stride]
     h = 0.5 * fwhm
     reach = _REACH_HALF_WIDTHS * h
     c = x[cand]
@@ -248,7 +256,7 @@ def _overlap(i, j, k0, values, n_taps, mean, n):
 def _peak(x, cand, tv, j, n_cand):
     """Centre of the peak of ``tv`` at candidate j, refined by a parabola through 3 points."""
     c = x[cand[j]]
-    if j <= 0 or j >= n_cand - 1 or cand[j + 1] - cand[j - 1] != 2:
+    if j <= 0 or j >= n_cand - 1 or cand[j + 1] - cand[j] != cand[j] - cand[j - 1]:
         return c
     den = tv[j - 1] - 2.0 * tv[j] + tv[j + 1]
     if not den < 0.0:
@@ -406,6 +414,7 @@ def detect_dips(
 
 
 _WIDTH_SPAN_OCTAVES = 2  # the width search runs from a quarter to four times the rough width
+_WIDTH_STEPS = 4  # widths per octave of that search (a parabola refines the best)
 _WIDTH_SPECTRA = 32  # clearest dips whose best widths are pooled
 _MIN_PAIRED = 8  # fewest separate pairs from which the width is taken
 _PAIR_GAP = 3.0  # rough widths between the dips of a separate pair
@@ -413,13 +422,15 @@ _WIDTH_FALSE_DIPS = 0.005  # false-dip rate of the dips the width is measured on
 
 
 def _zero_mean_dips(
-    x: np.ndarray, centre: np.ndarray, fwhm: float, hf_off: np.ndarray, hf_w: np.ndarray
+    x: np.ndarray, centre: np.ndarray, fwhm: np.ndarray, hf_off: np.ndarray, hf_w: np.ndarray
 ) -> np.ndarray:
-    """Dips of width ``fwhm`` at ``centre`` on the whole grid, minus their means, (n, n_x)."""
-    h2 = 0.25 * fwhm * fwhm
-    d = x[None, :, None] - centre[:, None, None] - hf_off[None, None, :]
-    dips = np.sum(hf_w * h2 / (d * d + h2), axis=2)
-    return dips - dips.mean(axis=1, keepdims=True)
+    """Dips of each width at each centre on the whole grid, minus their means.
+
+    Shape (n_widths, n_centres, n_x)."""
+    h2 = (0.25 * fwhm * fwhm)[:, None, None, None]
+    d = x[None, None, :, None] - centre[None, :, None, None] - hf_off[None, None, None, :]
+    dips = np.sum(hf_w * h2 / (d * d + h2), axis=3)
+    return dips - dips.mean(axis=2, keepdims=True)
 
 
 def matched_width(
@@ -432,7 +443,7 @@ def matched_width(
     center_range: tuple[float, float],
     pair_center: float = np.nan,
     mirror_tol: float = -1.0,
-) -> float:
+) -> tuple[float, bool]:
     """The dip width (scaled) that best explains the clearest spectra of ``y``.
 
     The dips of each row are found with the ``rough`` width (the first, and its partner
@@ -445,7 +456,10 @@ def matched_width(
     when wider). The width that explains most summed over the rows (one width for the line:
     each row's own best width is noisy, and at low signal the noise favours narrow
     templates) is refined by a parabola in log-width and returned (``rough`` when no row
-    shows a dip that noise would fake in fewer than 0.5 % of spectra). Fitting the partner
+    shows a dip that noise would fake in fewer than 0.5 % of spectra). Also returned:
+    whether the width was measured on separate pairs (at least ``_MIN_PAIRED``), the
+    only dips that show the line's own width; a width from lone dips may be that of
+    merged pairs, too wide to serve as a prior. Fitting the partner
     alongside matters: alone, a wide template would pay for the other dip's share of the
     mean and the width would come out low.
     """
@@ -465,36 +479,33 @@ def matched_width(
     t1 = first.significance[:, 0]
     clear = np.flatnonzero(t1 > rice_threshold(tmpl.arc, _WIDTH_FALSE_DIPS))
     if clear.size == 0:
-        return rough
+        return rough, False
     # Separate pairs show the line's own width; a dip without a partner may be a merged
     # pair, broader than the line (and deeper, so it would top a list of clear dips), and
     # the centres of a close pair found at the rough width are off, which widens the best
     # template.
     gap = np.abs(first.center[clear, 1] - first.center[clear, 0])
     paired = clear[np.isfinite(gap) & (gap >= _PAIR_GAP * rough)]
-    if paired.size >= _MIN_PAIRED:
+    trusted = paired.size >= _MIN_PAIRED
+    if trusted:
         clear = paired
     clear = clear[np.argsort(t1[clear])[::-1][:_WIDTH_SPECTRA]]
     c1 = first.center[clear, 0]
     c2 = first.center[clear, 1]
     two = np.isfinite(c2)
     r = y[clear].mean(axis=1, keepdims=True) - y[clear]
-    n_steps = _WIDTH_STEPS_PER_OCTAVE * _WIDTH_SPAN_OCTAVES
-    widths = ladder_width(rough) * 2.0 ** (
-        np.arange(-n_steps, n_steps + 1) / _WIDTH_STEPS_PER_OCTAVE
-    )
+    n_steps = _WIDTH_STEPS * _WIDTH_SPAN_OCTAVES
+    widths = ladder_width(rough) * 2.0 ** (np.arange(-n_steps, n_steps + 1) / _WIDTH_STEPS)
     widths = widths[(widths >= bounds[0] * 0.999) & (widths <= bounds[1] * 1.001)]
-    explained = np.empty((clear.size, widths.size))
     c2 = np.where(two, c2, c1)
-    for i, w in enumerate(widths):
-        a = _zero_mean_dips(x, c1, float(w), hf_off, hf_w)
-        b = _zero_mean_dips(x, c2, float(w), hf_off, hf_w) * two[:, None]
-        pa, pb = np.einsum("sk,sk->s", r, a), np.einsum("sk,sk->s", r, b)
-        gaa, gbb, gab = (a * a).sum(1), (b * b).sum(1), (a * b).sum(1)
-        det = gaa * gbb - gab * gab
-        joint = (gbb * pa * pa - 2.0 * gab * pa * pb + gaa * pb * pb) / np.where(two, det, 1.0)
-        explained[:, i] = np.where(two & (det > 1e-12 * gaa * gbb), joint, pa * pa / gaa)
-    total = explained.sum(axis=0)
+    a = _zero_mean_dips(x, c1, widths, hf_off, hf_w)  # (width, row, x)
+    b = _zero_mean_dips(x, c2, widths, hf_off, hf_w) * two[None, :, None]
+    pa, pb = np.einsum("sk,wsk->ws", r, a), np.einsum("sk,wsk->ws", r, b)
+    gaa, gbb, gab = (a * a).sum(2), (b * b).sum(2), (a * b).sum(2)
+    det = gaa * gbb - gab * gab
+    joint = (gbb * pa * pa - 2.0 * gab * pa * pb + gaa * pb * pb) / np.where(two, det, 1.0)
+    explained = np.where(two & (det > 1e-12 * gaa * gbb), joint, pa * pa / gaa)
+    total = explained.sum(axis=1)
     best = int(np.argmax(total))
     log_w = math.log(widths[best])
     if 0 < best < widths.size - 1:
@@ -502,5 +513,5 @@ def matched_width(
         den = s0 - 2.0 * s1 + s2
         if den < 0.0:
             shift = min(max(0.5 * (s0 - s2) / den, -0.5), 0.5)
-            log_w += shift * math.log(2.0) / _WIDTH_STEPS_PER_OCTAVE
-    return float(min(max(math.exp(log_w), bounds[0]), bounds[1]))
+            log_w += shift * math.log(2.0) / _WIDTH_STEPS
+    return float(min(max(math.exp(log_w), bounds[0]), bounds[1])), trusted

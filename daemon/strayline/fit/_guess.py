@@ -58,6 +58,8 @@ class DipGuess:
         significance is the matched-filter statistic.
     fwhm : float
         The line's width, the same for every dip.
+    fwhm_trusted : bool
+        The width was measured on separate pairs (else it may be merged pairs').
     baseline : ndarray
         Off-resonance counts per sample.
     n_found : ndarray of int64
@@ -68,6 +70,7 @@ class DipGuess:
     contrast: np.ndarray
     significance: np.ndarray
     fwhm: float
+    fwhm_trusted: bool
     baseline: np.ndarray
     n_found: np.ndarray
 
@@ -226,8 +229,9 @@ def line_width(
     *,
     pair_center: float = np.nan,
     mirror_tol: float = -1.0,
-) -> float:
-    """The line's FWHM (scaled), from a subsample of its spectra.
+) -> tuple[float, bool]:
+    """The line's FWHM (scaled), from a subsample of its spectra, and whether it was
+    measured on separate pairs (:func:`strayline.fit._detect.matched_width`).
 
     The median half-depth width of the clearly dipped spectra of the subsample
     (:func:`_rough_widths`) places the matched filter; the width is then the one that
@@ -298,7 +302,7 @@ def guess_dips(
     off = np.ascontiguousarray(hf_off, dtype=np.float64)
     wts = np.ascontiguousarray(hf_w, dtype=np.float64)
     lo_w, hi_w = float(fwhm_bounds[0]), float(fwhm_bounds[1])
-    width = line_width(
+    width, trusted = line_width(
         xc,
         yc,
         off,
@@ -328,6 +332,7 @@ def guess_dips(
         contrast=contrast,
         significance=found.significance,
         fwhm=width,
+        fwhm_trusted=trusted,
         baseline=found.baseline,
         n_found=found.n_found,
     )

@@ -73,7 +73,7 @@ class LineFit:
     status : ndarray of uint8, shape (n_pixels,)
         :class:`FitStatus` codes.
     n_iter : ndarray of int32, shape (n_pixels,)
-        Iterations used (both passes when the line's width is pooled).
+        Iterations used (every refit of the spectrum included).
     line_fwhm_hz : float
         The line's FWHM as the matched filter measured it, Hz (NaN when no spectrum was
         searched for dips).
@@ -170,9 +170,8 @@ class FitModel:
         linewidth is set by the NV and the microwave and laser powers, which a line does
         not change (common practice), so the line's FWHM (measured by the matched filter
         on its clearest dips) enters every pixel's fit as a Gaussian prior of this
-        relative width (loosened when the fitted widths scatter more than their 1σ
-        explain). This tames noise-driven narrow-width
-        solutions at low counts. None fits every width freely.
+        relative width. This tames noise-driven narrow-width solutions at low counts;
+        at high counts the data outweigh it. None fits every width freely.
     false_dip_rate : float
         Chance that a spectrum of pure noise shows a dip: the detection threshold of the
         matched filter over the sweep is set from it by the look-elsewhere effect
@@ -197,8 +196,8 @@ class FitModel:
     profile_below : float
         Centres of dips weaker than this significance take their 1σ from the profile
         likelihood (:func:`_profile_sigma`), which follows the likelihood where it is far
-        from quadratic. With 9.5 and 6, the rms of (fitted − true)/σ of OK centres on
-        held-out seeds of that family is 1.01 (1.15 with neither) and 99.5 % lie within
+        from quadratic. With κ = 9 and 6, the rms of (fitted − true)/σ of OK centres on
+        held-out seeds of that family is 1.02 (1.15 with neither) and 99.4 % lie within
         3σ (98.9 %). 0 turns the profile off.
     pair_center_hz : float or None
         Expected midpoint (f₋ + f₊)/2 of the two resonances (≈ D), Hz; None = the middle of
@@ -225,7 +224,7 @@ class FitModel:
     false_dip_rate: float = 0.005
     false_partner_rate: float = 0.05
     split_chi2: float = 9.2
-    sigma_kappa: float = 9.5
+    sigma_kappa: float = 9.0
     profile_below: float = 6.0
     pair_center_hz: float | None = None
     merge_radius_hz: float = 20e6
@@ -354,15 +353,13 @@ def _run(
     ref_hz: float,
     fwhm_lo_hz: float,
     width_prior: tuple[float, float] = (0.0, 0.0),
-    final: bool = True,
     pin: tuple[np.ndarray, np.ndarray] | None = None,
 ) -> dict[str, np.ndarray]:
     """Run the kernel on the rows of ``y``; returns the raw (scaled) results.
 
     ``width_prior`` = (centre, inverse variance) of a Gaussian prior on the widths, scaled
-    units; (0, 0) for none. ``final``: converge to ``model.xtol_sigma`` and take σ from the
-    observed information; otherwise (a first pass that another one refines) stop at
-    ``_FIRST_XTOL`` and take σ from the expected information, which costs no extra pass.
+    units; (0, 0) for none. Converges to ``model.xtol_sigma``; σ from the observed
+    information. ``pin`` = (parameter index, value) per row holds that parameter.
     """
     lo1, hi1 = _bounds(layout, model, x, half_hz=half_hz, ref_hz=ref_hz, fwhm_lo_hz=fwhm_lo_hz)
     lo = np.ascontiguousarray(np.broadcast_to(lo1, p0.shape))
@@ -386,8 +383,8 @@ def _run(
         float(width_prior[0]),
         float(width_prior[1]),
         int(model.max_iter),
-        float(model.xtol_sigma) if final else max(float(model.xtol_sigma), _FIRST_XTOL),
-        int(final),
+        float(model.xtol_sigma),
+        1,
     )
     at_bound = np.any((p == lo) | (p == hi), axis=1)
     return {
@@ -401,10 +398,6 @@ def _run(
     }
 
 
-_MIN_POOLED = 8  # fewest kept fits from which a line's width is pooled
-_FIRST_XTOL = 0.3  # σ; a first pass only has to come close, the second pass refines
-
-
 def _significance(res: dict[str, np.ndarray], nd: int) -> np.ndarray:
     """Per dip: contrast / its 1σ (0 where σ is not finite or the contrast is 0), (n, nd)."""
     con = res["p"][:, nd : 2 * nd]
@@ -413,34 +406,41 @@ def _significance(res: dict[str, np.ndarray], nd: int) -> np.ndarray:
     return np.where(good, con / np.where(good, sig, 1.0), 0.0)
 
 
-def _line_width_prior(
+def _looser_prior(
     res: dict[str, np.ndarray],
     keep: np.ndarray,
     i_width: int,
-    spread: float | None,
-    centre: float,
+    prior: tuple[float, float],
+    spread: float,
 ) -> tuple[float, float] | None:
-    """(centre, inverse variance) of the line's width prior, scaled units, or None.
+    """A looser width prior where the line's widths scatter more than the prior allows.
 
-    Centre: the line's width as the matched filter measured it on its clearest dips
-    (:func:`strayline.fit._detect.matched_width`). The median of the kept fits' widths
-    would do worse: at low signal the fits that pass the significance cut are those
-    that noise made narrow and deep, and a prior at their median narrows every fit
-    (measured: 8.7 MHz for 10 MHz lines at 4σ dips, against 9.6 MHz from the matched
-    filter). Variance: (spread·G₀)² plus the part of the kept fits' scatter (1.4826 ×
-    MAD; 1.4826 = 1/Φ⁻¹(¾) makes the median absolute deviation a Gaussian σ, common
-    practice) that their own 1σ does not explain, so a line whose widths truly differ
-    gets a looser prior. None without ``spread`` or with fewer than ``_MIN_POOLED`` kept
-    fits.
+    The kept fits were made with ``prior``; their widths are first freed of its pull.
+    The part of the kept fits' width scatter (1.4826 × MAD; 1.4826 = 1/Φ⁻¹(¾) makes the
+    median absolute deviation a Gaussian σ, common practice) that their own 1σ does not
+    explain is added to the prior's variance (spread · G₀)². Returned, as (centre,
+    inverse variance), only when that at least doubles the variance; None otherwise, or
+    with fewer than ``_MIN_POOLED`` kept fits to judge by.
     """
-    if spread is None or np.count_nonzero(keep) < _MIN_POOLED:
+    if np.count_nonzero(keep) < _MIN_POOLED:
         return None
-    widths = res["p"][keep, i_width]
-    w_sigma = res["sigma"][keep, i_width]
+    # Undo the prior's pull: with data information I_d = 1/σ² − I_p, the width the data
+    # alone would give is G₀ + (G − G₀)(I_d + I_p)/I_d, with 1σ of 1/√I_d.
+    g0, i_prior = prior
+    fitted = res["p"][keep, i_width]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        i_data = 1.0 / res["sigma"][keep, i_width] ** 2 - i_prior
+        good = np.isfinite(i_data) & (i_data > 0.0)
+        widths = np.where(good, g0 + (fitted - g0) * (i_data + i_prior) / i_data, fitted)
+        w_sigma = np.where(good, 1.0 / np.sqrt(i_data), np.nan)
     scatter2 = (MAD_TO_SIGMA * float(np.median(np.abs(widths - np.median(widths))))) ** 2
     own2 = float(np.median(np.where(np.isfinite(w_sigma), w_sigma, 0.0) ** 2))
-    var = (spread * centre) ** 2 + max(scatter2 - own2, 0.0)
-    return centre, 1.0 / var
+    base = (spread * prior[0]) ** 2
+    var = base + max(scatter2 - own2, 0.0)
+    return (prior[0], 1.0 / var) if var >= 2.0 * base else None
+
+
+_MIN_POOLED = 8  # fewest kept fits from which a line's width scatter is judged
 
 
 def _pair_kept(
@@ -744,14 +744,12 @@ def fit_line(
     one hyperfine spacing either side (:func:`_best_alias`): the best solution is kept,
     and a rival within ``split_chi2`` makes the pixel AMBIGUOUS.
 
-    With ``line_width_spread`` set, the fit runs twice: a first pass to 0.3σ with the
-    expected-information σ, then, from its solutions, a second pass to ``xtol_sigma`` with
-    the line's FWHM (as the matched filter measured it) as a Gaussian prior
-    (:func:`_line_width_prior`) and σ from the observed information. On simulated demo
-    spectra (600 counts per point, dips ~6σ, FWHM 10 MHz, 64-pixel lines) the pair rule, the
-    observed information and the prior took the share of pixels whose B∥ lies within 3σ of
-    the truth from 98.3 % to 99.4-99.6 %; alone, the free-width fits leave 2 % of FWHMs
-    below 6 MHz with centre σ too small for their real scatter.
+    With ``line_width_spread`` set, every width has the line's FWHM (as the matched filter
+    measured it on the line's clearest dips) as a Gaussian prior, in one pass to
+    ``xtol_sigma`` with σ from the observed information. Before the matched filter gave
+    the line's width, a first pass without the prior had to pool it (the kept fits'
+    median), which at low signal came out narrow (8.7 MHz for 10 MHz lines at 4σ dips)
+    and cost a third of the fit's time.
     """
     model = FitModel() if model is None else model
     freq = np.asarray(freq_hz, dtype=np.float64)
@@ -827,7 +825,14 @@ def fit_line(
         return out.freeze()
     split = guess.n_found == 1
     two_found = guess.n_found[fit_rows] == 2
-    two_pass = model.line_width_spread is not None
+    # The line's width (the matched filter's) as a Gaussian prior on every pixel's width.
+    spread = model.line_width_spread
+    # (none when the width was not measured on separate pairs: it may be merged pairs')
+    prior = (
+        None
+        if spread is None or not guess.fwhm_trusted
+        else (guess.fwhm, 1.0 / (spread * guess.fwhm) ** 2)
+    )
     res = _run(
         layout,
         model=model,
@@ -837,7 +842,7 @@ def fit_line(
         half_hz=half,
         ref_hz=ref,
         fwhm_lo_hz=fwhm_lo,
-        final=not two_pass,
+        width_prior=(0.0, 0.0) if prior is None else prior,
     )
     nd = layout.n_dips
 
@@ -849,28 +854,27 @@ def fit_line(
         )
 
     keep = kept_rows(res)
+    if prior is not None and spread is not None:
+        apart = keep & ~_close(res, layout)  # clearly separate pairs show the width best
+        judged = apart if np.count_nonzero(apart) >= _MIN_POOLED else keep
+        looser = _looser_prior(res, judged, 2 * nd, prior, spread)
+        if looser is not None:  # the widths truly differ along this line: refit
+            first_iter = res["n_iter"]
+            prior = looser
+            res = _run(
+                layout,
+                model=model,
+                x=x,
+                y=y[cand[fit_rows]],
+                p0=res["p"],
+                half_hz=half,
+                ref_hz=ref,
+                fwhm_lo_hz=fwhm_lo,
+                width_prior=prior,
+            )
+            res["n_iter"] = res["n_iter"] + first_iter
+            keep = kept_rows(res)
     ambiguous = np.zeros(keep.shape, dtype=bool)
-    prior = None
-    if two_pass:
-        # Second pass from the first one's solutions, with the line's width as a prior
-        # (none when too few clearly separate pairs were kept to judge its spread).
-        prior = _line_width_prior(
-            res, keep & ~_close(res, layout), 2 * nd, model.line_width_spread, guess.fwhm
-        )
-        first_iter = res["n_iter"]
-        res = _run(
-            layout,
-            model=model,
-            x=x,
-            y=y[cand[fit_rows]],
-            p0=res["p"],
-            half_hz=half,
-            ref_hz=ref,
-            fwhm_lo_hz=fwhm_lo,
-            width_prior=(0.0, 0.0) if prior is None else prior,
-        )
-        res["n_iter"] = res["n_iter"] + first_iter
-        keep = kept_rows(res)
 
     def profiled(rows: np.ndarray) -> dict[str, np.ndarray]:
         """The kept rows' results, weak centres' 1σ from the profile likelihood."""
