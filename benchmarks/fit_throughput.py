@@ -9,9 +9,10 @@ honest one: ``curve_fit`` on the model written out in numpy (no general helper),
 to compute the same values as the project's model. Two sets: separated
 dips (60–150 MHz apart) and overlapping dips (8–15 MHz apart, FWHM 8–12 MHz).
 
-The batched fitter runs with the default ``FitModel()``: a first pass, then a second
-pass with the line's pooled width as a prior and σ from the observed information (here
-the whole set counts as one line).
+The batched fitter runs with the default ``FitModel()``, everything ``fit_line`` does
+included: the line's width by a matched filter, dip detection, one pass with the width as
+a prior and σ from the observed information, the one-dip test of close pairs and the
+profile likelihood of weak centres (here the whole set counts as one line).
 
 Printed per set: spectra/s of each (wall clock, best of several runs, so that load from
 other processes on the machine counts as little as possible), their ratio, the same
