@@ -53,9 +53,8 @@ class DipGuess:
 
     Attributes
     ----------
-    center, contrast, significance : ndarray, shape (n, 2)
-        Dip 0 is the first (largest) dip, dip 1 its partner (NaN when not found);
-        significance is the matched-filter statistic.
+    center, contrast : ndarray, shape (n, 2)
+        Dip 0 is the first (largest) dip, dip 1 its partner (NaN when not found).
     fwhm : float
         The line's width, the same for every dip.
     fwhm_trusted : bool
@@ -68,7 +67,6 @@ class DipGuess:
 
     center: np.ndarray
     contrast: np.ndarray
-    significance: np.ndarray
     fwhm: float
     fwhm_trusted: bool
     baseline: np.ndarray
@@ -330,7 +328,6 @@ def guess_dips(
     return DipGuess(
         center=found.center,
         contrast=contrast,
-        significance=found.significance,
         fwhm=width,
         fwhm_trusted=trusted,
         baseline=found.baseline,

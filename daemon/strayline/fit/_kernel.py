@@ -402,7 +402,6 @@ def _fit_one(
     w_ivar,
     max_iter,
     xtol,
-    observed,
     sigma,
     ws,
     wm,
@@ -513,32 +512,29 @@ def _fit_one(
                 code = STALLED
                 break
     # 1σ from the inverse of the observed information at the solution (Efron & Hinkley
-    # [5]_) when ``observed``, else (or where that is not positive definite) of A; scaled
-    # by s² when unweighted.
+    # [5]_), or of A where that is not positive definite; scaled by s² when unweighted.
     s2 = 1.0 if poisson else obj / n_free_dof
     for i in range(n_par):
         free[i] = a[i, i] > 1e-14 * dmax[i]
-    done = False
-    if observed:
-        _observed_info(
-            x,
-            y,
-            p,
-            n_dips,
-            n_widths,
-            hf_off,
-            hf_w,
-            has_slope,
-            poisson,
-            w0,
-            w_ivar,
-            fresh,
-            jc,
-            work,
-            at,
-            gt,
-        )
-        done = _inverse_diag(at, dmax, free, gt, m, delta, s2, sigma)
+    _observed_info(
+        x,
+        y,
+        p,
+        n_dips,
+        n_widths,
+        hf_off,
+        hf_w,
+        has_slope,
+        poisson,
+        w0,
+        w_ivar,
+        fresh,
+        jc,
+        work,
+        at,
+        gt,
+    )
+    done = _inverse_diag(at, dmax, free, gt, m, delta, s2, sigma)
     if not done and not _inverse_diag(a, dmax, free, gt, m, delta, s2, sigma):
         for i in range(n_par):
             sigma[i] = np.inf
@@ -583,7 +579,6 @@ def lm_batch(
     w_ivar,
     max_iter,
     xtol,
-    observed,
 ):
     """Fit every row of ``y`` in place of ``p``.
 
@@ -611,9 +606,6 @@ def lm_batch(
         Iteration limit per spectrum.
     xtol : float
         Convergence tolerance, in standard deviations of the parameters.
-    observed : int
-        1: σ from the observed information (Efron & Hinkley [5]_); 0: from the expected
-        (Fisher) information A, which costs no extra pass.
 
     Returns
     -------
@@ -660,7 +652,6 @@ def lm_batch(
                 w_ivar,
                 max_iter,
                 xtol,
-                observed,
                 sigma,
                 chi2,
                 objective,
@@ -692,7 +683,6 @@ def _fit_into(
     w_ivar,
     max_iter,
     xtol,
-    observed,
     sigma,
     chi2,
     objective,
@@ -721,7 +711,6 @@ def _fit_into(
         w_ivar,
         max_iter,
         xtol,
-        observed,
         sigma[sidx],
         ws,
         wm,

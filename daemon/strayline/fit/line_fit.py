@@ -372,7 +372,6 @@ def _run(
         float(width_prior[1]),
         int(model.max_iter),
         float(model.xtol_sigma),
-        1,
     )
     at_bound = np.any((p == lo) | (p == hi), axis=1)
     return {
