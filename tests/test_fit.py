@@ -3,13 +3,18 @@ Cramér–Rao bound, the observed information, and calibration at realistic coun
 
 from __future__ import annotations
 
+import math
+
 import numba
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from scipy.optimize import curve_fit
 
 from strayline.field import field_from_fit
 from strayline.fit import FitModel, FitStatus, LineFit, fit_line
+from strayline.fit._kernel import _ln_near1, _y_ln_y2
 from strayline.physics import lorentzian_dips, transition_frequencies_hz
 
 FREQ_HZ = np.linspace(2.77e9, 2.97e9, 201)
@@ -441,3 +446,25 @@ def test_every_fit_model_fits_the_shortest_spectrum_the_contract_accepts() -> No
     ):
         model = FitModel(n_dips=n_dips, shared_width=shared, hyperfine=hyperfine, fit_slope=slope)
         assert fit_line(freq, counts, model).status.shape == (3,)
+
+
+@given(
+    counts=st.lists(
+        st.one_of(st.just(0.0), st.floats(min_value=1e-3, max_value=1e7)), min_size=1, max_size=64
+    )
+)
+@settings(max_examples=200, deadline=None)
+def test_poisson_constant_agrees_with_the_library_logarithm(counts: list[float]) -> None:
+    """The kernel's 2 Σ y ln y (series logarithm, library log outside [ȳ/2, 2ȳ]) equals
+    numpy's to double precision (reference: numpy.log)."""
+    y = np.asarray(counts)
+    pos = y[y > 0.0]
+    expected = 2.0 * float(np.sum(pos * np.log(pos)))
+    scale = 2.0 * float(np.sum(np.abs(pos * np.log(np.maximum(pos, 2.0))))) + 1.0
+    assert abs(_y_ln_y2(y) - expected) <= 1e-12 * scale
+
+
+@given(t=st.floats(min_value=0.5, max_value=2.0))
+def test_series_logarithm_is_exact_to_double_precision(t: float) -> None:
+    """ln t on [1/2, 2] by the atanh series, against math.log (the C library)."""
+    assert abs(_ln_near1(t) - math.log(t)) <= 4e-16

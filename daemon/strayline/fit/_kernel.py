@@ -46,7 +46,10 @@ positive definite (a fit stopped off a minimum) ``A`` is used.
 
 Each pass over the grid is fused: the model, the objective, ``A`` and ``g`` are
 accumulated together, so an accepted trial point already carries its normal
-equations and one iteration costs about one model+Jacobian pass.
+equations and one iteration costs about one model+Jacobian pass. The Poisson objective's
+logarithms come from a short series about the baseline (:func:`_ln_near1`), so that
+the pass vectorises (the library logarithm, a call per sample, cost a third of it);
+σ takes one Cholesky factorisation and the diagonal of its inverse.
 
 Convergence: the Newton decrement ``g·A⁻¹g`` (restricted to the free parameters) is the
 χ² decrease a full Gauss–Newton step would still give; the fit stops when it is below
@@ -94,12 +97,69 @@ _LAMBDA_MIN = 1e-15
 _DIAG_FLOOR = 1e-300
 _PIVOT_MIN = 1e-13  # on the unit-diagonal (scaled) matrix
 _CHUNK = 16  # spectra per scratch allocation in lm_batch
-_TINY = 1e-300  # stands in for y = 0 inside y ln(m/y), which is then 0
+# 1/(2j+1): ln t = 2 atanh(s) = 2 Σ s^(2j+1)/(2j+1), s = (t-1)/(t+1); for t in [1/2, 2]
+# |s| ≤ 1/3, so 18 terms leave a relative error below 1e-18.
+_ATANH = tuple(1.0 / (2 * j + 1) for j in range(18))
+
+
+@njit(cache=True, fastmath=_FASTMATH, inline="always")
+def _ln_near1(t):
+    """ln t for t in [1/2, 2], to double precision, by the atanh series (no library call).
+
+    The degree-17 polynomial in s² is evaluated by Estrin's scheme (pairs, then pairs of
+    pairs, ...), whose dependency chain is four deep instead of Horner's seventeen.
+    """
+    s = (t - 1.0) / (t + 1.0)
+    z = s * s
+    z2 = z * z
+    z4 = z2 * z2
+    z8 = z4 * z4
+    c = _ATANH
+    q0 = (c[0] + c[1] * z) + (c[2] + c[3] * z) * z2
+    q1 = (c[4] + c[5] * z) + (c[6] + c[7] * z) * z2
+    q2 = (c[8] + c[9] * z) + (c[10] + c[11] * z) * z2
+    q3 = (c[12] + c[13] * z) + (c[14] + c[15] * z) * z2
+    q4 = c[16] + c[17] * z
+    acc = (q0 + q1 * z4) + (q2 + q3 * z4) * z8 + q4 * (z8 * z8)
+    return 2.0 * s * acc
 
 
 @njit(cache=True, error_model="numpy", fastmath=_FASTMATH)
-def _pass(x, y, p, n_dips, n_widths, hf_off, hf_w, has_slope, poisson, w0, w_ivar, jc, work, a, g):
+def _y_ln_y2(y):
+    """2 Σ y ln y over the samples with y > 0 (the Poisson deviance's constant part).
+
+    ln y = ln ȳ + ln(y/ȳ) with :func:`_ln_near1` where y/ȳ lies in [1/2, 2] (a vectorised
+    loop); the few samples outside that range take the library logarithm.
+    """
+    n = y.shape[0]
+    ref = 0.0
+    for k in range(n):
+        ref += y[k]
+    ref = max(ref / n, 1.0)
+    ln_ref = math.log(ref)
+    inv_ref = 1.0 / ref
+    acc = 0.0
+    far = 0.0
+    for k in range(n):
+        t = y[k] * inv_ref
+        near = 0.5 <= t <= 2.0
+        far += 0.0 if near else 1.0
+        acc += y[k] * (ln_ref + _ln_near1(t)) if near else 0.0
+    if far > 0.0:
+        for k in range(n):
+            t = y[k] * inv_ref
+            if y[k] > 0.0 and not 0.5 <= t <= 2.0:
+                acc += y[k] * math.log(y[k])
+    return 2.0 * acc
+
+
+@njit(cache=True, error_model="numpy", fastmath=_FASTMATH)
+def _pass(
+    x, y, ylny2, p, n_dips, n_widths, hf_off, hf_w, has_slope, poisson, w0, w_ivar, jc, work, a, g
+):
     """One fused pass: objective, Pearson χ², A = JᵀWJ and g = JᵀW r at ``p``.
+
+    ``ylny2`` is ``_y_ln_y2(y)`` (the Poisson objective's constant; unused otherwise).
 
     The width prior adds ``w_ivar (G - w0)²`` to the objective for each width G (a no-op
     when ``w_ivar`` is 0), with its gradient and curvature; the Pearson χ² excludes it.
@@ -171,7 +231,14 @@ def _pass(x, y, p, n_dips, n_widths, hf_off, hf_w, has_slope, poisson, w0, w_iva
     pearson = 0.0
     if poisson:
         # Branch-free: with m = max(mu, 1) and e = min(mu - 1, 0), the deviance is
-        # 2 (m - y - y ln(m/y)) + 2 (1 - y) e + e² (y ln(m/y) = 0 at y = 0), the weight 1/m.
+        # 2 (m - y - y ln m) + 2 (1 - y) e + e² plus the constant 2 y ln y (``ylny2``), the
+        # weight 1/m. ln m = ln r + ln(m/r) with r = max(|b|, 1): m/r stays within
+        # [1/2, 2] for dips up to half deep, where :func:`_ln_near1` needs no library call
+        # and the loop vectorises; samples outside that range are summed again exactly.
+        ref = max(abs(b), 1.0)
+        ln_ref = math.log(ref)
+        inv_ref = 1.0 / ref
+        far = 0.0
         for k in range(n):
             mu = base[k] * jb[k]
             yk = y[k]
@@ -179,10 +246,20 @@ def _pass(x, y, p, n_dips, n_widths, hf_off, hf_w, has_slope, poisson, w0, w_iva
             mc = max(mu, 1.0)
             e = min(mu - 1.0, 0.0)
             w = 1.0 / mc
-            obj += 2.0 * (mc - yk - yk * math.log(mc / max(yk, _TINY))) + (2.0 * (1.0 - yk) + e) * e
+            t = mc * inv_ref
+            far += 1.0 if (t < 0.5 or t > 2.0) else 0.0
+            obj += 2.0 * (mc - yk - yk * (ln_ref + _ln_near1(t))) + (2.0 * (1.0 - yk) + e) * e
             pearson += r * r * w
             wv[k] = w
             rv[k] = w * r
+        if far > 0.0:
+            obj = 0.0
+            for k in range(n):
+                mu = base[k] * jb[k]
+                mc = max(mu, 1.0)
+                e = min(mu - 1.0, 0.0)
+                obj += 2.0 * (mc - y[k] - y[k] * math.log(mc)) + (2.0 * (1.0 - y[k]) + e) * e
+        obj += ylny2
     else:
         for k in range(n):
             mu = base[k] * jb[k]
@@ -233,7 +310,22 @@ def _observed_info(
     n = x.shape[0]
     if not fresh:
         _pass(
-            x, y, p, n_dips, n_widths, hf_off, hf_w, has_slope, poisson, w0, w_ivar, jc, work, h, g
+            x,
+            y,
+            0.0,
+            p,
+            n_dips,
+            n_widths,
+            hf_off,
+            hf_w,
+            has_slope,
+            poisson,
+            w0,
+            w_ivar,
+            jc,
+            work,
+            h,
+            g,
         )
     ib = 2 * n_dips + n_widths
     b = p[ib]
@@ -328,51 +420,66 @@ def _observed_info(
 
 
 @njit(cache=True, error_model="numpy", fastmath=_FASTMATH)
-def _solve(a, dmax, lam, g, free, m, delta):
-    """Solve (A + λ diag(dmax)) δ = g on the free parameters (held ones get δ = 0).
+def _factor(a, dmax, lam, free, m, sc):
+    """Cholesky factor (lower, in ``m``) of the free block of S (A + λ diag(dmax)) S.
 
-    The system is scaled to a unit diagonal (Jacobi) before its Cholesky factorisation.
-    Returns False when the matrix is not numerically positive definite.
+    The diagonal of ``m`` holds the factor's reciprocal diagonal (the substitutions
+    multiply instead of divide).
+
+    S = diag(``sc``), ``sc = 1/√dmax`` on the free parameters, scales the system to a unit
+    diagonal (Jacobi) before factorisation; held parameters get a unit row. Returns False
+    when the matrix is not numerically positive definite.
     """
-    n = g.shape[0]
+    n = a.shape[0]
     for i in range(n):
-        for j in range(n):
-            if free[i] and free[j]:
-                m[i, j] = a[i, j] / math.sqrt(dmax[i] * dmax[j])
-            else:
-                m[i, j] = 0.0
-        if free[i]:
-            m[i, i] += lam
-            delta[i] = g[i] / math.sqrt(dmax[i])
-        else:
-            m[i, i] = 1.0
-            delta[i] = 0.0
-    # Cholesky (lower), in place
+        sc[i] = 1.0 / math.sqrt(dmax[i]) if free[i] else 0.0
+    for i in range(n):
+        for j in range(i + 1):
+            m[i, j] = a[i, j] * sc[i] * sc[j]
+        m[i, i] = m[i, i] + lam if free[i] else 1.0
     for j in range(n):
         sdiag = m[j, j]
         for k in range(j):
             sdiag -= m[j, k] * m[j, k]
         if not sdiag > _PIVOT_MIN:
             return False
-        ljj = math.sqrt(sdiag)
-        m[j, j] = ljj
+        inv = 1.0 / math.sqrt(sdiag)
+        m[j, j] = inv
         for i in range(j + 1, n):
             sv = m[i, j]
             for k in range(j):
                 sv -= m[i, k] * m[j, k]
-            m[i, j] = sv / ljj
+            m[i, j] = sv * inv
+    return True
+
+
+@njit(cache=True, error_model="numpy", fastmath=_FASTMATH)
+def _substitute(m, sc, g, delta):
+    """δ = S (L Lᵀ)⁻¹ S g with the factor of :func:`_factor` (held parameters get 0)."""
+    n = g.shape[0]
     for i in range(n):
-        sv = delta[i]
+        sv = g[i] * sc[i]
         for k in range(i):
             sv -= m[i, k] * delta[k]
-        delta[i] = sv / m[i, i]
+        delta[i] = sv * m[i, i]
     for i in range(n - 1, -1, -1):
         sv = delta[i]
         for k in range(i + 1, n):
             sv -= m[k, i] * delta[k]
-        delta[i] = sv / m[i, i]
+        delta[i] = sv * m[i, i]
     for i in range(n):
-        delta[i] = delta[i] / math.sqrt(dmax[i]) if free[i] else 0.0
+        delta[i] *= sc[i]
+
+
+@njit(cache=True, error_model="numpy", fastmath=_FASTMATH)
+def _solve(a, dmax, lam, g, free, m, sc, delta):
+    """Solve (A + λ diag(dmax)) δ = g on the free parameters (held ones get δ = 0).
+
+    Returns False when the matrix is not numerically positive definite.
+    """
+    if not _factor(a, dmax, lam, free, m, sc):
+        return False
+    _substitute(m, sc, g, delta)
     return True
 
 
@@ -414,7 +521,7 @@ def _fit_one(
     without the width prior's term.
 
     Scratch space, every element written before it is read: ``ws`` (n_par + 4, n_freq),
-    ``wm`` (3, n_par, n_par), ``wv`` (5, n_par), ``free`` (n_par,) bool.
+    ``wm`` (3, n_par, n_par), ``wv`` (6, n_par), ``free`` (n_par,) bool.
     """
     n_par = p.shape[0]
     n_free_dof = max(x.shape[0] - n_par, 1)
@@ -428,10 +535,27 @@ def _fit_one(
     delta = wv[2]
     pt = wv[3]
     dmax = wv[4]
+    sc = wv[5]
     for i in range(n_par):
         p[i] = min(max(p[i], lo[i]), hi[i])
+    ylny2 = _y_ln_y2(y) if poisson else 0.0
     obj, pear = _pass(
-        x, y, p, n_dips, n_widths, hf_off, hf_w, has_slope, poisson, w0, w_ivar, jc, work, a, g
+        x,
+        y,
+        ylny2,
+        p,
+        n_dips,
+        n_widths,
+        hf_off,
+        hf_w,
+        has_slope,
+        poisson,
+        w0,
+        w_ivar,
+        jc,
+        work,
+        a,
+        g,
     )
     for i in range(n_par):
         dmax[i] = max(a[i, i], _DIAG_FLOOR)
@@ -448,7 +572,7 @@ def _fit_one(
     while it < max_iter:
         it += 1
         _free_set(p, g, a, dmax, lo, hi, free)
-        ok = _solve(a, dmax, lam, g, free, m, delta)
+        ok = _solve(a, dmax, lam, g, free, m, sc, delta)
         rho = -1.0
         objt = 0.0
         peart = 0.0
@@ -464,6 +588,7 @@ def _fit_one(
             objt, peart = _pass(
                 x,
                 y,
+                ylny2,
                 pt,
                 n_dips,
                 n_widths,
@@ -498,7 +623,7 @@ def _fit_one(
             # Newton decrement on the free set at the new point
             _free_set(p, g, a, dmax, lo, hi, free)
             s2 = 1.0 if poisson else max(obj / n_free_dof, s2_floor)
-            if _solve(a, dmax, 0.0, g, free, m, delta):
+            if _solve(a, dmax, 0.0, g, free, m, sc, delta):
                 dec = 0.0
                 for i in range(n_par):
                     dec += g[i] * delta[i]
@@ -534,8 +659,8 @@ def _fit_one(
         at,
         gt,
     )
-    done = _inverse_diag(at, dmax, free, gt, m, delta, s2, sigma)
-    if not done and not _inverse_diag(a, dmax, free, gt, m, delta, s2, sigma):
+    done = _inverse_diag(at, dmax, free, gt, m, sc, s2, sigma)
+    if not done and not _inverse_diag(a, dmax, free, gt, m, sc, s2, sigma):
         for i in range(n_par):
             sigma[i] = np.inf
     for i in range(2 * n_dips, 2 * n_dips + n_widths):
@@ -544,21 +669,32 @@ def _fit_one(
 
 
 @njit(cache=True, error_model="numpy", fastmath=_FASTMATH)
-def _inverse_diag(a, dmax, free, e, m, delta, s2, sigma):
-    """sigma = sqrt(s² diag(a⁻¹)) on the free set (NaN elsewhere); False if not PD."""
+def _inverse_diag(a, dmax, free, e, m, sc, s2, sigma):
+    """sigma = sqrt(s² diag(a⁻¹)) on the free set (NaN elsewhere); False if not PD.
+
+    With S a S = L Lᵀ (:func:`_factor`), (a⁻¹)ⱼⱼ = sⱼ² Σₖ (L⁻¹)ₖⱼ²: column j of L⁻¹ by
+    forward substitution from row j, into ``e``.
+    """
     n_par = a.shape[0]
     for i in range(n_par):
         sigma[i] = np.nan
-    for col in range(n_par):
-        if not free[col]:
+    if not _factor(a, dmax, 0.0, free, m, sc):
+        return False
+    for j in range(n_par):
+        if not free[j]:
             continue
-        for i in range(n_par):
-            e[i] = 1.0 if i == col else 0.0
-        if not _solve(a, dmax, 0.0, e, free, m, delta):
+        e[j] = m[j, j]
+        acc = e[j] * e[j]
+        for i in range(j + 1, n_par):
+            sv = 0.0
+            for k in range(j, i):
+                sv += m[i, k] * e[k]
+            e[i] = -sv * m[i, i]
+            acc += e[i] * e[i]
+        var = acc * sc[j] * sc[j] * s2
+        if not (var > 0.0 and math.isfinite(var)):
             return False
-        if not delta[col] > 0.0:
-            return False
-        sigma[col] = math.sqrt(delta[col] * s2)
+        sigma[j] = math.sqrt(var)
     return True
 
 
@@ -633,7 +769,7 @@ def lm_batch(
     for ci in prange(n_chunk):
         ws = np.empty((n_par + 4, x.shape[0]))
         wm = np.empty((3, n_par, n_par))
-        wv = np.empty((5, n_par))
+        wv = np.empty((6, n_par))
         free = np.empty(n_par, dtype=np.bool_)
         for sidx in range(ci * _CHUNK, min((ci + 1) * _CHUNK, n_spec)):
             _fit_into(
@@ -740,6 +876,7 @@ def fused_pass_batch(x, y, p, n_dips, n_widths, hf_off, hf_w, has_slope, poisson
         obj, _ = _pass(
             x,
             y[sidx],
+            _y_ln_y2(y[sidx]) if poisson else 0.0,
             p[sidx],
             n_dips,
             n_widths,
