@@ -38,6 +38,9 @@ from strayline.fit._refits import (
 )
 from strayline.physics import hyperfine_pattern
 
+#: Tolerance (standard deviations) of the one-dip fits that only test a close pair.
+TEST_XTOL = 0.1
+
 __all__ = ["FitModel", "FitStatus", "LineFit", "fit_line"]
 
 
@@ -342,12 +345,14 @@ def _run(
     fwhm_lo_hz: float,
     width_prior: tuple[float, float] = (0.0, 0.0),
     pin: tuple[np.ndarray, np.ndarray] | None = None,
+    xtol_sigma: float | None = None,
 ) -> dict[str, np.ndarray]:
     """Run the kernel on the rows of ``y``; returns the raw (scaled) results.
 
     ``width_prior`` = (centre, inverse variance) of a Gaussian prior on the widths, scaled
-    units; (0, 0) for none. Converges to ``model.xtol_sigma``; σ from the observed
-    information. ``pin`` = (parameter index, value) per row holds that parameter.
+    units; (0, 0) for none. Converges to ``xtol_sigma`` (default ``model.xtol_sigma``); σ
+    from the observed information. ``pin`` = (parameter index, value) per row holds that
+    parameter.
     """
     lo1, hi1 = _bounds(layout, model, x, half_hz=half_hz, ref_hz=ref_hz, fwhm_lo_hz=fwhm_lo_hz)
     lo = np.ascontiguousarray(np.broadcast_to(lo1, p0.shape))
@@ -371,7 +376,7 @@ def _run(
         float(width_prior[0]),
         float(width_prior[1]),
         int(model.max_iter),
-        float(model.xtol_sigma),
+        float(model.xtol_sigma if xtol_sigma is None else xtol_sigma),
     )
     at_bound = np.any((p == lo) | (p == hi), axis=1)
     return {
@@ -383,6 +388,20 @@ def _run(
         "code": code,
         "at_bound": at_bound,
     }
+
+
+def _merge_rows(
+    mask: np.ndarray, where_true: dict[str, np.ndarray], where_false: dict[str, np.ndarray]
+) -> dict[str, np.ndarray]:
+    """Kernel results of two disjoint row sets put back in the order of ``mask``."""
+    out = {}
+    for k, a in where_true.items():
+        b = where_false[k]
+        merged = np.empty((mask.shape[0], *a.shape[1:]), dtype=np.result_type(a, b))
+        merged[mask] = a
+        merged[~mask] = b
+        out[k] = merged
+    return out
 
 
 def _significance(res: dict[str, np.ndarray], nd: int) -> np.ndarray:
@@ -773,19 +792,38 @@ def fit_line(
     close = keep & _close(res, layout)
     single_at = np.flatnonzero(~keep | close)
     single = model._single
-    res1 = _run(
-        single,
-        model=model,
-        x=x,
-        y=y[cand[fit_rows[single_at]]],
-        p0=_start(single, guess, fit_rows[single_at], split),
-        half_hz=half,
-        ref_hz=ref,
-        fwhm_lo_hz=fwhm_lo,
+
+    def fit_one_dip(at: np.ndarray, p0: np.ndarray, xtol: float | None) -> dict[str, np.ndarray]:
+        return _run(
+            single,
+            model=model,
+            x=x,
+            y=y[cand[fit_rows[at]]],
+            p0=p0,
+            half_hz=half,
+            ref_hz=ref,
+            fwhm_lo_hz=fwhm_lo,
+            xtol_sigma=xtol,
+        )
+
+    # Close pairs are only tested at first: to TEST_XTOL, the one-dip objective is within
+    # TEST_XTOL² of its minimum, far below split_chi2; those that become one dip are then
+    # refined to the model's tolerance.
+    tested = close[single_at]
+    p1 = _start(single, guess, fit_rows[single_at], split)
+    res1 = _merge_rows(
+        tested,
+        fit_one_dip(single_at[tested], p1[tested], TEST_XTOL),
+        fit_one_dip(single_at[~tested], p1[~tested], None),
     )
     # A close pair stays a pair when two dips beat one by the likelihood ratio.
     gain = res1["objective"] - res["objective"][single_at]
     one = ~keep[single_at] | (gain < model.split_chi2)
+    refine = tested & one
+    if np.any(refine):
+        fine = fit_one_dip(single_at[refine], res1["p"][refine], None)
+        for k in res1:
+            res1[k][refine] = fine[k] if k != "n_iter" else res1[k][refine] + fine[k]
     keep[single_at[~one]] = True
     keep[single_at[one]] = False
     kept = cand[fit_rows[keep]]
