@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import os
 import subprocess
 import sys
@@ -22,7 +23,7 @@ from strayline.store._ledger import parse_records
 
 REPO = Path(__file__).resolve().parents[1]
 SCAN = "cli-scan"
-COMMANDS = ("run", "process", "status", "alerts", "check-config", "demo", "products")
+COMMANDS = ("run", "process", "status", "alerts", "why", "check-config", "demo", "products")
 
 
 def _write_config(tmp_path: Path, **sections: Any) -> Path:
@@ -103,7 +104,8 @@ def test_an_unknown_command_is_a_usage_error(capsys: pytest.CaptureFixture[str])
 
 
 def test_the_parser_knows_exactly_the_commands() -> None:
-    """The parser's commands are run, process, status, alerts, check-config and demo."""
+    """The parser's commands are run, process, status, alerts, why, check-config, demo and
+    products."""
     parser = build_parser()
     sub = next(a for a in parser._actions if a.dest == "command")
     assert tuple(sub.choices) == COMMANDS  # type: ignore[arg-type]
@@ -369,4 +371,48 @@ def test_a_copy_of_the_default_config_in_a_clean_folder_works_as_the_readme_says
     assert config.available_profiles() == tuple(shipped)
     assert config.with_profile(shipped[0]).source == REPO / "config" / "profiles" / (
         f"{shipped[0]}.yaml"
+    )
+
+
+def test_why_prints_the_decisions_of_one_line(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """`strayline why SCAN LINE` prints each rule's decision on that line (the last one
+    recorded where a line was judged twice); --rule narrows it, --json prints the
+    records as stored; a line without records is a usage error naming the folder."""
+    from strayline.rules import DecisionLog, RuleDecision, format_decision
+
+    config = _write_config(tmp_path)
+    state_dir = tmp_path / "output" / ".strayline"
+
+    def record(line: int, rule: str, verdict: str, **extra: Any) -> RuleDecision:
+        return RuleDecision(
+            time="2026-03-01T22:00:00.000+00:00",
+            scan_id="scan-a",
+            line_index=line,
+            direction="forward",
+            rule=rule,
+            verdict=verdict,  # type: ignore[arg-type]
+            **extra,
+        )
+
+    first = record(7, "resonance_jump", "quiet")
+    again = record(7, "resonance_jump", "counting", raise_cond=True, count=1, needed=2)
+    other = record(7, "fluorescence_lost", "quiet", seen_value=1.9e5, seen_unit="counts/s")
+    log = DecisionLog(state_dir)
+    log.append([record(6, "resonance_jump", "quiet"), first, other])
+    log.append([again])  # the line judged again after a restart
+    assert main(["why", "--config", str(config), "scan-a", "7"]) == 0
+    out = capsys.readouterr().out
+    assert out == format_decision(other) + "\n" + format_decision(again) + "\n"
+    assert "counting (1 of 2 lines)" in out
+    assert main(["why", "--config", str(config), "scan-a", "7", "--rule", "resonance_jump"]) == 0
+    assert capsys.readouterr().out == format_decision(again) + "\n"
+    assert main(["why", "--config", str(config), "scan-a", "7", "--json", "--rule", "fluo"]) == 2
+    assert "no decisions recorded for scan 'scan-a', line 7 for rule 'fluo'" in (
+        capsys.readouterr().err
+    )
+    assert main(["why", "--config", str(config), "scan-a", "6", "--json"]) == 0
+    assert RuleDecision.from_dict(json.loads(capsys.readouterr().out)) == record(
+        6, "resonance_jump", "quiet"
     )

@@ -280,3 +280,45 @@ def test_a_crash_between_a_lines_commit_and_its_evaluation_loses_no_alert(
     events = read_alert_log(config.paths.alert_log)
     assert [(e.rule, e.state) for e in events] == [("resonance_jump", "raised")]
     assert events[0].message == reference[0].message
+
+
+def test_decision_records_say_why_a_rule_raised_and_why_it_missed(tmp_path: Path) -> None:
+    """Every line leaves one decision record per line rule (strayline why). The record of
+    the line a tip crash was raised on says "raised" with the step statistics that passed;
+    on a touch too small for one line (D +1 MHz over 4 pixels, below the touches the
+    benchmark counts) the records of its lines say the rule did not raise and show the
+    common-mode step seen next to what it needed."""
+    from strayline.rules import format_decision, read_decisions
+
+    crash = tmp_path / "crash"
+    events = _events(crash, _demo("tip_crash@9:10"))
+    (raised,) = [e for e in events if e.state == "raised"]
+    state_dir = _config(crash).paths.state_dir
+    on_line = read_decisions(state_dir, SCAN, line_index=raised.line_index)
+    by_rule = {d.rule: d for d in on_line}
+    assert set(by_rule) == {
+        "fluorescence_lost",
+        "contrast_collapsed",
+        "resonance_jump",
+        "fit_failures_rising",
+        "zfs_drift",
+    }
+    jump = by_rule["resonance_jump"]
+    assert jump.verdict == "raised"
+    assert jump.message == raised.message
+    pl = jump.detail["PL"]
+    assert abs(pl["step"]) >= pl["step_needed"]
+    assert "raised on this line" in format_decision(jump)
+    # every line of the scan was recorded, once per rule
+    assert len(read_decisions(state_dir, SCAN)) == N_LINES * len(by_rule)
+
+    touch = tmp_path / "touch"
+    events = _events(touch, _demo("sample_touched@10:20-10,width_pixels=4,zfs_shift_hz=1e6"))
+    assert not [e for e in events if e.rule == "resonance_jump"]
+    (missed,) = read_decisions(
+        _config(touch).paths.state_dir, SCAN, line_index=10, rule="resonance_jump"
+    )
+    assert missed.verdict in ("quiet", "not_judged")
+    common = missed.detail["mean of the two resonances"]
+    assert common["score"] < common["score_needed"] or abs(common["step"]) < common["step_needed"]
+    assert "mean of the two resonances" in format_decision(missed)

@@ -120,6 +120,18 @@ def build_parser() -> argparse.ArgumentParser:
     alerts.add_argument("--json", action="store_true", help="print the JSON lines as stored")
     alerts.add_argument("-n", "--lines", type=int, default=20, help="how many (default 20)")
 
+    why = sub.add_parser(
+        "why", help="why each rule did or did not raise on one line of a scan (its decisions)"
+    )
+    _config_arg(why)
+    why.add_argument("scan", metavar="SCAN", help="the scan id")
+    why.add_argument("line", type=int, metavar="LINE", help="the line index")
+    why.add_argument(
+        "--direction", choices=("forward", "backward"), help="one trace only (default: both)"
+    )
+    why.add_argument("--rule", metavar="NAME", help="one rule only")
+    why.add_argument("--json", action="store_true", help="print the records as stored")
+
     check = sub.add_parser("check-config", help="validate a config file and its profiles")
     check.add_argument("file", type=Path, metavar="FILE")
 
@@ -305,6 +317,37 @@ def _cmd_alerts(args: argparse.Namespace) -> int:
     )
 
 
+def _cmd_why(args: argparse.Namespace) -> int:
+    from strayline.alerts.log import printable
+    from strayline.rules import format_decision, read_decisions
+
+    config = _load(args)
+    found = read_decisions(
+        config.paths.state_dir,
+        args.scan,
+        line_index=args.line,
+        direction=args.direction,
+        rule=args.rule,
+    )
+    if not found:
+        what = f"line {args.line}" + (f" ({args.direction})" if args.direction else "")
+        rule = f" for rule {args.rule!r}" if args.rule else ""
+        print(
+            printable(
+                f"strayline why: no decisions recorded for scan {args.scan!r}, {what}{rule} "
+                f"(in {config.paths.state_dir / 'decisions'})"
+            ),
+            file=sys.stderr,
+        )
+        return EXIT_USAGE
+    for d in found:
+        if args.json:
+            print(json.dumps(d.to_dict()))
+        else:  # each line made safe for a terminal (a scan id may come from a folder name)
+            print("\n".join(printable(row) for row in format_decision(d).split("\n")))
+    return EXIT_OK
+
+
 def _cmd_demo(args: argparse.Namespace) -> int:
     from strayline.demo import run_demo
 
@@ -358,6 +401,7 @@ _COMMANDS = {
     "check-config": _cmd_check_config,
     "status": _cmd_status,
     "alerts": _cmd_alerts,
+    "why": _cmd_why,
     "demo": _cmd_demo,
     "products": _cmd_products,
 }

@@ -52,7 +52,7 @@ from strayline.pipeline._setup import (
     zfs_rule,
 )
 from strayline.products import make_products, products_dir
-from strayline.rules import MetricsTracker, RuleEngine
+from strayline.rules import DecisionLog, MetricsTracker, RuleEngine
 from strayline.store import ScanStore
 
 __all__ = ["LineOutcome", "LinePipeline", "PipelineStatistics"]
@@ -168,6 +168,7 @@ class LinePipeline:
         self._sink = sink if sink is not None else AlertSink.from_config(config)
         self._owns_sink = sink is None
         self._engine = RuleEngine.restore(config.rule_set, self._state_path, clock=clock)
+        self._decisions = DecisionLog(config.paths.state_dir)
         self._clock = clock
         self._active = (
             active
@@ -301,6 +302,10 @@ class LinePipeline:
         state saved (which records the line as evaluated)."""
         metrics = scan.tracker.update(line, fit, line_field)
         raised = tuple(self._engine.evaluate_line(line.scan_id, metrics, source_sha256=line.sha256))
+        try:
+            self._decisions.append(self._engine.last_decisions())
+        except OSError as error:  # a diagnostic record: never worth losing a line over
+            self._log.warning("decision_record_failed", scan=line.scan_id, error=str(error))
         for event in raised:  # delivered before the state is saved: never a lost alert
             self._sink.deliver(event)
         self._engine.save(self._state_path)

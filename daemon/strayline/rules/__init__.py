@@ -8,6 +8,12 @@ Each committed line's :class:`LineMetrics` (from :class:`MetricsTracker`) is jud
 
 from strayline.rules._load import apply_overrides, default_rules, load_rules, rules_from_data
 from strayline.rules.baseline import RollingBaseline
+from strayline.rules.decision import (
+    DecisionLog,
+    RuleDecision,
+    format_decision,
+    read_decisions,
+)
 from strayline.rules.engine import RuleEngine
 from strayline.rules.metrics import (
     ROW_KEYS,
@@ -43,6 +49,7 @@ __all__ = [
     "AnyRuleSpec",
     "BaselineSpec",
     "ContrastCollapsedSpec",
+    "DecisionLog",
     "FitFailuresRisingSpec",
     "FluorescenceLostSpec",
     "LineMetrics",
@@ -50,6 +57,7 @@ __all__ = [
     "MetricsTracker",
     "ResonanceJumpSpec",
     "RollingBaseline",
+    "RuleDecision",
     "RuleEngine",
     "RuleSpec",
     "RulesConfig",
@@ -61,8 +69,10 @@ __all__ = [
     "comparison_rows",
     "default_rules",
     "field_perp",
+    "format_decision",
     "line_metrics",
     "load_rules",
     "metric_names",
+    "read_decisions",
     "rules_from_data",
 ]

@@ -68,6 +68,12 @@ def _fluorescence_lost(spec: FluorescenceLostSpec) -> LineDetect:
                 f"PL is back to {m.pl_median_per_s / med:.0%} of the running median "
                 f"({med:.3g} counts/s)"
             ),
+            detail={
+                "pl_fraction": ratio,
+                "raise_below": below,
+                "line_pl_fraction": m.pl_median_per_s / med,
+                "clear_above": clear_above,
+            },
         )
 
     return detect
@@ -96,6 +102,13 @@ def _contrast_collapsed(spec: ContrastCollapsedSpec) -> LineDetect:
                 f"({c_st[0]:.1%}) while PL stayed at {pl_ratio:.0%}"
             ),
             clear_message=f"ODMR contrast is back to {c_ratio:.0%} of the running median",
+            detail={
+                "contrast_fraction": c_ratio,
+                "raise_below": spec.contrast_fraction_below,
+                "clear_above": spec.contrast_fraction_clear_above,
+                "pl_fraction": pl_ratio,
+                "pl_normal_above": spec.pl_fraction_normal_above,
+            },
         )
 
     return detect
@@ -117,6 +130,13 @@ def _fit_failures_rising(spec: FitFailuresRisingSpec) -> LineDetect:
             confidence_z=robust_z(v, med, spread, 0.01),
             message=f"{v:.0%} of the line's fits failed (running median {med:.0%})",
             clear_message=f"fit failures are back to {v:.0%} (running median {med:.0%})",
+            detail={
+                "failure_fraction": v,
+                "raise_above": spec.failure_fraction_above,
+                "rise": v - med,
+                "rise_above": spec.rise_fraction_above,
+                "clear_rise_below": spec.rise_fraction_clear_below,
+            },
         )
 
     return detect
@@ -156,6 +176,7 @@ def _zfs_drift(spec: ZfsDriftSpec) -> LineDetect:
                 f"the mean of the two resonances (10th percentile over the line) is back "
                 f"within {abs(delta) / 1e6:.2f} MHz of the scan's first lines"
             ),
+            detail={"drift_hz": delta, "raise_above_hz": raise_hz, "clear_below_hz": clear_hz},
         )
 
     return detect
@@ -212,6 +233,7 @@ def _threshold(spec: ThresholdSpec) -> LineDetect:
             clear_message=f"{spec.metric} = {x:.4g} {unit} is back within limits".replace(
                 "  ", " "
             ),
+            detail={"value": x, "above": above, "below": below},
         )
 
     return detect

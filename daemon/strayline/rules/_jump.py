@@ -97,6 +97,32 @@ class JumpMemory:
         """A line without the raise condition: a pending step is dropped."""
         self.pending = None
 
+    def detail(self) -> dict[str, Any]:
+        """The last line's step per channel (value, robust z, the score of the common
+        mode, and what each needed), and the line of a pending or raised step."""
+        out: dict[str, Any] = {}
+        seen = (self.last or {}).get("seen", {})
+        for ch, unit, what in _CHANNELS:
+            e = seen.get(ch)
+            if e is None:
+                continue
+            row = {"step": e["value"], "unit": unit, "z": e["z"]}
+            if "threshold" in e:
+                row["step_needed"] = e["threshold"]
+            if "score" in e:
+                row["score"] = e["score"]
+                row["steady"] = e["steady"]
+            for key in ("score_needed", "z_needed", "credible"):
+                if key in e:
+                    row[key] = e[key]
+            row["pixels"] = f"{e['range'][0]}–{e['range'][1] - 1}"
+            out[what] = row
+        if self.pending is not None:
+            out["pending_step_line"] = self.pending.get("line")
+        if self.raised is not None:
+            out["raised_step_line"] = self.raised.get("line")
+        return out
+
 
 def _steps(
     spec: ResonanceJumpSpec, m: LineMetrics, base: BaselineView
@@ -131,9 +157,13 @@ def _steps(
             "ratio": abs(v) / thr,
             "median": st[0],
             "spread": st[1],
+            "threshold": thr,
         }
         if score is not None:
             entry["score"], entry["steady"] = score, steady
+            entry["score_needed"] = spec.center_mean_step_t_above
+        else:
+            entry["z_needed"] = spec.z_above
         # Against the reference of the last few lines the range must show the step too
         # (same sign, comparable size), or the "step" only undoes an odd previous line.
         ref = float(getattr(m, f"{ch}_step_ref"))

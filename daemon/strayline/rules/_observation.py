@@ -7,7 +7,7 @@ Shared by the detectors of :mod:`strayline.rules._detectors` and
 from __future__ import annotations
 
 from collections.abc import Callable, Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any, Protocol
 
 from strayline.rules.metrics import LineMetrics
@@ -39,7 +39,8 @@ class Observation:
     ``run_lines``: when set, the number of lines in a row (this one included) the raise
     condition is known to have held, replacing the engine's count: 1 when the lines
     counted so far were about something that did not hold, 2 when this line confirms
-    what the previous one showed.
+    what the previous one showed. ``detail``: the statistics the detector compared, with
+    their thresholds (plain JSON), for the line's decision record.
     """
 
     raise_cond: bool
@@ -54,6 +55,7 @@ class Observation:
     pixel_range: tuple[int, int] | None = None
     clear_message: str = ""
     run_lines: int | None = None
+    detail: Mapping[str, Any] = field(default_factory=dict)
 
 
 class DetectorMemory(Protocol):
@@ -69,6 +71,10 @@ class DetectorMemory(Protocol):
 
     def on_quiet(self) -> None:
         """A line without the raise condition while the rule is not raised."""
+        ...
+
+    def detail(self) -> dict[str, Any]:
+        """What the detector saw on the last line, for its decision record (plain JSON)."""
         ...
 
 
@@ -88,6 +94,9 @@ class NoMemory:
 
     def on_quiet(self) -> None:
         pass
+
+    def detail(self) -> dict[str, Any]:
+        return {}
 
 
 @dataclass(frozen=True)

@@ -39,6 +39,7 @@ from strayline.errors import StoreError
 from strayline.rules._detectors import Observation, build_detector
 from strayline.rules._observation import DetectorMemory
 from strayline.rules.baseline import RollingBaseline
+from strayline.rules.decision import RuleDecision, Verdict
 from strayline.rules.metrics import LineMetrics
 from strayline.rules.spec import (
     AcquisitionStalledSpec,
@@ -172,6 +173,7 @@ class RuleEngine:
         self._clock = clock
         self._scans: dict[str, _ScanState] = {}
         self._latest: str | None = None
+        self._decisions: tuple[RuleDecision, ...] = ()
 
     @property
     def config(self) -> RulesConfig:
@@ -322,13 +324,35 @@ class RuleEngine:
             for name, st in scan.rules.items()
             if st.active or (name in observed and observed[name].raise_cond)
         }
-        for name, seen in observed.items():
+        decisions: list[RuleDecision] = []
+        for name in scan.rule_set.detectors:
             spec, st = scan.rule_set.specs[name], scan.rules[name]
-            explained = holding.intersection(spec.suppressed_by)
+            seen = observed.get(name)
+            if seen is None:
+                decisions.append(
+                    self._decision(
+                        scan_id, metrics, spec, st, seen=None, explained=(), now_s=now_s, event=None
+                    )
+                )
+                continue
+            explained = tuple(sorted(holding.intersection(spec.suppressed_by)))
             obs = replace(seen, raise_cond=False) if explained and not st.active else seen
             ev = self._step(scan_id, spec, st, obs, m=metrics, now_s=now_s)
             if ev is not None:
                 events.append(ev)
+            decisions.append(
+                self._decision(
+                    scan_id,
+                    metrics,
+                    spec,
+                    st,
+                    seen=seen,
+                    explained=explained,
+                    now_s=now_s,
+                    event=ev,
+                )
+            )
+        self._decisions = tuple(decisions)
         if not any_raise_cond and not any(st.active for st in scan.rules.values()):
             scan.baseline.add(metrics.numeric())
         dt = metrics.time_since_previous_s
@@ -341,6 +365,61 @@ class RuleEngine:
         scan.n_lines_planned = metrics.n_lines_planned
         scan.lines_seen += 1
         return events
+
+    def last_decisions(self) -> tuple[RuleDecision, ...]:
+        """The decision record of every line rule on the last line judged
+        (:meth:`evaluate_line`), in the rule set's order."""
+        return self._decisions
+
+    def _decision(
+        self,
+        scan_id: str,
+        m: LineMetrics,
+        spec: RuleSpec,
+        st: _RuleState,
+        *,
+        seen: Observation | None,
+        explained: tuple[str, ...],
+        now_s: float,
+        event: AlertEvent | None,
+    ) -> RuleDecision:
+        """One rule's decision on line ``m``, after the engine's step (``st`` updated)."""
+        verdict: Verdict
+        if event is not None:
+            verdict = "raised" if event.state == "raised" else "cleared"
+        elif st.active:
+            verdict = "clearing" if st.clear_count > 0 else "active"
+        elif seen is None:
+            verdict = "not_judged"
+        elif seen.raise_cond and explained:
+            verdict = "explained"
+        elif seen.raise_cond:
+            verdict = "counting"
+        else:
+            verdict = "quiet"
+        active = st.active or verdict == "cleared"
+        detail = {} if st.memory is None else dict(st.memory.detail())
+        return RuleDecision(
+            time=_iso(now_s),
+            scan_id=scan_id,
+            line_index=m.line_index,
+            direction=m.direction,
+            rule=spec.name,
+            verdict=verdict,
+            raise_cond=bool(seen is not None and seen.raise_cond),
+            clear_cond=bool(seen is not None and seen.clear_cond),
+            count=st.clear_count if active else st.true_count,
+            needed=spec.clear_lines if active else spec.persistence_lines,
+            explained_by=explained,
+            seen_value=None if seen is None else finite_or_none(seen.seen_value),
+            seen_unit="" if seen is None else seen.seen_unit,
+            baseline_value=None if seen is None else finite_or_none(seen.baseline_value),
+            baseline_spread=None if seen is None else finite_or_none(seen.baseline_spread),
+            confidence_z=None if seen is None else finite_or_none(seen.confidence_z),
+            pixel_range=None if seen is None else seen.pixel_range,
+            message="" if seen is None else seen.message,
+            detail={**detail, **(seen.detail if seen is not None else {})},
+        )
 
     def _step(
         self,
