@@ -237,6 +237,7 @@ def _excursion(
         "confirmed": True,
     }
     pending["verdict"] = _jump_verdict(spec, pending, m.line_index)
+    pending["severity"] = spec.reverted_severity
     return pending
 
 
@@ -446,6 +447,7 @@ def _touch_pair(
         "confirmed": True,
     }
     pending["verdict"] = _jump_verdict(spec, pending, m.line_index)
+    pending["severity"] = spec.reverted_severity
     return pending
 
 
@@ -494,6 +496,7 @@ def _confirm(
         pending["departed_at"] = departed
         reverted_at = pending["line"]
     pending["verdict"] = _jump_verdict(spec, pending, reverted_at)
+    pending["severity"] = spec.severity if reverted_at is None else spec.reverted_severity
     pending["reverted_at"] = reverted_at
     return _jump_obs(
         pending, m, raise_cond=True, clear_cond=False, clear_now=False, text=pending["verdict"]
@@ -576,6 +579,7 @@ def _jump_obs(
         raise_cond=raise_cond,
         clear_cond=clear_cond,
         clear_now=clear_now,
+        severity=event.get("severity"),
         seen_value=float(prim["value"]),
         seen_unit=unit,
         baseline_value=float(prim["median"]),

@@ -11,6 +11,7 @@ from dataclasses import dataclass, field
 from typing import Any, Protocol
 
 from strayline.rules.metrics import LineMetrics
+from strayline.rules.spec import Severity
 
 __all__ = [
     "BaselineView",
@@ -39,7 +40,9 @@ class Observation:
     ``run_lines``: when set, the number of lines in a row (this one included) the raise
     condition is known to have held, replacing the engine's count: 1 when the lines
     counted so far were about something that did not hold, 2 when this line confirms
-    what the previous one showed. ``detail``: the statistics the detector compared, with
+    what the previous one showed. ``severity``: the severity of a raise on this
+    observation when it is not the rule's own (a touch that has already reverted is a
+    warning under a critical rule). ``detail``: the statistics the detector compared, with
     their thresholds (plain JSON), for the line's decision record.
     """
 
@@ -55,6 +58,7 @@ class Observation:
     pixel_range: tuple[int, int] | None = None
     clear_message: str = ""
     run_lines: int | None = None
+    severity: Severity | None = None
     detail: Mapping[str, Any] = field(default_factory=dict)
 
 

@@ -220,7 +220,7 @@ class RuleEngine:
             time=_iso(now_s),
             scan_id=scan_id,
             rule=spec.name,
-            severity=spec.severity,
+            severity=spec.severity if obs is None or obs.severity is None else obs.severity,
             state=state,
             line_index=line_index,
             direction=direction,

@@ -124,6 +124,11 @@ class ResonanceJumpSpec(RuleSpec):
     line → sample touched (transient); a common-mode shift alone → contact (strain or
     heating); a roughness change alone → stand-off change.
 
+    Severity: ``severity`` for a step that holds (a crash, a persistent contact: worth
+    stopping the scan for, and a stop request when one is configured);
+    ``reverted_severity`` for one that had already reverted when it was raised (a touch
+    the tip came back from: a note for the morning).
+
     A step that has not reverted stays raised until the scan ends (a crashed tip does not
     mend itself, and the map after it is not comparable with the map before);
     ``clear_when_quiet: true`` clears it instead after ``clear_lines`` lines without a
@@ -162,6 +167,7 @@ class ResonanceJumpSpec(RuleSpec):
     name: str = Field(default="resonance_jump", pattern=r"^[a-z][a-z0-9_]*$")
     kind: Literal["resonance_jump"] = "resonance_jump"
     severity: Severity = "critical"
+    reverted_severity: Severity = "warning"
     persistence_lines: int = Field(default=2, ge=1, le=1000)
     clear_lines: int = Field(default=20, ge=1, le=10000)
     clear_when_quiet: bool = False
