@@ -27,6 +27,7 @@ from strayline.rules.metrics import (
     common_mode_sigma,
     comparison_rows,
     line_metrics,
+    unexplained_failures,
 )
 
 T0 = datetime(2026, 3, 2, 1, 0, tzinfo=UTC)
@@ -122,8 +123,8 @@ def test_levels_are_medians_over_the_line() -> None:
 
 
 def test_failed_fits_are_counted_and_left_out_of_field_levels() -> None:
-    """Failures are status != OK; failed pixels leave the field median and spread, and a
-    fit that found no dip counts as contrast 0."""
+    """No dip and no convergence are failures; failed pixels leave the field median and
+    spread, and a fit that found no dip counts as contrast 0."""
     status = np.zeros(N, np.uint8)
     status[:64] = FitStatus.NO_RESONANCE
     status[64:96] = FitStatus.NOT_CONVERGED
@@ -136,6 +137,26 @@ def test_failed_fits_are_counted_and_left_out_of_field_levels() -> None:
     # spread = normal-consistent MAD, as scipy.stats.median_abs_deviation(scale="normal")
     assert m.field_spread_t == pytest.approx(median_abs_deviation(field[96:], scale="normal"))
     assert m.contrast_median == pytest.approx(0.12)  # 160 of 256 pixels at 0.12, 64 at 0
+
+
+def test_fits_the_sample_explains_are_not_failures() -> None:
+    """Merged dips (small field), ambiguous hyperfine components and one resonance whose
+    partner's mirror image about D lies outside the sweep are not counted as failures;
+    one resonance whose partner should be inside the sweep, and no dip, are."""
+    status = np.zeros(N, np.uint8)
+    status[:20] = FitStatus.MERGED
+    status[20:30] = FitStatus.AMBIGUOUS
+    status[30:40] = FitStatus.ONE_RESONANCE  # partner beyond the sweep
+    status[40:45] = FitStatus.ONE_RESONANCE  # partner inside the sweep: a missed dip
+    status[45:50] = FitStatus.NO_RESONANCE
+    line, fit, field = records(status=status)
+    centres = fit.center_hz.copy()
+    # sweep 2.80-2.95 GHz, D ≈ 2.8702 GHz: a dip at 2.945 GHz has its mirror at 2.795 GHz
+    centres[30:40, 0] = 2.945e9
+    fit = dataclasses.replace(fit, center_hz=centres)
+    failed = unexplained_failures(fit, line.freq_hz, field.center_mean_hz)
+    assert np.flatnonzero(failed).tolist() == list(range(40, 50))
+    assert line_metrics(line, fit, field).fit_failure_fraction == pytest.approx(10 / N)
 
 
 def test_pl_drop_from_pixel_128_is_located() -> None:

@@ -75,6 +75,7 @@ __all__ = [
     "field_perp",
     "line_metrics",
     "metric_names",
+    "unexplained_failures",
 ]
 
 
@@ -95,6 +96,29 @@ _STEP_CHANNELS = ("pl", "center_mean", "field")
 _AUX_STATS = ("median", "p10", "p90", "min", "max", "spread")
 
 
+def unexplained_failures(
+    fit: LineFit, freq_hz: np.ndarray, center_mean_hz: np.ndarray
+) -> np.ndarray:
+    """Pixels whose fit failed for no reason the sample itself gives, shape (n_pixels,).
+
+    Not failures of the measurement: OK; MERGED (|B∥| below resolution, a bound is
+    reported: the field is small there); AMBIGUOUS (two dips fitted, the hyperfine
+    component in doubt); ONE_RESONANCE where the partner's mirror image about D lies
+    outside the sweep (the field moved it out of the window). D is taken as the median
+    (f₋ + f₊)/2 of the line's OK pixels (``center_mean_hz``); the transverse field lifts
+    that by 3(γB⊥)²/(2D) at most a few MHz (PHYSICS.md §2), small against a sweep edge.
+    """
+    status = np.asarray(fit.status)
+    measured = np.isin(status, (FitStatus.OK, FitStatus.MERGED, FitStatus.AMBIGUOUS))
+    one = status == FitStatus.ONE_RESONANCE
+    d_hz = nanmedian(np.where(status == FitStatus.OK, center_mean_hz, np.nan))
+    if np.any(one) and np.isfinite(d_hz):
+        mirror = 2.0 * d_hz - np.asarray(fit.center_hz)[:, 0]
+        outside = (mirror < float(freq_hz[0])) | (mirror > float(freq_hz[-1]))
+        measured |= one & outside
+    return ~measured
+
+
 @dataclass(frozen=True)
 class LineMetrics:
     """Numbers describing one processed line (NaN where a value cannot be computed).
@@ -104,7 +128,8 @@ class LineMetrics:
 
     Levels (over the line's pixels): ``pl_median_per_s`` and ``pl_p10_per_s`` (PL rate =
     fitted baseline / dwell, counts/s), ``contrast_median`` (fraction; pixels whose fit
-    found no dip count as 0), ``fwhm_median_hz``, ``fit_failure_fraction`` (status != OK),
+    found no dip count as 0), ``fwhm_median_hz``, ``fit_failure_fraction`` (fits that
+failed for no reason the sample gives, :func:`unexplained_failures`),
     ``field_median_t`` and ``field_spread_t`` (1.4826·MAD), ``center_mean_median_hz``
     ((f₋+f₊)/2), ``chi2_red_median``, ``field_sigma_median_t`` (fit-reported 1σ),
     ``center_mean_p10_hz`` (10th percentile of (f₋+f₊)/2 over the line's good fits: a
@@ -351,7 +376,11 @@ def line_metrics(
         "pl_p10_per_s": _nanpercentile(pl, 10.0),
         "contrast_median": nanmedian(contrast),
         "fwhm_median_hz": nanmedian(np.where(ok, fwhm, np.nan)),
-        "fit_failure_fraction": float(np.mean(~ok)) if ok.size else float("nan"),
+        "fit_failure_fraction": (
+            float(np.mean(unexplained_failures(fit, line.freq_hz, rows["center_mean_hz"])))
+            if ok.size
+            else float("nan")
+        ),
         "field_median_t": nanmedian(b),
         "field_spread_t": _spread(b),
         "center_mean_median_hz": nanmedian(center_ok),
