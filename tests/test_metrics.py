@@ -18,7 +18,7 @@ from strayline.fit import FitStatus, LineFit
 from strayline.lines import ScanLine
 from strayline.physics import D_ROOM_HZ, GAMMA_NV_HZ_PER_T
 from strayline.rules._step_features import pixel_median
-from strayline.rules._steps import best_level_segment
+from strayline.rules._steps import best_level_segment, robust_scatter
 from strayline.rules.metrics import (
     ROW_KEYS,
     LineMetrics,
@@ -625,3 +625,38 @@ def test_common_mode_noise_uses_the_eigensolver_slope_of_the_line_mean() -> None
     got = common_mode_sigma(now, prev, transverse_ratio=1.0)
     want = np.abs(slope) * np.array([0.0, 1e-5, 1e-4, 0.0])
     assert got == pytest.approx(want, rel=0.02, abs=1.0)
+
+
+@given(
+    values=st.lists(st.floats(-5.0, 5.0), min_size=8, max_size=40),
+    min_pixels=st.integers(2, 6),
+)
+@settings(max_examples=150, deadline=None)
+def test_compiled_segment_search_finds_the_exhaustive_best(
+    values: list[float], min_pixels: int
+) -> None:
+    """The compiled search returns the segment a plain exhaustive loop over every [a, b)
+    finds: the largest |mean in − mean out| / (s √(1/n_in + 1/n_out)) among segments of at
+    least min_pixels that leave at least min_pixels (s the robust pixel-to-pixel scatter),
+    edges or segments that changed more than their surroundings (reference: brute force in
+    plain Python, the statistic of Bevington & Robinson §4.1 with unit weights)."""
+    c = np.asarray(values)
+    n = c.size
+    seg = best_level_segment(c, min_pixels)
+    s = max(float(np.nan_to_num(robust_scatter(c))), 1e-300)
+    best = -1.0
+    for a in range(n):
+        for b in range(a + min_pixels, n + 1):
+            if b - a == n or n - (b - a) < min_pixels:
+                continue
+            inside, outside = c[a:b], np.r_[c[:a], c[b:]]
+            if not (a == 0 or b == n or abs(inside.mean()) >= abs(outside.mean())):
+                continue
+            t = abs(inside.mean() - outside.mean()) / (
+                s * np.sqrt(1 / inside.size + 1 / outside.size)
+            )
+            best = max(best, t)
+    if seg is None or (seg.start, seg.stop) == (0, n):
+        assert best < 6.0 + 1e-9 or not np.isfinite(robust_scatter(c))
+    else:
+        assert seg.score == pytest.approx(best, rel=1e-9, abs=1e-12)

@@ -1,6 +1,7 @@
 """Find the pixel range where one line departs from the previous line of the same direction.
 
-Pure numpy, no I/O. Used by :mod:`strayline.rules.metrics`.
+Pure numerics, no I/O: numpy for the prefix sums, the search over segments compiled
+(numba), O(n²) time and O(n) memory. Used by :mod:`strayline.rules.metrics`.
 
 A tip event (contact, crash, a grain picked up) changes the measurement from one pixel of
 the line onward and stays changed; a touched sample changes a range of pixels for a few
@@ -28,10 +29,11 @@ search found first); for a segment inside the line, the segment itself.
 
 from __future__ import annotations
 
-from collections.abc import Callable
+import math
 from dataclasses import dataclass
 
 import numpy as np
+from numba import njit
 
 from strayline._numbers import MAD_TO_SIGMA
 
@@ -92,38 +94,119 @@ def robust_scatter(values: np.ndarray) -> float:
     return float(MAD_TO_SIGMA * np.median(np.abs(d)) / np.sqrt(2.0))
 
 
-def _valid(a: np.ndarray, b: np.ndarray, n: int, min_pixels: int) -> np.ndarray:
-    length = b - a
-    return (length >= min_pixels) & ((n - length >= min_pixels) | (length == n))
+def _grid(n: int) -> tuple[np.ndarray, int]:
+    """Segment boundaries searched first (at most ``_MAX_GRID``) and their stride."""
+    stride = max(1, -(-n // (_MAX_GRID - 1)))
+    return np.unique(np.r_[np.arange(0, n + 1, stride), n]).astype(np.int64), stride
 
 
-_Scorer = Callable[[np.ndarray, np.ndarray], tuple[np.ndarray, np.ndarray, np.ndarray]]
+def _refined(grid: np.ndarray, k: int, stride: int, n: int) -> np.ndarray:
+    """Every boundary within one stride of ``grid[k]``."""
+    return np.arange(max(grid[k] - stride, 0), min(grid[k] + stride, n) + 1, dtype=np.int64)
 
 
-def _search(n: int, scorer: _Scorer) -> tuple[int, int, float, float, float]:
-    """Arg-max of ``scorer`` over segments ``[a, b)``, ``0 <= a < b <= n``.
+@njit(cache=True)
+def _level_kernel(  # noqa: PLR0917 -- compiled kernels take their arrays positionally
+    a_s, b_s, cs, cc, cw, cn, n, min_pixels, scale
+):
+    """Arg-max over segments [a, b) (a in ``a_s``, b in ``b_s``, both increasing) of the
+    level statistic of :func:`best_level_segment`: the first maximum in (a, b) order, as
+    numpy.argmax over the (a, b) table. Segments that do not count score −1 (and are
+    skipped where they are too short). Returns (i, j, score, mean inside, outside)."""
+    best = -1.0
+    bi = bj = 0
+    best_in = best_out = np.nan
+    j0 = 0
+    for i in range(a_s.shape[0]):
+        a = a_s[i]
+        # segments shorter than min_pixels never count: start at the first long enough
+        while j0 < b_s.shape[0] and b_s[j0] - a < min_pixels:
+            j0 += 1
+        for j in range(j0, b_s.shape[0]):
+            b = b_s[j]
+            n_in = cn[b] - cn[a]
+            w_in = cw[b] - cw[a]
+            w_out = cw[n] - w_in
+            s_in = cs[b] - cs[a]
+            c_in = cc[b] - cc[a]
+            m_in = s_in / w_in if w_in != 0.0 else (np.nan if s_in == 0.0 else np.inf * s_in)
+            if w_out > 0:
+                m_out = (cs[n] - s_in) / w_out
+                inv = 1.0 / w_in + 1.0 / w_out if w_in != 0.0 else np.inf
+                c_out = (cc[n] - c_in) / w_out
+            else:
+                m_out = 0.0
+                inv = 1.0 / w_in if w_in != 0.0 else np.inf
+                c_out = 0.0
+            score = np.nan
+            if w_in != 0.0:
+                score = abs(c_in / w_in - c_out) / (scale * math.sqrt(inv))
+            length = b - a
+            valid = length >= min_pixels and (n - length >= min_pixels or length == n)
+            edge = a == 0 or b == n
+            whole = a == 0 and b == n
+            keep = (
+                valid and not whole and n_in >= min_pixels / 2 and (edge or abs(m_in) >= abs(m_out))
+            )
+            value = score if keep and math.isfinite(score) else -1.0
+            if value > best:
+                best, bi, bj, best_in, best_out = value, i, j, m_in, m_out
+    return bi, bj, best, best_in, best_out
+
+
+@njit(cache=True)
+def _energy_kernel(  # noqa: PLR0917 -- compiled kernels take their arrays positionally
+    a_s, b_s, cn, cp, n, min_pixels, eps
+):
+    """Arg-max over segments of the energy statistic of :func:`best_energy_segment`
+    (as :func:`_level_kernel`). Returns (i, j, score, log ratio inside, outside)."""
+    best = -1.0
+    bi = bj = 0
+    best_in = best_out = np.nan
+    j0 = 0
+    for i in range(a_s.shape[0]):
+        a = a_s[i]
+        # segments shorter than min_pixels never count: start at the first long enough
+        while j0 < b_s.shape[0] and b_s[j0] - a < min_pixels:
+            j0 += 1
+        for j in range(j0, b_s.shape[0]):
+            b = b_s[j]
+            e_in_now = cn[b] - cn[a]
+            e_in_prev = cp[b] - cp[a]
+            num, den = e_in_now + eps, e_in_prev + eps
+            r_in = math.log(num / den) if num > 0.0 and den > 0.0 else np.nan
+            whole = b - a == n
+            if whole:
+                r_out = 0.0
+            else:
+                num, den = cn[n] - e_in_now + eps, cp[n] - e_in_prev + eps
+                r_out = math.log(num / den) if num > 0.0 and den > 0.0 else np.nan
+            edge = a == 0 or b == n
+            score = 0.5 * abs(r_in) if whole else abs(r_in - r_out)
+            length = b - a
+            valid = length >= min_pixels and (n - length >= min_pixels or length == n)
+            keep = valid and math.isfinite(r_in) and (edge or abs(r_in) >= abs(r_out))
+            value = score if keep else -1.0
+            if value > best:
+                best, bi, bj, best_in, best_out = value, i, j, r_in, r_out
+    return bi, bj, best, best_in, best_out
+
+
+def _search(n: int, kernel, *args) -> tuple[int, int, float, float, float]:  # type: ignore[no-untyped-def]
+    """Arg-max of a compiled segment statistic over segments ``[a, b)``, ``0 <= a < b <= n``.
 
     Long lines are searched on a grid of at most ``_MAX_GRID`` boundaries, then refined at
-    full resolution around the best grid cell, so time and memory stay O(_MAX_GRID²).
-    Returns (a, b, score, value inside, value outside).
+    full resolution around the best grid cell, so time stays O(_MAX_GRID²); the compiled
+    kernels keep no table, so memory is O(n). Returns (a, b, score, value inside, value
+    outside).
     """
-    stride = max(1, -(-n // (_MAX_GRID - 1)))
-    grid = np.unique(np.r_[np.arange(0, n + 1, stride), n])
-    a, b = grid[:, None], grid[None, :]
-    score, v_in, v_out = scorer(a, b)
-    i, j = (int(v) for v in np.unravel_index(int(np.argmax(score)), score.shape))
+    grid, stride = _grid(n)
+    i, j, score, v_in, v_out = kernel(grid, grid, *args)
+    a_s, b_s = grid, grid
     if stride > 1:
-        a = np.arange(max(grid[i] - stride, 0), min(grid[i] + stride, n) + 1)[:, None]
-        b = np.arange(max(grid[j] - stride, 0), min(grid[j] + stride, n) + 1)[None, :]
-        score, v_in, v_out = scorer(a, b)
-        i, j = (int(v) for v in np.unravel_index(int(np.argmax(score)), score.shape))
-    return (
-        int(a[i, 0]),
-        int(b[0, j]),
-        float(score[i, j]),
-        float(v_in[i, j]),
-        float(v_out[i, j]),
-    )
+        a_s, b_s = _refined(grid, i, stride, n), _refined(grid, j, stride, n)
+        i, j, score, v_in, v_out = kernel(a_s, b_s, *args)
+    return int(a_s[i]), int(b_s[j]), float(score), float(v_in), float(v_out)
 
 
 def _changed_part(
@@ -189,30 +272,7 @@ def best_level_segment(
     cw = np.concatenate([[0.0], np.cumsum(weight)])
     cn = np.concatenate([[0.0], np.cumsum(ok.astype(float))])
 
-    def scorer(a: np.ndarray, b: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        n_in = cn[b] - cn[a]
-        w_in = cw[b] - cw[a]
-        w_out = cw[n] - w_in
-        s_in = cs[b] - cs[a]
-        c_in = cc[b] - cc[a]
-        with np.errstate(invalid="ignore", divide="ignore"):
-            m_in = s_in / w_in
-            m_out = np.where(w_out > 0, (cs[n] - s_in) / w_out, 0.0)
-            inv = 1.0 / w_in + np.where(w_out > 0, 1.0 / w_out, 0.0)
-            c_out = np.where(w_out > 0, (cc[n] - c_in) / w_out, 0.0)
-            score = np.abs(c_in / w_in - c_out) / (scale * np.sqrt(inv))
-        edge = (a == 0) | (b == n)
-        whole = (a == 0) & (b == n)
-        # A segment inside the line counts only when it, not its surroundings, changed.
-        keep = (
-            _valid(a, b, n, min_pixels)
-            & ~whole
-            & (n_in >= min_pixels / 2)
-            & (edge | (np.abs(m_in) >= np.abs(m_out)))
-        )
-        return np.where(keep & np.isfinite(score), score, -1.0), m_in, m_out
-
-    a, b, score, m_in, m_out = _search(n, scorer)
+    a, b, score, m_in, m_out = _search(n, _level_kernel, cs, cc, cw, cn, n, min_pixels, scale)
     # The whole line is the answer only when no split separates two parts that differ
     # significantly (t >= _SPLIT_T); its own score is the t of its mean against zero.
     w_all = float(cw[n])
@@ -265,26 +325,7 @@ def best_energy_segment(
     cn = np.concatenate([[0.0], np.cumsum(en)])
     cp = np.concatenate([[0.0], np.cumsum(ep)])
 
-    def scorer(a: np.ndarray, b: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        e_in_now = cn[b] - cn[a]
-        e_in_prev = cp[b] - cp[a]
-        with np.errstate(invalid="ignore", divide="ignore"):
-            r_in = np.log((e_in_now + eps) / (e_in_prev + eps))
-            r_out = np.log((cn[n] - e_in_now + eps) / (cp[n] - e_in_prev + eps))
-        whole = b - a == n
-        r_out = np.where(whole, 0.0, r_out)
-        edge = (a == 0) | (b == n)
-        # The whole line at half weight, so that a change from pixel p on is reported as
-        # such rather than diluted over the line; inside segments only when they changed.
-        score = np.where(whole, 0.5 * np.abs(r_in), np.abs(r_in - r_out))
-        keep = (
-            _valid(a, b, n, min_pixels)
-            & np.isfinite(r_in)
-            & (edge | (np.abs(r_in) >= np.abs(r_out)))
-        )
-        return np.where(keep, score, -1.0), r_in, r_out
-
-    a, b, score, r_in, r_out = _search(n, scorer)
+    a, b, score, r_in, r_out = _search(n, _energy_kernel, cn, cp, n, min_pixels, eps)
     if score < 0:
         return None
     return _changed_part(n, a, b, in_value=r_in, out_value=r_out, score=score)
