@@ -3,10 +3,12 @@
 It renders an invented sample (:mod:`demo_stream.scenes`) through an NV tip model
 (:mod:`demo_stream.tip`), injects faults (:mod:`demo_stream.faults`), writes one
 scan-line file per completed line at instrument pace and the exact ground truth
-(:mod:`demo_stream.writer`, :mod:`demo_stream.truth`). Command line:
-``python -m demo_stream --help``.
+(:mod:`demo_stream.writer`, :mod:`demo_stream.truth`). :mod:`demo_stream.family` draws
+whole scans (sample, tip, sweep, slow nuisances, fault) at random from a seed. Command
+line: ``python -m demo_stream --help``.
 """
 
+from demo_stream.family import FAMILY_KINDS, FamilyScan, draw_scan
 from demo_stream.faults import FAULT_KINDS, Fault, fault_to_spec, parse_fault
 from demo_stream.presets import PRESETS, SignalPreset
 from demo_stream.scenes import (
@@ -14,8 +16,11 @@ from demo_stream.scenes import (
     Scene,
     bubble_lattice,
     calibration_stripe,
+    dot_array,
+    film_edge,
     labyrinth,
     make_scene,
+    stripe_domains,
     weak_domains,
     wire,
 )
@@ -24,10 +29,12 @@ from demo_stream.truth import TruthRecord, WrittenFile, load_truth, truth_paths
 from demo_stream.writer import DemoConfig, config_to_dict, frequency_grid_hz, run_scan
 
 __all__ = [
+    "FAMILY_KINDS",
     "FAULT_KINDS",
     "PRESETS",
     "SCENES",
     "DemoConfig",
+    "FamilyScan",
     "Fault",
     "ScanRenderer",
     "Scene",
@@ -39,7 +46,10 @@ __all__ = [
     "bubble_lattice",
     "calibration_stripe",
     "config_to_dict",
+    "dot_array",
+    "draw_scan",
     "fault_to_spec",
+    "film_edge",
     "frequency_grid_hz",
     "labyrinth",
     "load_truth",
@@ -48,6 +58,7 @@ __all__ = [
     "render_field_t",
     "run_scan",
     "scan_axis_m",
+    "stripe_domains",
     "truth_paths",
     "weak_domains",
     "wire",

@@ -58,8 +58,11 @@ FAULT_KINDS: Mapping[str, Mapping[str, float]] = MappingProxyType(
         "contrast_collapsed": MappingProxyType({"contrast_factor": 0.0}),
         # The tip touches the sample: stand-off grows and PL drops, for good.
         "tip_crash": MappingProxyType({"standoff_step_m": 20e-9, "pl_factor": 0.7}),
-        # A local touch: contact strain shifts D (common mode) for a few pixels and lines.
-        "sample_touched": MappingProxyType({"zfs_shift_hz": 4e6, "width_pixels": 6.0}),
+        # A local touch: contact strain shifts D (common mode) for a few pixels and lines,
+        # and may dim the PL there (pl_factor 1: it does not).
+        "sample_touched": MappingProxyType(
+            {"zfs_shift_hz": 4e6, "width_pixels": 6.0, "pl_factor": 1.0}
+        ),
         # The writer pauses before the line: pause_s, or pause_lines x the pace when
         # pause_s is 0.
         "acquisition_stalled": MappingProxyType({"pause_lines": 5.0, "pause_s": 0.0}),

@@ -15,9 +15,15 @@ backward (decreasing x) at the same y. Every per-pixel array here is in **column
 
 Time
 ----
-The PL drift runs on the instrument clock: every (pixel, frequency) sample takes
+The slow nuisances run on the instrument clock: every (pixel, frequency) sample takes
 ``dwell_s``, so a pixel takes ``n_freq * dwell_s`` and the clock counts pixels in
-acquisition order from the start of the scan (the writer's pace does not enter).
+acquisition order from the start of the scan (the writer's pace does not enter). Each
+pixel takes the value at the middle of its sweep of:
+
+- the PL drift: linear (bleaching when negative) plus a sinusoidal focus wobble;
+- a step of the laser power, a relative PL change from a chosen time on;
+- a linear drift of the zero-field splitting D, as a slow temperature drift gives
+  (dD/dT = −74.2 kHz/K near room temperature [4]_).
 
 Not modelled: the drop of PL and contrast in a large off-axis field (Tetienne et al.,
 New J. Phys. 14, 103033 (2012)), photon shot noise beyond Poisson, laser-power noise.
@@ -32,6 +38,8 @@ References
 .. [3] E. A. Lima and B. P. Weiss, "Obtaining vector magnetic field maps from
    single-component measurements of geological samples", J. Geophys. Res. 114,
    B06102 (2009) — the full vector field from one component.
+.. [4] V. M. Acosta et al., "Temperature dependence of the nitrogen-vacancy magnetic
+   resonance in diamond", Phys. Rev. Lett. 104, 070801 (2010).
 """
 
 from __future__ import annotations
@@ -60,6 +68,7 @@ __all__ = [
     "TipModel",
     "TraceTruth",
     "pl_drift_factor",
+    "pl_step_factor",
     "render_field_t",
     "scan_axis_m",
 ]
@@ -105,6 +114,14 @@ class TipModel:
     hyperfine : {None, "14N", "15N"}
         Resolved nitrogen hyperfine structure of each dip (see
         :func:`strayline.physics.spectrum.hyperfine_pattern`).
+    pl_step_fraction : float
+        Relative change of the PL at ``pl_step_at_s`` (a laser-power step; -0.08 = 8 %
+        dimmer from then on); greater than -1.
+    pl_step_at_s : float
+        Instrument time of the step, s.
+    zfs_drift_hz_per_hour : float
+        Linear drift of D, Hz per hour of instrument time (a temperature drift of
+        +1 K/h gives about -74 kHz/h near room temperature).
     """
 
     standoff_m: float = 60e-9
@@ -121,6 +138,9 @@ class TipModel:
     pl_wobble: float = 0.0
     pl_wobble_period_s: float = 1800.0
     hyperfine: str | None = None
+    pl_step_fraction: float = 0.0
+    pl_step_at_s: float = 0.0
+    zfs_drift_hz_per_hour: float = 0.0
 
     def __post_init__(self) -> None:
         positive = {
@@ -143,6 +163,18 @@ class TipModel:
             )
         if not 0.0 <= self.pl_wobble < 1.0:
             raise ValueError(f"tip: pl_wobble must be in [0, 1); found {self.pl_wobble}")
+        for key in ("pl_drift_per_hour", "zfs_drift_hz_per_hour"):
+            value = getattr(self, key)
+            if not np.isfinite(value):
+                raise ValueError(f"tip: {key} must be finite; found {value}")
+        if not (np.isfinite(self.pl_step_fraction) and self.pl_step_fraction > -1.0):
+            raise ValueError(
+                f"tip: pl_step_fraction must be a finite number > -1; found {self.pl_step_fraction}"
+            )
+        if not (np.isfinite(self.pl_step_at_s) and self.pl_step_at_s >= 0.0):
+            raise ValueError(
+                f"tip: pl_step_at_s must be a finite number >= 0; found {self.pl_step_at_s}"
+            )
         if self.bias_field_t is None:
             u = nv_axis(self.nv_theta_rad, self.nv_phi_rad)
             bias = tuple(float(c) for c in _DEFAULT_BIAS_ALONG_NV_T * u)
@@ -157,7 +189,7 @@ class TipModel:
 
     @property
     def zfs_hz(self) -> float:
-        """Zero-field splitting at :attr:`temperature_k`, Hz."""
+        """Zero-field splitting at :attr:`temperature_k`, Hz (at the start of the scan)."""
         return float(zfs_hz(self.temperature_k))
 
 
@@ -246,6 +278,27 @@ def pl_drift_factor(
     return np.maximum(factor, 0.0)
 
 
+def pl_step_factor(t_s: np.ndarray, fraction: float, at_s: float) -> np.ndarray:
+    """Relative PL ``1 + fraction`` from ``at_s`` on, 1 before (a laser-power step) [cp].
+
+    Parameters
+    ----------
+    t_s : ndarray, any shape
+        Instrument time since the start of the scan, s.
+    fraction : float
+        Relative PL change, > -1.
+    at_s : float
+        Time of the step, s.
+
+    Returns
+    -------
+    ndarray, same shape as ``t_s``
+        Factor on the count rate.
+    """
+    t = np.asarray(t_s, dtype=float)
+    return np.where(t >= at_s, 1.0 + fraction, 1.0)
+
+
 @dataclass(frozen=True, eq=False)
 class TraceTruth:
     """The true state of every pixel of one trace, column order (increasing x).
@@ -261,11 +314,11 @@ class TraceTruth:
     f_lo_hz, f_hi_hz : ndarray, shape (n_pixels,)
         Exact ODMR transition frequencies, Hz.
     zfs_hz : ndarray, shape (n_pixels,)
-        Zero-field splitting used (D(T) plus any contact-strain shift), Hz.
+        Zero-field splitting used (D(T), its drift and any contact-strain shift), Hz.
     standoff_m : ndarray, shape (n_pixels,)
         NV height, m.
     pl_rate_cps : ndarray, shape (n_pixels,)
-        Off-resonance count rate, counts/s (drift and faults included).
+        Off-resonance count rate, counts/s (drift, wobble, step and faults included).
     contrast : ndarray, shape (n_pixels,)
         Depth of each dip.
     time_s : ndarray, shape (n_pixels,)
@@ -355,6 +408,7 @@ class ScanRenderer:
         self._bias = np.asarray(tip.bias_field_t, dtype=float)
         self._axis = nv_axis(tip.nv_theta_rad, tip.nv_phi_rad)
         self._zfs_hz = tip.zfs_hz
+        self._zfs_drift_hz_per_s = tip.zfs_drift_hz_per_hour / 3600.0
         self._fields = _FieldCache(scene, self.x_m, self.y_m, oversample)
         self._fields.get(tip.standoff_m)  # the base map, once per scan
 
@@ -362,10 +416,13 @@ class ScanRenderer:
         """The true per-pixel state of one trace (no noise)."""
         n = self.n_pixels
         tip = self.tip
+        seq = line_index * self._passes + (1 if backward else 0)
+        position = np.arange(n)[::-1] if backward else np.arange(n)
+        time_s = (seq * n + position + 0.5) * self._pixel_time_s
         pl = np.ones(n)
         contrast = np.full(n, tip.contrast)
         standoff = np.full(n, tip.standoff_m)
-        zfs = np.full(n, self._zfs_hz)
+        zfs = self._zfs_hz + self._zfs_drift_hz_per_s * time_s
         for fault in self.faults:
             mask = fault_mask(fault, line_index, backward, n)
             if not mask.any():
@@ -386,13 +443,11 @@ class ScanRenderer:
             scene_b[cols] = self._fields.get(float(d))[:, line_index, cols].T
         b = scene_b + self._bias
 
-        seq = line_index * self._passes + (1 if backward else 0)
-        position = np.arange(n)[::-1] if backward else np.arange(n)
-        time_s = (seq * n + position + 0.5) * self._pixel_time_s
         rate = (
             tip.count_rate_cps
             * pl
             * pl_drift_factor(time_s, tip.pl_drift_per_hour, tip.pl_wobble, tip.pl_wobble_period_s)
+            * pl_step_factor(time_s, tip.pl_step_fraction, tip.pl_step_at_s)
         )
         freqs = transition_frequencies_hz(
             to_nv_frame(b, tip.nv_theta_rad, tip.nv_phi_rad), zfs, tip.strain_hz
