@@ -11,7 +11,8 @@ saves with its state, so it survives restarts. The resonance-jump detector, the 
 from __future__ import annotations
 
 import math
-from collections.abc import Callable
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass
 from typing import Any
 
 from strayline.physics import DD_DT_HZ_PER_K
@@ -79,49 +80,106 @@ def _fluorescence_lost(spec: FluorescenceLostSpec) -> LineDetect:
     return detect
 
 
-def _contrast_collapsed(spec: ContrastCollapsedSpec) -> LineDetect:
-    def detect(m: LineMetrics, base: BaselineView, _memory: object) -> Observation | None:
-        c_st, pl_st = base.stats("contrast_median"), base.stats("pl_median_per_s")
+@dataclass
+class RunMemory:
+    """A detector's evidence over the current run of lines that look faulty: the count
+    and the sum of their z scores, combined as Σz/√L (Stouffer's z of L independent
+    lines; e.g. Whitlock, J. Evol. Biol. 18, 1368 (2005)). One line of a weak scan may
+    not be enough to tell; two or three such lines are, each at the same false-alarm
+    rate as one line of a strong scan."""
+
+    lines: int = 0
+    z_sum: float = 0.0
+
+    @classmethod
+    def from_json(cls, data: Mapping[str, Any]) -> RunMemory:
+        return cls(int(data.get("lines", 0)), float(data.get("z_sum", 0.0)))
+
+    def to_json(self) -> dict[str, Any]:
+        return {"lines": self.lines, "z_sum": self.z_sum}
+
+    def add(self, z: float) -> float:
+        """Count one more line of the run; returns the run's combined z."""
+        self.lines += 1
+        self.z_sum += z
+        return self.z_sum / math.sqrt(self.lines)
+
+    def reset(self) -> None:
+        self.lines, self.z_sum = 0, 0.0
+
+    def on_raised(self) -> None:
+        self.reset()
+
+    def on_quiet(self) -> None:
+        pass  # the detector itself resets the run on a line that does not look faulty
+
+    def detail(self) -> dict[str, Any]:
+        return {"run_lines": self.lines}
+
+
+def _contrast_collapsed(spec: ContrastCollapsedSpec) -> Detector:
+    def detect(m: LineMetrics, base: BaselineView, memory: RunMemory) -> Observation | None:
+        c_st, pl_st = base.stats("contrast_mean"), base.stats("pl_median_per_s")
         if c_st is None or pl_st is None or c_st[0] <= 0 or pl_st[0] <= 0:
             return None
-        if not math.isfinite(m.contrast_median):
+        if not math.isfinite(m.contrast_mean):
             return None
-        c_ratio = m.contrast_median / c_st[0]
+        c_ratio = m.contrast_mean / c_st[0]
         pl_ratio = m.pl_median_per_s / pl_st[0]
+        z_line = robust_z(m.contrast_mean, c_st[0], c_st[1], 1e-3 * c_st[0])
+        low = c_ratio < spec.contrast_fraction_below and pl_ratio >= spec.pl_fraction_normal_above
+        if low:
+            z = memory.add(z_line)
+        else:
+            memory.reset()
+            z = z_line
         return Observation(
-            raise_cond=c_ratio < spec.contrast_fraction_below
-            and pl_ratio >= spec.pl_fraction_normal_above,
+            raise_cond=low and z < spec.contrast_z_below,
             clear_cond=c_ratio > spec.contrast_fraction_clear_above,
-            seen_value=m.contrast_median,
+            seen_value=m.contrast_mean,
             seen_unit="fraction",
             baseline_value=c_st[0],
             baseline_spread=c_st[1],
-            confidence_z=robust_z(m.contrast_median, c_st[0], c_st[1], 1e-3 * c_st[0]),
+            confidence_z=z,
             message=(
-                f"ODMR contrast fell to {c_ratio:.0%} of the running median "
+                f"ODMR contrast (line mean) fell to {c_ratio:.0%} of the running median "
                 f"({c_st[0]:.1%}) while PL stayed at {pl_ratio:.0%}"
             ),
             clear_message=f"ODMR contrast is back to {c_ratio:.0%} of the running median",
+            run_lines=memory.lines if low else None,
             detail={
                 "contrast_fraction": c_ratio,
                 "raise_below": spec.contrast_fraction_below,
+                "z": z_line,
+                "run_z": z,
+                "z_below": spec.contrast_z_below,
                 "clear_above": spec.contrast_fraction_clear_above,
                 "pl_fraction": pl_ratio,
                 "pl_normal_above": spec.pl_fraction_normal_above,
             },
         )
 
-    return detect
+    return Detector(detect, RunMemory.from_json)
 
 
-def _fit_failures_rising(spec: FitFailuresRisingSpec) -> LineDetect:
-    def detect(m: LineMetrics, base: BaselineView, _memory: object) -> Observation | None:
+def _fit_failures_rising(spec: FitFailuresRisingSpec) -> Detector:
+    def detect(m: LineMetrics, base: BaselineView, memory: RunMemory) -> Observation | None:
         st = base.stats("fit_failure_fraction")
         if st is None or not math.isfinite(m.fit_failure_fraction):
             return None
         v, (med, spread) = m.fit_failure_fraction, st
+        n = max(m.n_pixels, 1)
+        p0 = min(max(med, 1.0 / n), 1.0 - 1.0 / n)
+        z_binomial = (v - med) / math.sqrt(p0 * (1.0 - p0) / n)
+        high = v >= spec.failure_fraction_above and v - med >= spec.rise_fraction_above
+        if high:
+            z_run = memory.add(z_binomial)
+        else:
+            memory.reset()
+            z_run = z_binomial
         return Observation(
-            raise_cond=v >= spec.failure_fraction_above and v - med >= spec.rise_fraction_above,
+            raise_cond=high and z_run > spec.binomial_z_above,
+            run_lines=memory.lines if high else None,
             clear_cond=v - med < spec.rise_fraction_clear_below,
             seen_value=v,
             seen_unit="fraction",
@@ -135,11 +193,14 @@ def _fit_failures_rising(spec: FitFailuresRisingSpec) -> LineDetect:
                 "raise_above": spec.failure_fraction_above,
                 "rise": v - med,
                 "rise_above": spec.rise_fraction_above,
+                "binomial_z": z_binomial,
+                "run_binomial_z": z_run,
+                "binomial_z_above": spec.binomial_z_above,
                 "clear_rise_below": spec.rise_fraction_clear_below,
             },
         )
 
-    return detect
+    return Detector(detect, RunMemory.from_json)
 
 
 def _zfs_drift(spec: ZfsDriftSpec) -> LineDetect:
@@ -241,8 +302,8 @@ def _threshold(spec: ThresholdSpec) -> LineDetect:
 
 _BUILDERS: dict[str, Callable[[Any], Detector]] = {
     "fluorescence_lost": lambda spec: Detector(_fluorescence_lost(spec)),
-    "contrast_collapsed": lambda spec: Detector(_contrast_collapsed(spec)),
-    "fit_failures_rising": lambda spec: Detector(_fit_failures_rising(spec)),
+    "contrast_collapsed": _contrast_collapsed,
+    "fit_failures_rising": _fit_failures_rising,
     "zfs_drift": lambda spec: Detector(_zfs_drift(spec)),
     "threshold": lambda spec: Detector(_threshold(spec)),
     "resonance_jump": resonance_jump_detector,

@@ -337,6 +337,17 @@ def _jump_verdict(
     return f"stand-off change suspected: field roughness changed by {change:+.0%}"
 
 
+def _severity(spec: ResonanceJumpSpec, pending: Mapping[str, Any], reverted_at: int | None) -> str:
+    """The severity of a raise on ``pending``: ``reverted_severity`` when it had already
+    reverted, ``roughness_only_severity`` when only the field roughness stepped (no PL
+    drop, no common-mode shift: the sample's own texture does that too), else the rule's."""
+    if reverted_at is not None:
+        return spec.reverted_severity
+    if set(pending["channels"]) == {"field"}:
+        return spec.roughness_only_severity
+    return spec.severity
+
+
 def _new_pending(
     spec: ResonanceJumpSpec,
     m: LineMetrics,
@@ -496,7 +507,7 @@ def _confirm(
         pending["departed_at"] = departed
         reverted_at = pending["line"]
     pending["verdict"] = _jump_verdict(spec, pending, reverted_at)
-    pending["severity"] = spec.severity if reverted_at is None else spec.reverted_severity
+    pending["severity"] = _severity(spec, pending, reverted_at)
     pending["reverted_at"] = reverted_at
     return _jump_obs(
         pending, m, raise_cond=True, clear_cond=False, clear_now=False, text=pending["verdict"]

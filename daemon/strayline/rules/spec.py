@@ -83,7 +83,15 @@ class FluorescenceLostSpec(RuleSpec):
 
 
 class ContrastCollapsedSpec(RuleSpec):
-    """ODMR contrast below a fraction of the running median while PL stays normal."""
+    """The line's mean ODMR contrast (undetected dips as 0) below a fraction of its
+    running median, by more than its own noise, while PL stays normal.
+
+    ``contrast_z_below``: the evidence must pass this too: the robust z of the line's
+    mean contrast against the running median and spread of the same mean over the scan's
+    good lines, combined over the run of low lines as Σz/√L (on a weak scan where few dips
+    are detected, one line's mean scatters by tens of per cent: a collapse then takes two
+    or three lines to tell from that scatter, a strong scan's one).
+    """
 
     name: str = Field(default="contrast_collapsed", pattern=r"^[a-z][a-z0-9_]*$")
     kind: Literal["contrast_collapsed"] = "contrast_collapsed"
@@ -93,6 +101,7 @@ class ContrastCollapsedSpec(RuleSpec):
     suppressed_by: tuple[str, ...] = ("fluorescence_lost",)
     contrast_fraction_below: float = Field(default=0.5, gt=0.0, lt=1.0)
     contrast_fraction_clear_above: float = Field(default=0.75, gt=0.0, le=2.0)
+    contrast_z_below: float = Field(default=-4.0, lt=0.0)
     pl_fraction_normal_above: float = Field(default=0.8, gt=0.0, le=2.0)
     advice: str = (
         "PL is normal, so the NV is still there: check the microwave chain (source "
@@ -127,7 +136,9 @@ class ResonanceJumpSpec(RuleSpec):
     Severity: ``severity`` for a step that holds (a crash, a persistent contact: worth
     stopping the scan for, and a stop request when one is configured);
     ``reverted_severity`` for one that had already reverted when it was raised (a touch
-    the tip came back from: a note for the morning).
+    the tip came back from: a note for the morning); ``roughness_only_severity`` for a
+    stand-off change seen in the field roughness alone, without a PL drop or a
+    common-mode shift (walls coming into view along the fast axis do that too).
 
     A step that has not reverted stays raised until the scan ends (a crashed tip does not
     mend itself, and the map after it is not comparable with the map before);
@@ -168,6 +179,7 @@ class ResonanceJumpSpec(RuleSpec):
     kind: Literal["resonance_jump"] = "resonance_jump"
     severity: Severity = "critical"
     reverted_severity: Severity = "warning"
+    roughness_only_severity: Severity = "warning"
     persistence_lines: int = Field(default=2, ge=1, le=1000)
     clear_lines: int = Field(default=20, ge=1, le=10000)
     clear_when_quiet: bool = False
@@ -188,7 +200,14 @@ class ResonanceJumpSpec(RuleSpec):
 
 
 class FitFailuresRisingSpec(RuleSpec):
-    """Fraction of failed fits above an absolute floor and above the baseline."""
+    """Fraction of failed fits above an absolute floor and above the baseline.
+
+    ``binomial_z_above``: the rise must also be significant for lines of n pixels:
+    ``z = (f − f₀) / √(f₀ (1 − f₀) / n)`` per line (f₀ the running median fraction, floored
+    at 1/n; the normal approximation to the binomial count of failures), combined over
+    the run of high lines as Σz/√L, above this. On a weak scan where half the fits fail
+    anyway, one line of 64 pixels scatters by ±6 %.
+    """
 
     name: str = Field(default="fit_failures_rising", pattern=r"^[a-z][a-z0-9_]*$")
     kind: Literal["fit_failures_rising"] = "fit_failures_rising"
@@ -198,6 +217,7 @@ class FitFailuresRisingSpec(RuleSpec):
     suppressed_by: tuple[str, ...] = ("fluorescence_lost", "contrast_collapsed")
     failure_fraction_above: float = Field(default=0.2, ge=0.0, le=1.0)
     rise_fraction_above: float = Field(default=0.15, ge=0.0, le=1.0)
+    binomial_z_above: float = Field(default=4.0, ge=0.0)
     rise_fraction_clear_below: float = Field(default=0.05, ge=0.0, le=1.0)
     advice: str = (
         "check the spectra of the failing pixels: lines merging (field too small), "
