@@ -67,6 +67,7 @@ from datetime import UTC, datetime, timedelta
 from pathlib import Path
 from typing import Any
 
+import numba
 import numpy as np
 
 import demo_stream as ds
@@ -218,6 +219,8 @@ class Outcome:
     stall_due_s: float = math.nan
     elapsed_s: float = 0.0
     error: str = ""
+    #: per judged line, the statistics of :data:`LINE_STATS` (from the decision records)
+    line_stats: tuple[dict[str, float], ...] = ()
 
 
 def _family_scan(case: Case) -> ds.FamilyScan:
@@ -264,6 +267,42 @@ def _config(folder: Path) -> Config:
     return config_from_mapping(data, base_dir=folder)
 
 
+#: The statistics each rule compares with its thresholds, read from the lines' decision
+#: records (strayline.rules.decision): name -> (rule, path into the record's detail).
+LINE_STATS: dict[str, tuple[str, tuple[str, ...]]] = {
+    "pl_fraction": ("fluorescence_lost", ("pl_fraction",)),
+    "contrast_fraction": ("contrast_collapsed", ("contrast_fraction",)),
+    "contrast_z": ("contrast_collapsed", ("z",)),
+    "failure_rise": ("fit_failures_rising", ("rise",)),
+    "failure_binomial_z": ("fit_failures_rising", ("binomial_z",)),
+    "jump_pl_step": ("resonance_jump", ("PL", "step")),
+    "jump_pl_z": ("resonance_jump", ("PL", "z")),
+    "jump_cm_step_hz": ("resonance_jump", ("mean of the two resonances", "step")),
+    "jump_cm_score": ("resonance_jump", ("mean of the two resonances", "score")),
+    "jump_rough_step": ("resonance_jump", ("field roughness", "step")),
+    "jump_rough_z": ("resonance_jump", ("field roughness", "z")),
+    "zfs_drift_hz": ("zfs_drift", ("drift_hz",)),
+}
+
+
+def _line_stats(state_dir: Path) -> tuple[dict[str, float], ...]:
+    """Per judged line (line index under "line"), the values of :data:`LINE_STATS`."""
+    from strayline.rules import read_decisions
+
+    by_line: dict[int, dict[str, float]] = {}
+    for d in read_decisions(state_dir, SCAN_ID):
+        row = by_line.setdefault(d.line_index, {"line": float(d.line_index)})
+        for name, (rule, path) in LINE_STATS.items():
+            if d.rule != rule:
+                continue
+            value: Any = d.detail
+            for key in path:
+                value = value.get(key) if isinstance(value, dict) else None
+            if isinstance(value, int | float) and math.isfinite(value):
+                row[name] = float(value)
+    return tuple(by_line[k] for k in sorted(by_line))
+
+
 def run_case(case: Case, workdir: str | None) -> Outcome:
     """Write the case's scan, run it through the pipeline, return its alert events."""
     t0 = time.perf_counter()
@@ -277,9 +316,10 @@ def run_case(case: Case, workdir: str | None) -> Outcome:
                 return _run_stall(case, demo, config, folder, t0)
             process_folder(config, folder / "incoming")
             events = tuple(e.to_dict() for e in read_alert_log(config.paths.alert_log))
+            stats = _line_stats(config.paths.state_dir)
         except Exception as exc:  # reported in the table, never hidden
             return Outcome(case, (), error=f"{type(exc).__name__}: {exc}")
-    return Outcome(case, events, elapsed_s=time.perf_counter() - t0)
+    return Outcome(case, events, elapsed_s=time.perf_counter() - t0, line_stats=stats)
 
 
 class _FakeClock:
@@ -512,8 +552,8 @@ def score_clean(outcome: Outcome, tally: Tally) -> None:
         tally.false_alarms += 1
         tally.false_critical += e["severity"] == "critical"
         tally.notes.append(
-            f"{case.scene} seed {case.seed} clean: {e['severity']} {e['rule']} at line "
-            f"{e['line_index']}: {e['message'][:110]}"
+            f"{case.setup.label} {case.scene} seed {case.seed} clean: {e['severity']} "
+            f"{e['rule']} at line {e['line_index']}: {e['message'][:110]}"
         )
 
 
@@ -596,6 +636,85 @@ def report(outcomes: list[Outcome], verbose: bool) -> None:
             print(f"  ... {len(notes) - 60} more (--verbose)")
 
 
+#: The direction in which each statistic raises (+1: large values, -1: small ones).
+STAT_SIDE = {
+    "pl_fraction": -1,
+    "contrast_fraction": -1,
+    "contrast_z": -1,
+    "failure_rise": 1,
+    "failure_binomial_z": 1,
+    "jump_pl_step": -1,
+    "jump_pl_z": -1,
+    "jump_cm_step_hz": 0,
+    "jump_cm_score": 1,
+    "jump_rough_step": 0,
+    "jump_rough_z": 0,
+    "zfs_drift_hz": 0,
+}
+
+
+def report_stats(outcomes: list[Outcome], rate_per_scan: float) -> None:
+    """Per profile, the distribution of each rule statistic over the lines of the clean
+    scans (the null a threshold is set against), the threshold that ``rate_per_scan``
+    false raises per scan would allow if one line past it raised (the (1 − α) quantile,
+    α = rate / lines per scan, of the raising side; |value| for two-sided ones), and the
+    statistic's median on the fault scans' fault line and the line after it (what a
+    threshold must stay below to catch them)."""
+    labels = [s.label for s in SETUPS if s.label in {o.case.setup.label for o in outcomes}]
+    for label in labels:
+        clean = [
+            row
+            for o in outcomes
+            if o.case.setup.label == label and o.case.fault is None
+            for row in o.line_stats
+        ]
+        n_scans = sum(1 for o in outcomes if o.case.setup.label == label and o.case.fault is None)
+        alpha = rate_per_scan * n_scans / max(len(clean), 1)
+        print(
+            f"{label}: statistics over {len(clean)} lines of {n_scans} clean scans; "
+            f"at {rate_per_scan:g} per scan, α = {alpha:.2g} per line "
+            f"({alpha * len(clean):.1f} lines past the threshold)"
+        )
+        print(
+            f"  {'statistic':<20} {'n':>6} {'p0.1':>10} {'p1':>10} {'p50':>10} {'p99':>10} "
+            f"{'p99.9':>10} {'min':>10} {'max':>10} {'at rate':>10}"
+        )
+        for name in LINE_STATS:
+            v = np.array([row[name] for row in clean if name in row])
+            if v.size == 0:
+                continue
+            q = np.quantile(v, [0.001, 0.01, 0.5, 0.99, 0.999])
+            side = STAT_SIDE[name]
+            tail = side * v if side else np.abs(v)
+            at_rate = (
+                side * float(np.quantile(tail, 1.0 - alpha))
+                if side
+                else float(np.quantile(tail, 1.0 - alpha))
+            )
+            print(
+                f"  {name:<20} {v.size:>6} "
+                + " ".join(f"{x:>10.4g}" for x in (*q, v.min(), v.max(), at_rate))
+            )
+        for kind in PIXEL_FAULTS:
+            at: dict[str, list[float]] = defaultdict(list)
+            for o in outcomes:
+                if o.case.setup.label != label or o.case.fault is None:
+                    continue
+                fault = ds.parse_fault(o.case.fault)
+                if fault.kind != kind:
+                    continue
+                for row in o.line_stats:
+                    if fault.start_line <= row["line"] <= fault.start_line + 1:
+                        for name, value in row.items():
+                            at[name].append(value)
+            if at:
+                shown = ", ".join(
+                    f"{n} {statistics.median(at[n]):.3g}" for n in LINE_STATS if n in at
+                )
+                print(f"  at {kind} (median over the fault line and the next): {shown}")
+        print()
+
+
 # -- main --------------------------------------------------------------------------------
 
 
@@ -607,6 +726,9 @@ def _quiet() -> None:
 
 def _worker(args: tuple[Case, str | None]) -> Outcome:
     _quiet()
+    # One compiled thread per worker process: the workers already fill the cores, and
+    # more threads than cores spin-wait (system time) instead of working.
+    numba.set_num_threads(1)
     return run_case(*args)
 
 
@@ -621,6 +743,18 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--profile", action="append", default=None, help="only these profiles")
     p.add_argument("--fault", action="append", default=None, help="only these fault kinds")
     p.add_argument("--verbose", action="store_true", help="list every miss and false alarm")
+    p.add_argument(
+        "--stats",
+        action="store_true",
+        help="also print each rule statistic's distribution over clean lines (for "
+        "setting thresholds from a false-alarm rate: use with --family tune)",
+    )
+    p.add_argument(
+        "--rate-per-scan",
+        type=float,
+        default=0.02,
+        help="false raises per clean scan the --stats thresholds are read at (default 0.02)",
+    )
     p.add_argument(
         "--family",
         choices=tuple(SPLIT_SEEDS),
@@ -660,6 +794,9 @@ def main(argv: list[str] | None = None) -> int:
     elapsed = time.perf_counter() - t0
     print(f"done in {elapsed:.0f} s ({elapsed / max(len(cases), 1):.2f} s per scan)\n")
     report(outcomes, args.verbose)
+    if args.stats:
+        print()
+        report_stats(outcomes, args.rate_per_scan)
     return 0
 
 

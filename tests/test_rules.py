@@ -967,21 +967,22 @@ def test_a_pair_needs_a_departure_that_was_one(departure: dict[str, object]) -> 
 
 
 def test_a_roughness_step_that_comes_and_goes_is_not_raised() -> None:
-    """Field roughness that halves from pixel 128 on line 12 and is back on line 13 (held
-    about 0) raises nothing: a stand-off change does not spring back within a line, and a
-    touch shows in the common mode (PHYSICS.md §7; common practice)."""
+    """Field roughness that falls to a twelfth (ln ratio −2.5, past the built-in 2.1) from
+    pixel 128 on line 12 and is back on line 13 (held about 0) raises nothing: a
+    stand-off change does not spring back within a line, and a touch shows in the common
+    mode (PHYSICS.md §7; common practice). Held on line 13, it is raised."""
     step = {
-        "field_step": -1.5,
+        "field_step": -2.5,
         "field_step_range": (128, 256),
         "field_step_first_pixel": 128,
-        "field_step_ref": -1.4,
+        "field_step_ref": -2.4,
     }
     assert _jump_events({"field_step_held": 0.1}, line_12=step) == []
     # Without a measurement against the lines before the step (a gap in the history),
     # a roughness step back on line 13 does not make it a touch either.
-    back = {"field_step_held": float("nan"), **step, "field_step": 1.2, "field_step_ref": 0.1}
+    back = {"field_step_held": float("nan"), **step, "field_step": 2.2, "field_step_ref": 0.1}
     assert _jump_events(back, line_12=step) == []
-    held = _jump_events({"field_step_held": -1.3}, line_12=step)
+    held = _jump_events({"field_step_held": -2.2}, line_12=step)
     assert [(e.state, e.line_index) for e in held] == [("raised", 13)]
     assert held[0].message.startswith("stand-off change suspected")
 

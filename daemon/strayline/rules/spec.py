@@ -184,7 +184,7 @@ class ResonanceJumpSpec(RuleSpec):
     clear_lines: int = Field(default=20, ge=1, le=10000)
     clear_when_quiet: bool = False
     suppressed_by: tuple[str, ...] = ("fluorescence_lost", "contrast_collapsed")
-    field_step_log_ratio_above: float = Field(default=1.0, gt=0.0)
+    field_step_log_ratio_above: float = Field(default=2.1, gt=0.0)
     pl_step_fraction_above: float = Field(default=0.1, gt=0.0, lt=1.0)
     center_mean_step_hz_above: float = Field(default=1.0e6, gt=0.0)
     center_mean_step_t_above: float = Field(default=6.0, gt=0.0)
