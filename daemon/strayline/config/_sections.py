@@ -201,6 +201,7 @@ class FitSection(Section):
     max_iter: Annotated[int, Field(ge=1)] = 100
     min_counts: Annotated[float, Field(ge=0)] = 20.0
     weighting: Literal["poisson", "unweighted"] = "poisson"
+    transverse_field_max_mt: Annotated[float, Field(ge=0, le=100)] = 0.0
 
     @model_validator(mode="after")
     def _check_bounds(self) -> FitSection:

@@ -36,7 +36,7 @@ from strayline.fit._refits import (
     looser_prior,
     profile_sigma,
 )
-from strayline.physics import hyperfine_pattern
+from strayline.physics import GAMMA_NV_HZ_PER_T, hyperfine_pattern
 
 #: Tolerance (standard deviations) of the one-dip fits that only test a close pair.
 TEST_XTOL = 0.1
@@ -156,6 +156,11 @@ class FitModel:
         How far the midpoint (f₋ + f₊)/2 of a pair may lie from the pair centre. It moves
         by 3(γB⊥)²/(2D): +3.7 MHz at B⊥ = 3 mT, +10 MHz at 5 mT (PHYSICS.md §2), plus
         temperature (−74 kHz/K) and strain.
+    transverse_field_max_t : float
+        Largest field transverse to the NV axis the sample may have, T: the midpoint may
+        lie a further 3(γB⊥)²/(2D) *above* the pair centre (the transverse field only
+        raises it; PHYSICS.md §2). 0 adds nothing (fields of a few mT are within
+        ``pair_tolerance_hz``); strong-field samples need it (+41 MHz at 10 mT).
     line_width_spread : float or None
         Relative 1σ by which the true FWHM may differ between the pixels of one line. The
         linewidth is set by the NV and the microwave and laser powers, which a line does
@@ -220,6 +225,7 @@ class FitModel:
     pair_center_hz: float | None = None
     merge_radius_hz: float = 20e6
     pair_tolerance_hz: float = 10e6
+    transverse_field_max_t: float = 0.0
     line_width_spread: float | None = 0.1
     _main: _Layout = field(init=False, repr=False, compare=False)
     _single: _Layout = field(init=False, repr=False, compare=False)
@@ -269,6 +275,11 @@ class FitModel:
             problems.append(f"sigma_kappa must be >= 0; found {self.sigma_kappa}")
         if not self.pair_tolerance_hz >= 0.0:
             problems.append(f"pair_tolerance_hz must be >= 0; found {self.pair_tolerance_hz}")
+        if not (math.isfinite(self.transverse_field_max_t) and self.transverse_field_max_t >= 0):
+            problems.append(
+                f"transverse_field_max_t must be a finite number >= 0; found "
+                f"{self.transverse_field_max_t}"
+            )
         if problems:
             raise ValueError("FitModel: " + "; ".join(problems))
         n_widths = 1 if self.shared_width else self.n_dips
@@ -388,6 +399,13 @@ def _run(
         "code": code,
         "at_bound": at_bound,
     }
+
+
+def transverse_shift_hz(b_perp_t: float, zfs: float) -> float:
+    """Rise of the midpoint (f₋ + f₊)/2 of the two resonances in a transverse field,
+    3(γB⊥)²/(2D), Hz (second-order perturbation theory of the spin Hamiltonian;
+    PHYSICS.md §2)."""
+    return 3.0 * (GAMMA_NV_HZ_PER_T * b_perp_t) ** 2 / (2.0 * zfs)
 
 
 def _merge_rows(
@@ -651,8 +669,11 @@ def fit_line(
     if pair_center_hz is None:
         pair_center_hz = model.pair_center_hz
     pair_center = ref if pair_center_hz is None else float(pair_center_hz)
-    pair_x = (pair_center - ref) / half
-    tol_x = model.pair_tolerance_hz / half
+    # The window of the pair's midpoint, [D − tol, D + tol + 3(γB⊥max)²/(2D)]: the
+    # transverse field only raises it (PHYSICS.md §2); its centre and half-width here.
+    lift_hz = transverse_shift_hz(model.transverse_field_max_t, pair_center)
+    pair_x = (pair_center + 0.5 * lift_hz - ref) / half
+    tol_x = (model.pair_tolerance_hz + 0.5 * lift_hz) / half
     fwhm_lo = max(model.fwhm_bounds_hz[0], float(np.median(np.diff(freq))))
     c_lo, c_hi = _bounds(layout, model, x, half_hz=half, ref_hz=ref, fwhm_lo_hz=fwhm_lo)
     guess = guess_dips(

@@ -79,6 +79,7 @@ def fit_model_from_config(config: Config) -> FitModel:
         weighting=fit.weighting,
         max_iter=fit.max_iter,
         min_counts=fit.min_counts,
+        transverse_field_max_t=fit.transverse_field_max_mt * 1e-3,
     )
 
 
