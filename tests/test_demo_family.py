@@ -476,6 +476,7 @@ def test_a_fault_changes_nothing_else_of_the_scan() -> None:
         assert faulty == clean
 
 
+@pytest.mark.slow  # renders 24 scans per kind (about 2 s each kind)
 @pytest.mark.parametrize("kind", list(FAMILY_KINDS))
 def test_every_kind_renders_with_its_resonances_inside_the_sweep(kind: str) -> None:
     """24 seeds of each kind render, with counts >= 0 and ≥ 90 % of pixels' resonances swept."""
