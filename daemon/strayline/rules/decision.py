@@ -36,7 +36,8 @@ Verdict = Literal[
 
 #: What each verdict means, in words (``strayline why`` prints these).
 VERDICTS: Mapping[str, str] = {
-    "not_judged": "nothing to judge on this line (baseline not ready or no candidate)",
+    "not_judged": "no candidate on this line (the baseline is not ready yet, or nothing "
+    "stepped far enough to be judged; the statistics below say which)",
     "quiet": "raise condition not met",
     "counting": "raise condition met; counting lines towards the raise",
     "explained": "raise condition met but explained by another rule (suppressed_by)",
