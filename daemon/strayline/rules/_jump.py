@@ -21,7 +21,7 @@ from strayline.rules._observation import (
     robust_z,
 )
 from strayline.rules.metrics import LineMetrics
-from strayline.rules.spec import ResonanceJumpSpec
+from strayline.rules.spec import ResonanceJumpSpec, Severity
 
 __all__ = ["JumpMemory", "resonance_jump_detector"]
 
@@ -237,7 +237,7 @@ def _excursion(
         "confirmed": True,
     }
     pending["verdict"] = _jump_verdict(spec, pending, m.line_index)
-    pending["severity"] = spec.reverted_severity
+    pending["severity"] = _severity(spec, pending, m.line_index)
     return pending
 
 
@@ -337,7 +337,9 @@ def _jump_verdict(
     return f"stand-off change suspected: field roughness changed by {change:+.0%}"
 
 
-def _severity(spec: ResonanceJumpSpec, pending: Mapping[str, Any], reverted_at: int | None) -> str:
+def _severity(
+    spec: ResonanceJumpSpec, pending: Mapping[str, Any], reverted_at: int | None
+) -> Severity:
     """The severity of a raise on ``pending``: ``reverted_severity`` when it had already
     reverted, ``roughness_only_severity`` when only the field roughness stepped (no PL
     drop, no common-mode shift: the sample's own texture does that too), else the rule's."""
@@ -458,7 +460,7 @@ def _touch_pair(
         "confirmed": True,
     }
     pending["verdict"] = _jump_verdict(spec, pending, m.line_index)
-    pending["severity"] = spec.reverted_severity
+    pending["severity"] = _severity(spec, pending, m.line_index)
     return pending
 
 

@@ -328,18 +328,14 @@ class RuleEngine:
         for name in scan.rule_set.detectors:
             spec, st = scan.rule_set.specs[name], scan.rules[name]
             seen = observed.get(name)
-            if seen is None:
-                decisions.append(
-                    self._decision(
-                        scan_id, metrics, spec, st, seen=None, explained=(), now_s=now_s, event=None
-                    )
-                )
-                continue
-            explained = tuple(sorted(holding.intersection(spec.suppressed_by)))
-            obs = replace(seen, raise_cond=False) if explained and not st.active else seen
-            ev = self._step(scan_id, spec, st, obs, m=metrics, now_s=now_s)
-            if ev is not None:
-                events.append(ev)
+            explained: tuple[str, ...] = ()
+            ev = None
+            if seen is not None:
+                explained = tuple(sorted(holding.intersection(spec.suppressed_by)))
+                obs = replace(seen, raise_cond=False) if explained and not st.active else seen
+                ev = self._step(scan_id, spec, st, obs, m=metrics, now_s=now_s)
+                if ev is not None:
+                    events.append(ev)
             decisions.append(
                 self._decision(
                     scan_id,
