@@ -14,6 +14,7 @@ import shutil
 import signal
 import subprocess
 import sys
+import threading
 import time
 from pathlib import Path
 from typing import Any
@@ -256,10 +257,17 @@ def test_sigterm_while_lines_flow_exits_0_with_no_half_written_line(tmp_path: Pa
     proc = _start(config, tmp_path / "daemon.log")
     store = tmp_path / "output" / "flow.zarr"
     wait_until(lambda: "service_ready" in (tmp_path / "daemon.log").read_text(), proc, 30, "ready")
-    _write_scan(tmp_path / "incoming", "flow", 20, tmp_path / "truth")
+    # an instrument writing a line every 0.2 s: lines keep arriving while the daemon stops
+    writer = threading.Thread(
+        target=ds.run_scan,
+        args=(_scan("flow", 20), tmp_path / "incoming", tmp_path / "truth"),
+        kwargs={"pace_s": 0.2},
+    )
+    writer.start()
     wait_until(lambda: len(committed_keys(store)) >= 3, proc, 60, "3 lines")
     sent = time.monotonic()
     code = _stop(proc)
+    writer.join()
     stop_s = time.monotonic() - sent
     assert code == 0
     assert stop_s < 10.0  # TimeoutStopSec of the unit is 90 s

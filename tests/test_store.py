@@ -47,6 +47,28 @@ class StepClock:
         return self.now
 
 
+DISK_FULL = OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+
+
+class FailingMap:
+    """Stands in for one map of an open store: every write raises ``error`` (the writer's
+    seam is ``array.async_array.setitem``, :func:`strayline.store._layout.write_together`)."""
+
+    def __init__(self, array: Any, error: BaseException | type[BaseException]) -> None:
+        self.chunks = array.chunks
+        self.async_array = self
+        self._error = error
+
+    async def setitem(self, key: Any, value: Any) -> None:
+        raise self._error
+
+
+def fail_map(store: ScanStore, direction: str, name: str, error: Any) -> None:
+    """Make every write to one map of an open store raise ``error``."""
+    maps = store._maps[direction]
+    maps[name] = FailingMap(maps[name], error)
+
+
 def make_records(
     index: int,
     direction: str = "forward",
@@ -608,11 +630,7 @@ def test_crash_while_rewriting_a_changed_line_resets_it(tmp_path: Path) -> None:
     class Killed(Exception):
         pass
 
-    class DiesOnWrite:
-        def __setitem__(self, key: Any, value: Any) -> None:
-            raise Killed
-
-    store._maps["forward"]["contrast_lo"] = DiesOnWrite()
+    fail_map(store, "forward", "contrast_lo", Killed)
     with pytest.raises(Killed):
         store.write_line(*make_records(2, seed=5, sha256="2" * 64))
     simulate_crash(store)
@@ -632,12 +650,8 @@ def test_crash_right_after_the_begin_record_reports_the_line(tmp_path: Path) -> 
     class Killed(Exception):
         pass
 
-    class DiesOnWrite:
-        def __setitem__(self, key: Any, value: Any) -> None:
-            raise Killed
-
     store = open_store(tmp_path)
-    store._maps["backward"]["field_nv_t"] = DiesOnWrite()  # the first map written
+    fail_map(store, "backward", "field_nv_t", Killed)  # the first map written
     with pytest.raises(Killed):
         store.write_line(*make_records(3, "backward"))
     simulate_crash(store)
@@ -702,12 +716,8 @@ def test_leftover_temporary_files_are_removed_at_open(tmp_path: Path) -> None:
 def test_disk_failure_during_rows_raises_store_error(tmp_path: Path) -> None:
     """An OSError while writing rows becomes a StoreError naming the store and the operation."""
 
-    class DiskFull:
-        def __setitem__(self, key: Any, value: Any) -> None:
-            raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
-
     with open_store(tmp_path) as store:
-        store._maps["forward"]["chi2_red"] = DiskFull()
+        fail_map(store, "forward", "chi2_red", DISK_FULL)
         with pytest.raises(StoreError, match=r"scan7\.zarr: writing line 2 \(forward\) failed"):
             store.write_line(*make_records(2))
         assert (2, "forward") not in store.committed()
@@ -716,13 +726,9 @@ def test_disk_failure_during_rows_raises_store_error(tmp_path: Path) -> None:
 def test_failed_rewrite_uncommits_the_old_version(tmp_path: Path) -> None:
     """After a failed rewrite the line counts as uncommitted: its old rows were partly replaced."""
 
-    class DiskFull:
-        def __setitem__(self, key: Any, value: Any) -> None:
-            raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
-
     with open_store(tmp_path) as store:
         store.write_line(*make_records(2, sha256="1" * 64))
-        store._maps["forward"]["fwhm_hz"] = DiskFull()
+        fail_map(store, "forward", "fwhm_hz", DISK_FULL)
         with pytest.raises(StoreError, match="No space left on device"):
             store.write_line(*make_records(2, seed=3, sha256="2" * 64))
         assert store.committed() == {}

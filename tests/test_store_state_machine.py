@@ -92,6 +92,20 @@ class _FaultyArray:
         self._budget[0] -= 1
         self._array[key] = value
 
+    @property
+    def async_array(self) -> Any:
+        """The write path's seam (:func:`strayline.store._layout.write_together`)."""
+        outer = self
+
+        class _Async:
+            async def setitem(self, key: Any, value: Any) -> None:
+                if outer._budget[0] == 0:
+                    raise SimulatedCrash
+                outer._budget[0] -= 1
+                await outer._array.async_array.setitem(key, value)
+
+        return _Async()
+
     def __getattr__(self, name: str) -> Any:
         return getattr(self._array, name)
 

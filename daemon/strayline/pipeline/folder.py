@@ -54,27 +54,38 @@ def acquisition_order(path: Path) -> tuple[Path, float, int, str]:
     )
 
 
+#: Files handed to the pipeline at once by a ``process`` pass: the consecutive lines of one
+#: scan among them are committed as one group (one set of fsyncs, each chunk written once).
+PROCESS_BATCH = 64
+
+
 def process_folder(config: Config, folder: Path) -> ProcessSummary:
     """Process every line file below ``folder`` once, in acquisition order
     (:func:`acquisition_order`), then return.
 
     The same pipeline as the daemon: already committed identical files are skipped, bad
-    files are quarantined.
+    files are quarantined. Files go to the pipeline :data:`PROCESS_BATCH` at a time.
+
+    Raises
+    ------
+    OSError
+        If the store fails or a file cannot be read: the pass stops (files before it are
+        done; a second pass skips them).
     """
     folder = Path(folder).absolute()
     listing = list_tree(folder, LineNames(folder, config.watch.pattern))
     if listing.error is not None and not listing.files:
         raise FileNotFoundError(f"{folder}: {listing.error}")
+    files = sorted(listing.files, key=acquisition_order)
     pipeline = LinePipeline(config, root=folder)
     outcomes: list[LineOutcome] = []
     try:
-        for path in sorted(listing.files, key=acquisition_order):
-            try:
-                outcomes.append(pipeline.process(path))
-            except OSError:  # the store failing, or the file unreadable: stop the pass
-                raise
-            except Exception as error:  # a fault of ours: set the file aside, carry on
-                outcomes.append(pipeline.set_aside(path, error))
+        for start in range(0, len(files), PROCESS_BATCH):
+            batch = pipeline.process_many(files[start : start + PROCESS_BATCH])
+            outcomes += batch
+            unreadable = [o for o in batch if o.kind == "unreadable"]
+            if unreadable:
+                raise OSError(f"{unreadable[0].path}: {unreadable[0].problem}")
     finally:
         pipeline.close()
     return _summarise(outcomes)

@@ -1,4 +1,10 @@
-"""The line pipeline: one file in, validate → fit → field → store → rules → alerts.
+"""The line pipeline: files in, validate → fit → field → store → rules → alerts.
+
+Files that are ready together (a catch-up, a burst, a ``process`` pass) go through
+:meth:`LinePipeline.process_many`: the consecutive lines of one scan are fitted one by one,
+then committed as one group (:meth:`~strayline.store.ScanStore.write_lines`: one set of
+fsyncs, each chunk written once), judged by the rules in order, and the rule state is saved
+once for the group. A single file is a group of one.
 
 When a scan's last planned line is committed, the pipeline also makes the scan's products
 once (images, vector field, sheet moment, report; :mod:`strayline.products`).
@@ -17,7 +23,7 @@ the store is closed again (releasing its writer's lock) and the next line starts
 from __future__ import annotations
 
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from functools import partial
@@ -52,7 +58,7 @@ from strayline.pipeline._setup import (
     zfs_rule,
 )
 from strayline.products import make_products, products_dir
-from strayline.rules import DecisionLog, MetricsTracker, RuleEngine
+from strayline.rules import DecisionLog, MetricsTracker, RuleDecision, RuleEngine
 from strayline.store import ScanStore
 
 __all__ = ["LineOutcome", "LinePipeline", "PipelineStatistics"]
@@ -62,7 +68,7 @@ __all__ = ["LineOutcome", "LinePipeline", "PipelineStatistics"]
 _PRODUCTS_WAIT_S = 30.0
 
 
-OutcomeKind = Literal["written", "duplicate", "quarantined", "vanished"]
+OutcomeKind = Literal["written", "duplicate", "quarantined", "vanished", "unreadable"]
 
 
 @dataclass(frozen=True)
@@ -72,15 +78,22 @@ class LineOutcome:
     Attributes
     ----------
     path : Path
-    kind : {"written", "duplicate", "quarantined", "vanished"}
+    kind : {"written", "duplicate", "quarantined", "vanished", "unreadable"}
+        ``unreadable``: the file could not be read (an OSError other than its absence,
+        ``problem`` says which); it is left where it is, to be tried again
+        (:meth:`LinePipeline.process_many` only; :meth:`LinePipeline.process` raises).
     scan_id, direction : str or None
     line_index : int or None
-    fit_s, write_s : float
-        Wall time of the fit and of the store write, s (0 when not done).
+    read_s, fit_s, write_s, rules_s : float
+        Wall time of reading and checking the file, of the fit and field, of the store
+        write and of the metrics and rules, s (0 when not done). A group commit's write
+        time and the group's rule-state save are shared equally among its lines.
     failures : int
         Pixels whose fit status is not OK.
     events : tuple of AlertEvent
         Alert events raised or cleared by this line.
+    problem : str
+        Why an ``unreadable`` file could not be read ("" otherwise).
     """
 
     path: Path
@@ -92,6 +105,30 @@ class LineOutcome:
     write_s: float = 0.0
     failures: int = 0
     events: tuple[AlertEvent, ...] = ()
+    read_s: float = 0.0
+    rules_s: float = 0.0
+    problem: str = ""
+
+
+@dataclass(frozen=True, eq=False)
+class _Fitted:
+    """A line read and fitted, waiting for its group's commit (or, committed before a crash
+    cut its evaluation short, for its evaluation only)."""
+
+    position: int  # in the batch of files
+    path: Path
+    line: ScanLine
+    scan: ScanContext
+    events: tuple[AlertEvent, ...]  # raised while opening its scan
+    fit: LineFit
+    field: LineField
+    evaluate_only: bool
+    read_s: float
+    fit_s: float
+
+    @property
+    def key(self) -> tuple[str, int, str]:
+        return (self.line.scan_id, self.line.line_index, self.line.direction)
 
 
 @dataclass(frozen=True)
@@ -186,71 +223,203 @@ class LinePipeline:
     # -- one file -----------------------------------------------------------------------
 
     def process(self, path: Path) -> LineOutcome:
-        """Run one line file through every stage; never raises for a bad file."""
-        path = Path(path)
+        """Run one line file through every stage; never raises for a bad file.
+
+        Raises
+        ------
+        StoreError
+            If the scan's store cannot be opened or written (the file is left in place).
+        OSError
+            If the file exists but cannot be read (the file is left in place).
+        Exception
+            A fault of strayline's (the caller sets the file aside, :meth:`set_aside`).
+        """
+        return self._run([Path(path)], strict=True)[0]
+
+    def process_many(self, paths: Sequence[Path]) -> list[LineOutcome]:
+        """Run files that are ready together through every stage, in order: the
+        consecutive lines of one scan are committed as one group.
+
+        Never raises for a bad file: an unreadable one gets an ``unreadable`` outcome
+        (left in place), a fault of strayline's while processing one sets it aside with an
+        alert (:meth:`set_aside`).
+
+        Returns
+        -------
+        list of LineOutcome
+            One per file, in order.
+
+        Raises
+        ------
+        StoreError
+            If a store cannot be opened or written: the lines committed before it stay
+            committed (given again, their files come back as duplicates); the files of the
+            failed group and those after it are left in place.
+        """
+        return self._run([Path(p) for p in paths], strict=False)
+
+    def _run(self, paths: list[Path], *, strict: bool) -> list[LineOutcome]:
+        """:meth:`process` (``strict``: an unreadable file or a fault raises) and
+        :meth:`process_many` (they become outcomes)."""
+        outcomes: list[LineOutcome | None] = [None] * len(paths)
+        group: list[_Fitted] = []
+        for position, path in enumerate(paths):
+            try:
+                started = time.perf_counter()
+                self._check_inside(path)
+                line = read_line_file(path, limits=self._limits)
+                read_s = time.perf_counter() - started
+                key = (line.scan_id, line.line_index, line.direction)
+                if group and (
+                    line.scan_id != group[0].line.scan_id or any(f.key == key for f in group)
+                ):  # another scan (its store may close an open one), or a line again
+                    self._commit(group, outcomes, strict=strict)
+                    group = []
+                fitted = self._fit(position, path, line, read_s)
+            except FileNotFoundError:
+                self._log.warning("line_vanished", file=str(path))
+                outcomes[position] = LineOutcome(path, "vanished")
+                continue
+            except LineFileError as error:
+                outcomes[position] = self._quarantine(path, error)
+                continue
+            except StoreError:
+                raise
+            except OSError as error:  # the file is there but cannot be read now
+                if strict:
+                    raise
+                outcomes[position] = LineOutcome(path, "unreadable", problem=str(error))
+                continue
+            except Exception as error:
+                if strict:
+                    raise
+                outcomes[position] = self.set_aside(path, error)
+                continue
+            if isinstance(fitted, LineOutcome):
+                outcomes[position] = fitted
+            else:
+                group.append(fitted)
+        if group:
+            self._commit(group, outcomes, strict=strict)
+        return [outcome for outcome in outcomes if outcome is not None]
+
+    def _fit(
+        self, position: int, path: Path, line: ScanLine, read_s: float
+    ) -> _Fitted | LineOutcome:
+        """A read line's scan, its decision against the store, its fit and field; a line
+        committed and evaluated already is a duplicate outcome."""
+        scan, opening_events = self._scan_for(line, path)
+        scan.store.check_line(line)  # a misfit is this file's fault: quarantined alone
+        decision = scan.store.decide(line)
+        if decision == "changed":
+            self._log.warning(
+                "line_superseded",
+                scan=line.scan_id,
+                line=line.line_index,
+                direction=line.direction,
+                file=str(path),
+                replaces=scan.store.committed()[(line.line_index, line.direction)].source,
+            )
+        evaluate_only = decision == "duplicate" and self._unevaluated(line, scan)
+        if decision == "duplicate" and not evaluate_only:
+            return self._duplicate(path, line, opening_events, read_s=read_s)
+        started = time.perf_counter()
+        zfs_hz = scan.zfs_for(line)
+        # a line's fit depends on its own file and the config alone (refits agree)
+        fit = fit_line(line.freq_hz, line.counts, scan.fit_model, pair_center_hz=zfs_hz)
+        line_field = field_from_fit(fit, zfs_hz=zfs_hz, sign=scan.sign, branch=scan.branch)
+        return _Fitted(
+            position=position,
+            path=path,
+            line=line,
+            scan=scan,
+            events=opening_events,
+            fit=fit,
+            field=line_field,
+            evaluate_only=evaluate_only,
+            read_s=read_s,
+            fit_s=time.perf_counter() - started,
+        )
+
+    def _commit(
+        self, group: list[_Fitted], outcomes: list[LineOutcome | None], *, strict: bool
+    ) -> None:
+        """Commit a group of one scan's fitted lines, then judge each in order, then save
+        the rule state once (a crash before that save leaves the group unevaluated: its
+        files are evaluated again when they come back, :meth:`_unevaluated`)."""
+        scan = group[0].scan
+        to_write = [f for f in group if not f.evaluate_only]
         try:
-            self._check_inside(path)
-            line = read_line_file(path, limits=self._limits)
-            scan, opening_events = self._scan_for(line, path)
-            decision = scan.store.decide(line)
-            if decision == "changed":
-                self._log.warning(
-                    "line_superseded",
-                    scan=line.scan_id,
-                    line=line.line_index,
-                    direction=line.direction,
-                    file=str(path),
-                    replaces=scan.store.committed()[(line.line_index, line.direction)].source,
+            receipts = scan.store.write_lines([(f.line, f.fit, f.field) for f in to_write])
+        except OSError:
+            raise
+        except Exception as error:  # a fault of ours: set the group's files aside
+            if strict:
+                raise
+            for f in group:
+                outcomes[f.position] = self.set_aside(f.path, error)
+            return
+        write_s = {id(f): r.write_s for f, r in zip(to_write, receipts, strict=True)}
+        superseded = {id(f): r.superseded for f, r in zip(to_write, receipts, strict=True)}
+        failures = {id(f): int(np.count_nonzero(f.fit.status != FitStatus.OK)) for f in group}
+        # The lines are committed: count them before anything else can fail.
+        for f in to_write:
+            self._note_written(f.line, failures[id(f)])
+            scan.lines_written += 1
+        decisions: list[RuleDecision] = []
+        judged: list[tuple[_Fitted, tuple[AlertEvent, ...], float]] = []
+        for f in group:
+            started = time.perf_counter()
+            try:
+                events = f.events + self._judge(f.line, scan, f.fit, f.field, decisions)
+            except Exception as error:
+                if strict:
+                    raise
+                outcomes[f.position] = self.set_aside(f.path, error)
+                continue
+            judged.append((f, events, time.perf_counter() - started))
+        started = time.perf_counter()
+        self._settle(decisions, scan.scan_id)
+        settle_s = (time.perf_counter() - started) / max(len(judged), 1)
+        for f, events, rules_s in judged:
+            line = f.line
+            if f.evaluate_only:
+                outcomes[f.position] = self._duplicate(
+                    f.path, line, events, evaluated=True, fit_s=f.fit_s, read_s=f.read_s
                 )
-            unevaluated = decision == "duplicate" and self._unevaluated(line, scan)
-            if decision == "duplicate" and not unevaluated:
-                return self._duplicate(path, line, opening_events)
-            t0 = time.perf_counter()
-            zfs_hz = scan.zfs_for(line)
-            # a line's fit depends on its own file and the config alone (refits agree)
-            fit = fit_line(line.freq_hz, line.counts, scan.fit_model, pair_center_hz=zfs_hz)
-            line_field = field_from_fit(fit, zfs_hz=zfs_hz, sign=scan.sign, branch=scan.branch)
-            t1 = time.perf_counter()
-            receipt = None if unevaluated else scan.store.write_line(line, fit, line_field)
-        except FileNotFoundError:
-            self._log.warning("line_vanished", file=str(path))
-            return LineOutcome(path, "vanished")
-        except LineFileError as error:
-            return self._quarantine(path, error)
-        if receipt is None:  # committed before a crash cut its evaluation short
-            events = opening_events + self._evaluate(line, scan, fit, line_field)
-            return self._duplicate(path, line, events, evaluated=True, fit_s=t1 - t0)
-        # The line is committed: count it before anything else can fail.
-        failures = int(np.count_nonzero(fit.status != FitStatus.OK))
-        self._note_written(line, failures)
-        scan.lines_written += 1
-        events = opening_events + self._evaluate(line, scan, fit, line_field)
-        self._log.info(
-            "line_processed",
-            scan=line.scan_id,
-            line=line.line_index,
-            direction=line.direction,
-            pixels=line.n_pixels,
-            freqs=line.n_freq,
-            failures=failures,
-            fit_s=round(t1 - t0, 4),
-            write_s=round(receipt.write_s, 4),
-            superseded=receipt.superseded,
-            alerts=len(events),
-            file=path.name,
-        )
-        scan.after_commit(scan, line)
-        return LineOutcome(
-            path,
-            "written",
-            line.scan_id,
-            line.line_index,
-            line.direction,
-            fit_s=t1 - t0,
-            write_s=receipt.write_s,
-            failures=failures,
-            events=events,
-        )
+                continue
+            self._log.info(
+                "line_processed",
+                scan=line.scan_id,
+                line=line.line_index,
+                direction=line.direction,
+                pixels=line.n_pixels,
+                freqs=line.n_freq,
+                failures=failures[id(f)],
+                read_s=round(f.read_s, 4),
+                fit_s=round(f.fit_s, 4),
+                write_s=round(write_s[id(f)], 4),
+                rules_s=round(rules_s + settle_s, 4),
+                group=len(to_write),
+                superseded=superseded[id(f)],
+                alerts=len(events),
+                file=f.path.name,
+            )
+            outcomes[f.position] = LineOutcome(
+                f.path,
+                "written",
+                line.scan_id,
+                line.line_index,
+                line.direction,
+                fit_s=f.fit_s,
+                write_s=write_s[id(f)],
+                failures=failures[id(f)],
+                events=events,
+                read_s=f.read_s,
+                rules_s=rules_s + settle_s,
+            )
+        if to_write:
+            scan.after_commit(scan, to_write[-1].line)
 
     def _duplicate(
         self,
@@ -260,6 +429,7 @@ class LinePipeline:
         *,
         evaluated: bool = False,
         fit_s: float = 0.0,
+        read_s: float = 0.0,
     ) -> LineOutcome:
         """The outcome of a file whose line is committed already: skipped, or (after a
         crash between its commit and its evaluation) ``evaluated`` now."""
@@ -279,6 +449,7 @@ class LinePipeline:
             line.direction,
             fit_s=fit_s,
             events=events,
+            read_s=read_s,
         )
 
     def _check_inside(self, path: Path) -> None:
@@ -295,35 +466,51 @@ class LinePipeline:
                 f"a symbolic link to {target}",
             )
 
-    def _evaluate(
-        self, line: ScanLine, scan: ScanContext, fit: LineFit, line_field: LineField
+    def _judge(
+        self,
+        line: ScanLine,
+        scan: ScanContext,
+        fit: LineFit,
+        line_field: LineField,
+        decisions: list[RuleDecision],
     ) -> tuple[AlertEvent, ...]:
-        """Metrics and rules for a committed line; its events delivered, then the rule
-        state saved (which records the line as evaluated)."""
+        """Metrics and rules for a committed line; its events delivered at once (before the
+        rule state is saved: never a lost alert), its decision records added to
+        ``decisions``."""
         metrics = scan.tracker.update(line, fit, line_field)
         raised = tuple(self._engine.evaluate_line(line.scan_id, metrics, source_sha256=line.sha256))
-        try:
-            self._decisions.append(self._engine.last_decisions())
-        except OSError as error:  # a diagnostic record: never worth losing a line over
-            self._log.warning("decision_record_failed", scan=line.scan_id, error=str(error))
-        for event in raised:  # delivered before the state is saved: never a lost alert
+        decisions.extend(self._engine.last_decisions())
+        for event in raised:
             self._sink.deliver(event)
-        self._engine.save(self._state_path)
         return raised
 
+    def _settle(self, decisions: list[RuleDecision], scan_id: str) -> None:
+        """After a group is judged: its decision records appended, the rule state saved
+        (which records the group as evaluated)."""
+        try:
+            self._decisions.append(decisions)
+        except OSError as error:  # a diagnostic record: never worth losing a line over
+            self._log.warning("decision_record_failed", scan=scan_id, error=str(error))
+        self._engine.save(self._state_path)
+
     def _unevaluated(self, line: ScanLine, scan: ScanContext) -> bool:
-        """Whether a committed copy of ``line`` was never evaluated: it is the store's
-        latest commit and the rule engine's last evaluated line is another one (a crash
-        fell between the commit and the rule state's save). Such a line is evaluated when
-        its file comes again (the catch-up at start lists it). The rule state keeps the
-        last few scans only; of a scan it no longer knows, only a first line can be one."""
-        latest, commits = scan.store.latest_commit()
-        if latest != (line.line_index, line.direction) or line.sha256 is None:
+        """Whether a committed copy of ``line`` was never evaluated: it belongs to the
+        store's latest group commit and comes after the rule engine's last evaluated line
+        in that group (or that line is not in it): a crash fell between the group's commit
+        and the rule state's save. Such a line is evaluated when its file comes again (the
+        catch-up at start lists it). The rule state keeps the last few scans only; of a
+        scan it no longer knows, only lines of the store's first group can be such."""
+        group, commits = scan.store.last_group()
+        key = (line.line_index, line.direction)
+        if key not in group or line.sha256 is None:
             return False
-        last = self._engine.last_evaluated(line.scan_id)
-        if last == (None, None, None):  # a scan the rule state does not know (or forgot):
-            return commits == 1  # only its very first line can have been cut short
-        return last != (line.line_index, line.direction, line.sha256)
+        index, direction, sha256 = self._engine.last_evaluated(line.scan_id)
+        if index is None or direction is None:  # a scan the rule state does not know
+            return commits == len(group)
+        last = (index, direction)
+        if last not in group or scan.store.committed()[last].sha256 != sha256:
+            return True
+        return group.index(key) > group.index(last)
 
     def give_up(self, path: Path, reason: str) -> LineOutcome:
         """Quarantine a file that never became readable (the watcher gave up on it)."""

@@ -73,6 +73,10 @@ __all__ = ["Service", "watch_options_from_config"]
 #: STATUS is re-sent at least this often even when unchanged, s.
 _STATUS_REFRESH_S = 10.0
 
+#: Files handed to the pipeline at once (a catch-up or burst is committed in groups of up
+#: to this many; the watchdog is pinged between groups, a second or two apart at most).
+BATCH_FILES = 32
+
 
 def watch_options_from_config(config: Config) -> WatchOptions:
     """The watcher's options from ``config.watch``."""
@@ -255,7 +259,9 @@ class Service:
         return wait
 
     def _drain_held(self) -> None:
-        """Process held files in order until done, stopped, or the output fails."""
+        """Process held files in order until done, stopped, or the output fails; the files
+        ready at once go to the pipeline together (up to :data:`BATCH_FILES`), so that a
+        catch-up or a burst is committed in groups."""
         while self._held and not self._stop.is_set():
             before = self._outage
             self._check_resources()  # a long catch-up still watches the disk
@@ -265,32 +271,45 @@ class Service:
             if problem is not None:
                 self._begin_outage(problem)
                 return
-            if not self._handle(self._held[0]):
-                return  # output failed: the file stays first in line
-            self._held.popleft()
+            batch = self._next_batch()
+            if not self._handle(batch):
+                return  # output failed: the files stay first in line
+            for _ in batch:
+                self._held.popleft()
             self._ping()
 
-    def _handle(self, ready: ReadyFile) -> bool:
-        """Run one file through the pipeline; False if the output failed (keep the file)."""
+    def _next_batch(self) -> list[ReadyFile]:
+        """The held files to process next: the first one if the watcher gave up on it,
+        else the run of ready files at the head of the line."""
+        batch: list[ReadyFile] = []
+        for ready in self._held:
+            if ready.kind == "gave_up" or len(batch) == BATCH_FILES:
+                break
+            batch.append(ready)
+        return batch or [self._held[0]]
+
+    def _handle(self, batch: list[ReadyFile]) -> bool:
+        """Run files through the pipeline; False if the output failed (keep them all)."""
         if self.pipeline is None:
             return False
         try:
-            if ready.kind == "gave_up":
-                outcome = self.pipeline.give_up(ready.path, ready.reason)
+            if batch[0].kind == "gave_up":
+                outcomes = [self.pipeline.give_up(batch[0].path, batch[0].reason)]
             else:
-                outcome = self.pipeline.process(ready.path)
+                outcomes = self.pipeline.process_many([ready.path for ready in batch])
         except StoreError as exc:
             self._begin_outage(str(exc))
             return False
-        except OSError as exc:  # the line file itself cannot be read: try again later
-            self._note_unreadable(ready, exc)
-            return True
-        except Exception as exc:  # our own bug: set the file aside, alert, carry on
-            outcome = self.pipeline.set_aside(ready.path, exc)
-        self._unreadable.read(ready.path)
-        if outcome.scan_id is not None:
-            self._last_scan_id = outcome.scan_id
-        self._note_events(outcome.events)
+        except Exception as exc:  # our own bug outside any one file: set them aside, carry on
+            outcomes = [self.pipeline.set_aside(ready.path, exc) for ready in batch]
+        for ready, outcome in zip(batch, outcomes, strict=True):
+            if outcome.kind == "unreadable":  # try again later
+                self._note_unreadable(ready, outcome.problem)
+                continue
+            self._unreadable.read(ready.path)
+            if outcome.scan_id is not None:
+                self._last_scan_id = outcome.scan_id
+            self._note_events(outcome.events)
         return True
 
     def _note_events(self, events: tuple[AlertEvent, ...]) -> None:
@@ -305,16 +324,16 @@ class Service:
 
     # -- unreadable files ---------------------------------------------------------------
 
-    def _note_unreadable(self, ready: ReadyFile, exc: OSError) -> None:
-        delay = self._unreadable.failed(ready, str(exc), self._clock())
+    def _note_unreadable(self, ready: ReadyFile, problem: str) -> None:
+        delay = self._unreadable.failed(ready, problem, self._clock())
         if delay is None:
-            self._log.error("line_unreadable_gave_up", file=str(ready.path), error=str(exc))
+            self._log.error("line_unreadable_gave_up", file=str(ready.path), error=problem)
             if self.pipeline is not None:
-                outcome = self.pipeline.give_up(ready.path, f"cannot be read: {exc}")
+                outcome = self.pipeline.give_up(ready.path, f"cannot be read: {problem}")
                 self._note_events(outcome.events)
             return
         self._log.warning(
-            "line_unreadable_retry", file=str(ready.path), error=str(exc), retry_in_s=delay
+            "line_unreadable_retry", file=str(ready.path), error=problem, retry_in_s=delay
         )
 
     def _requeue_unreadable(self) -> None:

@@ -34,6 +34,7 @@ byte shuffling takes back most of the size.
 
 from __future__ import annotations
 
+import asyncio
 import os
 import re
 import shutil
@@ -46,6 +47,7 @@ from typing import Any
 import numpy as np
 import zarr
 from zarr.codecs import BloscCodec
+from zarr.core.sync import sync
 
 from strayline.field import FIELD_BOUND_LEVEL
 from strayline.fit import FitStatus
@@ -61,15 +63,19 @@ __all__ = [
     "STORE_FORMAT_VERSION",
     "MapSpec",
     "add_missing_maps",
+    "all_folders",
     "chunk_file",
     "compressors",
     "create_layout",
+    "dirs_to_flush",
+    "flush_files",
     "fsync_tree",
     "fsync_with_parents",
     "remove_creation_leftovers",
     "remove_partials",
     "row_blocks_on_disk",
     "status_flags",
+    "write_together",
 ]
 
 STORE_FORMAT = "strayline-store"
@@ -363,23 +369,73 @@ def _fsync_file(path: Path) -> None:
         os.close(fd)
 
 
-def fsync_with_parents(files: Iterable[Path], stop_at: Path) -> None:
-    """Flush files to disk, then every directory from their parent up to ``stop_at``.
-
-    A file that no longer exists (a chunk zarr deleted because it held only fill values)
-    is skipped; its directory is still flushed so the deletion is durable.
-    """
+def all_folders(files: Iterable[Path], stop_at: Path) -> tuple[list[Path], set[Path]]:
+    """``files`` and every folder from their parents up to ``stop_at`` (excluded): what to
+    flush when it is not known which folders changed."""
+    files = list(files)
     dirs: set[Path] = set()
     for file in files:
-        if file.is_file():
-            _fsync_file(file)
         parent = file.parent
         while parent != stop_at and stop_at in parent.parents:
             dirs.add(parent)
             parent = parent.parent
-    for directory in sorted(dirs, key=lambda d: len(d.parts), reverse=True):
+    return files, dirs
+
+
+def dirs_to_flush(files: Iterable[Path], stop_at: Path) -> set[Path]:
+    """The folders whose entries change when ``files`` are written (call it *before*
+    writing): each file's own folder (the file is created or renamed into place), and for
+    each folder still missing, the folder that will receive it; nothing above a folder
+    that exists already. Folders up to ``stop_at`` only (it exists).
+
+    A chunk written over an existing one flushes one folder, a line's first chunk in a
+    new row folder two; flushing every folder up to the store's root for every file would
+    cost four to five times the fsyncs for nothing.
+    """
+    dirs: set[Path] = set()
+    for file in files:
+        folder = file.parent
+        dirs.add(folder)
+        while folder != stop_at and stop_at in folder.parents and not folder.exists():
+            folder = folder.parent
+            dirs.add(folder)
+    return dirs
+
+
+def flush_files(files: Iterable[Path], dirs: Iterable[Path]) -> None:
+    """fsync ``files`` (each once; one that no longer exists, a chunk zarr deleted because
+    it held only fill values, is skipped), then ``dirs``, deepest first, so that a new
+    folder is on disk before the entry naming it."""
+    for file in dict.fromkeys(files):
+        if file.is_file():
+            _fsync_file(file)
+    for directory in sorted(set(dirs), key=lambda d: len(d.parts), reverse=True):
         if directory.is_dir():
             _fsync_dir(directory)
+
+
+def fsync_with_parents(files: Iterable[Path], stop_at: Path) -> None:
+    """Flush files to disk, then every directory from their parent up to ``stop_at``."""
+    flush_files(*all_folders(files, stop_at))
+
+
+def write_together(writes: Iterable[tuple[zarr.Array, tuple[slice, ...], np.ndarray]]) -> None:
+    """Assign each ``(array, selection, data)`` as ``array[selection] = data`` does, all in
+    one call into zarr's event loop, so the chunks of every array are encoded and written
+    concurrently instead of one array after another (zarr's synchronous API waits for
+    each assignment before the next; the 17 arrays of a line cost a third less).
+
+    Every assignment runs to its end before the first failure, if any, is raised: none
+    is left running behind the caller's back.
+    """
+    jobs = [array.async_array.setitem(selection, data) for array, selection, data in writes]
+
+    async def gather() -> list[BaseException | None]:
+        return await asyncio.gather(*jobs, return_exceptions=True)
+
+    for outcome in sync(gather()):
+        if isinstance(outcome, BaseException):
+            raise outcome
 
 
 def fsync_tree(path: Path) -> None:

@@ -22,6 +22,11 @@ Record events
 ``reset``  written after the rows of a line that began but never committed were reset to
            fill values at open.
 
+Lines written together (a group commit: every line ready at that moment, one ``begin``
+append and one ``commit`` append, each fsync'd once) carry the same ``group`` number in
+their commit records: the commit count before the group. A commit without one (written
+alone, or by an older version) is a group of its own.
+
 A line whose last event is ``begin`` is pending: its rows may be half-written, and the
 store resets them at open. Replaying the records in order gives the committed entries and,
 for each line, the earlier versions it superseded.
@@ -122,6 +127,8 @@ class LedgerState:
     last_commit_time: datetime | None = None
     commit_count: int = 0  # commit records so far, superseding ones included
     last_committed: Key | None = None  # the line of the latest commit record
+    last_group: tuple[Key, ...] = ()  # the lines of the latest group commit, in order
+    _group: int | None = None  # the ``group`` number of the latest commit record
 
     def apply(self, record: Mapping[str, Any]) -> None:
         """Fold one record into the state."""
@@ -148,6 +155,11 @@ class LedgerState:
             )
             if self.last_commit_time is None or processed > self.last_commit_time:
                 self.last_commit_time = processed
+            group = record.get("group")
+            if group is None or group != self._group:
+                self.last_group = ()
+            self.last_group += (key,)
+            self._group = group
             self.commit_count += 1
             self.last_committed = key
         elif event == "reset":

@@ -34,7 +34,7 @@ from __future__ import annotations
 import re
 import shutil
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
@@ -57,13 +57,16 @@ from strayline.store._layout import (
     STORE_FORMAT,
     STORE_FORMAT_VERSION,
     add_missing_maps,
+    all_folders,
     chunk_file,
     compressors,
     create_layout,
-    fsync_with_parents,
+    dirs_to_flush,
+    flush_files,
     remove_creation_leftovers,
     remove_partials,
     row_blocks_on_disk,
+    write_together,
 )
 from strayline.store._ledger import Key, Ledger, LedgerEntry, format_time, parse_time
 from strayline.store._rows import count_failures, line_rows, planned_y
@@ -214,7 +217,7 @@ class ScanStore:
         self._clock = clock
         # Settled once: the per-line path calls these without looking at the options.
         self._put_raw = self._write_raw if raw_spectra else self._skip_raw
-        self._flush = self._flush_rows if durable else self._skip_flush
+        self._flush = flush_files if durable else _skip_flush
         self._maps: dict[str, dict[str, Any]] = {}
         self._y: dict[str, Any] = {}
         self._raw: dict[str, Any] = {}
@@ -427,7 +430,7 @@ class ScanStore:
             to_reset |= {(i, direction) for i in self._stray_lines(direction, done)}
         for key in sorted(to_reset):
             self._clear_rows(key)
-        self._flush(sorted(to_reset))
+        self._flush_reset(sorted(to_reset))
         if to_reset:
             when = format_time(self._clock())
             self._ledger.append(
@@ -484,26 +487,20 @@ class ScanStore:
             shutil.rmtree(raw_line)
         self._failures.pop(key, None)
 
-    def _skip_flush(self, keys: list[Key]) -> None:
-        """Durability against power loss is off: the OS writes the rows back in its time."""
-
-    def _flush_rows(self, keys: list[Key]) -> None:
-        """fsync the files holding the rows of ``keys`` and their directories."""
-        if keys:
-            fsync_with_parents(self._row_files(keys), self.path)
-
-    def _row_files(self, keys: list[Key]) -> list[Path]:
-        """Files holding the rows of ``keys`` (maps, ``y``, raw spectra)."""
+    def _flush_reset(self, keys: list[Key]) -> None:
+        """Make the reset of ``keys`` durable: the files holding their rows (maps, ``y``)
+        and every folder up to the store's root (a reset rarely runs; no need to know which
+        folders changed)."""
+        if not keys:
+            return
         files = []
         for index, direction in keys:
             for spec in MAPS:
                 block = self._maps[direction][spec.name].chunks[0]
                 files.append(chunk_file(self.path, f"{direction}/{spec.name}", (index // block, 0)))
             files.append(chunk_file(self.path, f"{direction}/y", (0,)))
-            raw_line = self.path / "raw" / direction / str(index)
-            files.extend(p for p in raw_line.rglob("*") if p.is_file())
-            files.append(raw_line)  # a removed raw group: its parent directory is flushed
-        return files
+            files.append(self.path / "raw" / direction / str(index))  # its folder is flushed
+        self._flush(*all_folders(files, self.path))
 
     # ------------------------------------------------------------------ writing
 
@@ -520,64 +517,133 @@ class ScanStore:
         return "changed"
 
     def write_line(self, line: ScanLine, fit: LineFit, field: LineField) -> WriteReceipt:
-        """Write a line's rows, then commit it in the ledger.
+        """Write one line's rows, then commit it: :meth:`write_lines` with one line."""
+        return self.write_lines([(line, fit, field)])[0]
+
+    def write_lines(
+        self, items: Sequence[tuple[ScanLine, LineFit, LineField]]
+    ) -> list[WriteReceipt]:
+        """Write several lines' rows, then commit them together (a group commit).
+
+        One ``begin`` append for all of them, every row written in one pass over the maps
+        (a chunk holding several of the lines is written once), one flush, one ``commit``
+        append: each line is committed, or (crash before the commit append) reset at the
+        next open, exactly as if written alone. Lines ready at the same moment cost one
+        set of fsyncs instead of one per line.
+
+        Parameters
+        ----------
+        items : sequence of (ScanLine, LineFit, LineField)
+            The lines, each at most once (a (line_index, direction) may not repeat).
+
+        Returns
+        -------
+        list of WriteReceipt
+            One per line, in order; ``write_s`` is the group's time shared equally.
 
         Raises
         ------
         StoreMismatch
-            If the line belongs to another scan or does not fit the store's shape.
+            If a line belongs to another scan or does not fit the store's shape (nothing
+            is written: check lines with :meth:`check_line` first to single one out).
         StoreError
-            If writing to disk fails; the line stays uncommitted (write it again, or the
-            next open resets it).
+            If writing to disk fails; no line of the group is committed.
         ValueError
-            If ``fit``/``field`` disagree with ``line`` (a caller's bug).
+            If a line repeats, or ``fit``/``field`` disagree with their line (a caller's bug).
         """
         self._check_open()
-        self._check_line(line)
-        rows = line_rows(line, fit, field)
-        key: Key = (line.line_index, line.direction)
+        if not items:
+            return []
+        keys: list[Key] = []
+        rows: list[dict[str, np.ndarray]] = []
+        for line, fit, field in items:
+            self.check_line(line)
+            key: Key = (line.line_index, line.direction)
+            if key in keys:
+                raise ValueError(f"line {key[0]} ({key[1]}) appears twice in one group")
+            keys.append(key)
+            rows.append(line_rows(line, fit, field))
+        lines = [line for line, _, _ in items]
         started = time.perf_counter()
-        superseded = key in self._ledger.state.committed
-        where = {"line_index": line.line_index, "direction": line.direction}
-        begin = {"event": "begin", **where, "source": str(line.source), "sha256": line.sha256}
-        self._ledger.append([begin | {"time": format_time(self._clock())}])
-        self._guard(
-            f"writing line {line.line_index} ({line.direction})", self._write_rows, key, rows, line
+        superseded = [key in self._ledger.state.committed for key in keys]
+        what = _describe(keys)
+        when = format_time(self._clock())
+        self._ledger.append(
+            {**_where(line), "event": "begin", "time": when, "sha256": line.sha256}
+            for line in lines
         )
-        self._guard(f"flushing line {line.line_index} ({line.direction})", self._flush, [key])
+        files, dirs = self._guard(f"writing {what}", self._write_rows, keys, rows, lines)
+        self._guard(f"flushing {what}", self._flush, files, dirs)
+        group = self._ledger.state.commit_count
         commit = {
             "event": "commit",
-            **where,
-            "source": str(line.source),
-            "sha256": line.sha256,
+            "group": group,
             "processed_time": format_time(self._clock()),
             "software_version": strayline.__version__,
             "config_digest": self._config_digest,
         }
-        self._ledger.append([commit])
-        self._failures[key] = count_failures(rows["status"])
-        return WriteReceipt(
-            scan_id=self.scan_id,
-            line_index=line.line_index,
-            direction=line.direction,
-            write_s=time.perf_counter() - started,
-            superseded=superseded,
-        )
+        self._ledger.append({**_where(line), **commit, "sha256": line.sha256} for line in lines)
+        for key, row in zip(keys, rows, strict=True):
+            self._failures[key] = count_failures(row["status"])
+        share = (time.perf_counter() - started) / len(keys)
+        return [
+            WriteReceipt(
+                scan_id=self.scan_id,
+                line_index=key[0],
+                direction=key[1],
+                write_s=share,
+                superseded=old,
+            )
+            for key, old in zip(keys, superseded, strict=True)
+        ]
 
-    def _write_rows(self, key: Key, rows: dict[str, np.ndarray], line: ScanLine) -> None:
-        index, direction = key
-        # Maps are in increasing x, whatever order the pixels were acquired in (a backward
-        # trace is written in decreasing x; its x_m says where each pixel is).
-        order = np.argsort(np.asarray(line.x_m), kind="stable")
-        for name in MAP_NAMES:
-            self._maps[direction][name][index, :] = np.asarray(rows[name])[order]
-        self._y_m[direction][index] = float(line.y_m)
-        self._y_written[direction][index] = True
-        self._put_y(direction)
-        raw_line = self.path / "raw" / direction / str(index)
-        if raw_line.exists():  # spectra of a superseded version
-            shutil.rmtree(raw_line)
-        self._put_raw(key, line)
+    def _write_rows(
+        self, keys: list[Key], rows: list[dict[str, np.ndarray]], lines: list[ScanLine]
+    ) -> tuple[list[Path], set[Path]]:
+        """Write the rows of ``keys`` into every map and ``y`` in one pass, then their raw
+        spectra; returns the files written and the folders whose entries changed (what a
+        durable commit must flush)."""
+        files: list[Path] = []
+        dirs: set[Path] = set()
+        writes: list[tuple[Any, tuple[slice, ...], np.ndarray]] = []
+        for direction in DIRECTIONS:
+            picked = [k for k, key in enumerate(keys) if key[1] == direction]
+            if not picked:
+                continue
+            maps = self._maps[direction]
+            index = np.array([keys[k][0] for k in picked])
+            for k in picked:
+                self._y_m[direction][keys[k][0]] = float(lines[k].y_m)
+                self._y_written[direction][keys[k][0]] = True
+            self._y_m[direction] = planned_y(
+                self._y_m[direction], self._y_written[direction], self._pitch_m
+            )
+            writes.append((self._y[direction], (slice(None),), self._y_m[direction]))
+            files.append(chunk_file(self.path, f"{direction}/y", (0,)))
+            # Maps are in increasing x, whatever order the pixels were acquired in (a
+            # backward trace is written in decreasing x; its x_m says where each pixel is).
+            orders = [np.argsort(np.asarray(lines[k].x_m), kind="stable") for k in picked]
+            for name in MAP_NAMES:
+                array = maps[name]
+                block = array.chunks[0]
+                for start, stop, members in _runs(index):
+                    data = np.stack([np.asarray(rows[picked[m]][name])[orders[m]] for m in members])
+                    writes.append((array, (slice(start, stop), slice(None)), data))
+                for chunk in sorted({int(i) // block for i in index}):
+                    files.append(chunk_file(self.path, f"{direction}/{name}", (chunk, 0)))
+        dirs |= dirs_to_flush(files, self.path)
+        write_together(writes)
+        for key, line in zip(keys, lines, strict=True):
+            raw_line = self.path / "raw" / key[1] / str(key[0])
+            if raw_line.exists():  # spectra of a superseded version
+                shutil.rmtree(raw_line)
+                dirs.add(raw_line.parent)
+            dirs |= dirs_to_flush([raw_line / "zarr.json"], self.path)
+            self._put_raw(key, line)
+            if raw_line.is_dir():
+                for path in raw_line.rglob("*"):
+                    (dirs.add if path.is_dir() else files.append)(path)
+        return files, dirs
 
     def _put_y(self, direction: str) -> None:
         """Write the slow-axis coordinate whole (one chunk): written lines' own positions,
@@ -623,7 +689,9 @@ class ScanStore:
                 attributes={"units": units},
             )
 
-    def _check_line(self, line: ScanLine) -> None:
+    def check_line(self, line: ScanLine) -> None:
+        """Raise :class:`StoreMismatch` if ``line`` cannot be written to this store (another
+        scan, direction, shape or an index outside the plan)."""
         store = f"store {self.path.name}"
         if line.scan_id != self.scan_id:
             raise StoreMismatch(
@@ -658,12 +726,13 @@ class ScanStore:
         """Committed lines by (line_index, direction), with their superseded versions."""
         return dict(self._ledger.state.committed)
 
-    def latest_commit(self) -> tuple[Key | None, int]:
-        """The line of the latest commit record and how many commit records the ledger
-        holds (superseding commits included): what the rule engine checks its own count
-        of evaluated lines against after a restart."""
+    def last_group(self) -> tuple[tuple[Key, ...], int]:
+        """The lines of the latest group commit, in commit order, and how many commit
+        records the ledger holds (superseding commits included): what the pipeline checks
+        the rule engine's last evaluated line against after a restart (a crash between a
+        group's commit and its evaluation leaves the group's lines unevaluated)."""
         state = self._ledger.state
-        return state.last_committed, state.commit_count
+        return state.last_group, state.commit_count
 
     def statistics(self) -> StoreStatistics:
         """A frozen snapshot of progress; reads no data from disk."""
@@ -745,6 +814,33 @@ class ScanStore:
             raise
         except OSError as exc:
             raise StoreError(f"{self.path}: {operation} failed: {exc}") from exc
+
+
+def _skip_flush(files: list[Path], dirs: set[Path]) -> None:
+    """Durability against power loss is off: the OS writes the rows back in its time."""
+
+
+def _where(line: ScanLine) -> dict[str, Any]:
+    """The fields that name a line's file in its ledger records."""
+    return {"line_index": line.line_index, "direction": line.direction, "source": str(line.source)}
+
+
+def _describe(keys: list[Key]) -> str:
+    """``line 4 (forward)``, or ``lines 4 (forward) … 9 (backward) (6 lines)``."""
+    first, last = keys[0], keys[-1]
+    if len(keys) == 1:
+        return f"line {first[0]} ({first[1]})"
+    return f"lines {first[0]} ({first[1]}) … {last[0]} ({last[1]}) ({len(keys)} lines)"
+
+
+def _runs(index: np.ndarray) -> Iterator[tuple[int, int, list[int]]]:
+    """Runs of consecutive row indices: (start, stop, positions in ``index``), in row
+    order; ``index`` holds distinct rows in any order."""
+    order = np.argsort(index, kind="stable")
+    rows = index[order]
+    breaks = np.flatnonzero(np.diff(rows) != 1) + 1
+    for part in np.split(np.arange(rows.size), breaks):
+        yield int(rows[part[0]]), int(rows[part[-1]]) + 1, [int(order[p]) for p in part]
 
 
 def _axis_attributes(nv_axis_rad: tuple[float, float] | None) -> dict[str, float]:
