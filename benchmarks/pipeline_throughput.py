@@ -23,7 +23,8 @@ pipeline's time per line beyond the fitter's, fitted as a + b·pixels over the w
 is the cost a line pays whatever its width (store, ledger, rule state).
 
 Each figure is the best of ``--repeats`` runs (wall clock), so that load from other
-processes counts as little as possible. The fit kernels are compiled before timing. No
+processes counts as little as possible. The fit kernels are compiled before timing (an
+untimed fitter pass over each width's files). No
 assertions: the figures depend on the machine and on what else runs on it.
 """
 
@@ -67,8 +68,8 @@ class Run:
         return 1e3 * self.stages[stage] / self.lines
 
 
-def write_config(work: Path, watch: Path) -> Path:
-    data = {
+def write_config(work: Path, watch: Path, chunk_lines: int | None) -> Path:
+    data: dict = {
         "paths": {
             "watch_root": str(watch),
             "output_root": str(work / "output"),
@@ -79,6 +80,8 @@ def write_config(work: Path, watch: Path) -> Path:
         "products": {"enabled": False},
         "alerts": {"console": False},
     }
+    if chunk_lines is not None:
+        data["store"] = {"chunk_lines": chunk_lines}
     path = work / "strayline.yaml"
     path.write_text(yaml.safe_dump(data), encoding="utf-8")
     return path
@@ -159,6 +162,9 @@ def main() -> None:
     parser.add_argument("--pixels", type=int, nargs="+", default=[64, 256, 1024])
     parser.add_argument("--lines", type=int, nargs="+", default=[96, 48, 16])
     parser.add_argument("--repeats", type=int, default=2)
+    parser.add_argument(
+        "--chunk-lines", type=int, default=None, help="store.chunk_lines (default: the config's)"
+    )
     args = parser.parse_args()
     if len(args.lines) != len(args.pixels):
         parser.error("--lines needs one count per --pixels value")
@@ -167,12 +173,11 @@ def main() -> None:
     work = Path(tempfile.mkdtemp(prefix="strayline-throughput-"))
     try:
         watch = work / "incoming"
-        config_path = write_config(work, watch)
-        warm = render(work / "warm", "warm", 2, 64)  # compile the kernels before timing
-        fitter_alone(config_path, warm)
+        config_path = write_config(work, watch, args.chunk_lines)
         rows = []
         for n_pixels, n_lines in zip(args.pixels, args.lines, strict=True):
             files = render(watch, f"px{n_pixels}", n_lines, n_pixels)
+            fitter_alone(config_path, files)  # every kernel these lines need, compiled
             fit = best([fitter_alone(config_path, files) for _ in range(args.repeats)])
             group = best([grouped(config_path, watch, work, capture) for _ in range(args.repeats)])
             single = best(

@@ -22,6 +22,7 @@ import pytest
 
 import demo_stream as ds
 from strayline.service._sdnotify import Notifier, _watchdog_interval_s
+from strayline.service.loop import BATCH_FILES
 from tests._daemon import (
     NotifyListener,
     committed_lines,
@@ -176,6 +177,9 @@ def test_ready_status_pings_and_stopping_from_the_real_daemon(tmp_path: Path) ->
     assert listener.snapshot()[-1][1].startswith("STOPPING=1")
 
 
+N_BLOCKED = BATCH_FILES + 16
+
+
 @pytest.mark.slow
 def test_a_loop_blocked_in_a_write_stops_the_watchdog_pings(tmp_path: Path) -> None:
     """While the main loop is blocked (its console log goes to a pipe nobody reads, the
@@ -198,7 +202,9 @@ def test_a_loop_blocked_in_a_write_stops_the_watchdog_pings(tmp_path: Path) -> N
     store = tmp_path / "output" / f"{SCAN_A}.zarr"
     try:
         listener.wait_for("READY", "1", timeout_s=30)
-        _write_scan(tmp_path / "incoming", SCAN_A, 25, tmp_path / "truth")
+        # more lines than the loop takes at once (service.loop.BATCH_FILES): the loop blocks
+        # on the log records of the first group, with lines still waiting
+        _write_scan(tmp_path / "incoming", SCAN_A, N_BLOCKED, tmp_path / "truth")
         # Wait for a 2.5 s silence (5 missed pings) of the watchdog while the process is alive.
         deadline = time.monotonic() + 40
         while True:
@@ -210,7 +216,7 @@ def test_a_loop_blocked_in_a_write_stops_the_watchdog_pings(tmp_path: Path) -> N
             time.sleep(0.1)
         assert proc.poll() is None
         stuck_at = committed_lines(store)
-        assert stuck_at < 25, "every line went through: the loop never blocked"
+        assert stuck_at < N_BLOCKED, "every line went through: the loop never blocked"
 
         def drain() -> None:
             while chunk := os.read(read_fd, 65536):
@@ -219,7 +225,7 @@ def test_a_loop_blocked_in_a_write_stops_the_watchdog_pings(tmp_path: Path) -> N
         reader = threading.Thread(target=drain, daemon=True)
         reader.start()
         released = time.monotonic()
-        assert wait_committed(store, 25, proc, timeout_s=60) == 25
+        assert wait_committed(store, N_BLOCKED, proc, timeout_s=60) == N_BLOCKED
         resumed = [t for t, _ in listener.states("WATCHDOG") if t > released]
         assert resumed, "no ping after the loop was released"
     finally:

@@ -877,3 +877,78 @@ def test_the_readme_snippet_opens_and_plots_a_scan_while_it_runs(
         plt.close("all")
     ds = namespace["ds"]
     assert ds.field_nv_t.shape == (N_LINES, N_PIXELS)  # type: ignore[attr-defined]
+
+
+# ---------------------------------------------------------------------------- group commits
+
+
+def test_commits_without_a_group_number_are_groups_of_one() -> None:
+    """A ledger written before group commits (no ``group`` in its commit records) replays
+    with each commit as a group of its own; consecutive commits sharing a number form one
+    group, in order."""
+    from strayline.store._ledger import LedgerState
+
+    def commit(index: int, group: int | None = None) -> dict[str, Any]:
+        record = {
+            "event": "commit",
+            "line_index": index,
+            "direction": "forward",
+            "source": f"line_{index}.h5",
+            "sha256": None,
+            "processed_time": "2026-03-01T22:00:00.000000Z",
+            "software_version": "0",
+            "config_digest": "0",
+        }
+        return record if group is None else record | {"group": group}
+
+    state = LedgerState()
+    for record in (commit(0), commit(1)):
+        state.apply(record)
+    assert state.last_group == ((1, "forward"),)
+    for record in (commit(2, group=2), commit(3, group=2), commit(4, group=2)):
+        state.apply(record)
+    assert state.last_group == ((2, "forward"), (3, "forward"), (4, "forward"))
+    state.apply(commit(5, group=5))
+    assert state.last_group == ((5, "forward"),)
+
+
+def test_folders_to_flush_are_those_whose_entries_change(tmp_path: Path) -> None:
+    """Writing a file flushes its own folder; a folder still missing adds the folder that
+    receives it, up to the first that exists, and never above the store's root (rename
+    durability: fsync(2) of the containing directory, common practice)."""
+    from strayline.store._layout import dirs_to_flush
+
+    root = tmp_path / "store"
+    (root / "a" / "c" / "0").mkdir(parents=True)
+    existing = root / "a" / "c" / "0" / "0"
+    assert dirs_to_flush([existing], root) == {root / "a" / "c" / "0"}
+    fresh = root / "a" / "c" / "7" / "0"
+    assert dirs_to_flush([fresh], root) == {root / "a" / "c" / "7", root / "a" / "c"}
+    deep = root / "b" / "c" / "0" / "0"
+    assert dirs_to_flush([deep], root) == {
+        root / "b" / "c" / "0",
+        root / "b" / "c",
+        root / "b",
+        root,
+    }
+
+
+def test_a_group_writes_a_shared_chunk_once_and_reads_back_each_line(tmp_path: Path) -> None:
+    """Lines committed as one group into chunks of several lines read back exactly as
+    written, each committed, the group known to the ledger in order; a line given twice in
+    one group is a caller's bug."""
+    store = open_store(tmp_path, chunk_lines=2)
+    lines = (0, 1, 2, 4)  # chunks [0, 1] whole, [2, 3] and [4] in part
+    try:
+        items = [make_records(i, seed=i) for i in lines]
+        receipts = store.write_lines(items)
+        assert [(r.line_index, r.superseded) for r in receipts] == [(i, False) for i in lines]
+        for i, records in zip(lines, items, strict=True):
+            assert_rows(store, "forward", i, line_rows(*records))
+        assert_unwritten(store, "forward", 3)
+        assert store.last_group()[0] == tuple((i, "forward") for i in lines)
+        with pytest.raises(ValueError, match="appears twice"):
+            store.write_lines([make_records(3), make_records(3)])
+        assert (3, "forward") not in store.committed()
+    finally:
+        store.close()

@@ -238,6 +238,54 @@ class StoreMachine(RuleBasedStateMachine):
         self.model.pop(key, None)  # a begun, uncommitted line is reset, old version or not
         assert self._crash_and_reopen() == [key]
 
+    @rule(keys=st.lists(st.sampled_from(KEYS), min_size=2, max_size=6, unique=True))
+    def write_group(self, keys: list[tuple[int, str]]) -> None:
+        """Lines ready together are committed as one group: each is committed as if written
+        alone, and the ledger knows them as its latest group, in order."""
+        assert self.store is not None
+        versions = [next(self.versions) for _ in keys]
+        items = [records(*k, v) for k, v in zip(keys, versions, strict=True)]
+        receipts = self.store.write_lines(items)
+        assert [r.superseded for r in receipts] == [k in self.model for k in keys]
+        self.model.update(zip(keys, versions, strict=True))
+        assert self.store.last_group()[0] == tuple(keys)
+
+    @rule(
+        keys=st.lists(st.sampled_from(KEYS), min_size=2, max_size=6, unique=True),
+        point=st.one_of(st.sampled_from([0, len(MAP_NAMES)]), st.integers(1, len(MAP_NAMES) - 1)),
+    )
+    def crash_while_writing_group(self, keys: list[tuple[int, str]], point: int) -> None:
+        """Die after `point` map writes of a group (or, at the last, instead of its commit
+        records): every line of the group is reset at reopen, none half-committed."""
+        store = self.store
+        assert store is not None
+        if point < len(MAP_NAMES):
+            budget = [point]
+            for direction in DIRECTIONS:
+                maps = store._maps[direction]
+                for name in MAP_NAMES:
+                    maps[name] = _FaultyArray(maps[name], budget)
+        else:
+            ledger = store._ledger
+            real_append = ledger.append
+
+            def append_but_commit(batch: Any) -> None:
+                batch = list(batch)
+                if batch[0]["event"] == "commit":
+                    raise SimulatedCrash
+                real_append(batch)
+
+            ledger.append = append_but_commit  # type: ignore[method-assign]
+        try:
+            store.write_lines([records(*k, next(self.versions)) for k in keys])
+        except SimulatedCrash:
+            pass
+        else:
+            raise AssertionError("the injected fault did not fire")
+        for key in keys:
+            self.model.pop(key, None)
+        assert self._crash_and_reopen() == sorted(keys)
+
     @rule(key=st.sampled_from(KEYS))
     def stray_rows_then_crash(self, key: tuple[int, str]) -> None:
         """Rows that reach the maps without any ledger record are reset at reopen."""

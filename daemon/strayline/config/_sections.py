@@ -271,7 +271,7 @@ class StoreSection(Section):
 
     raw_spectra: bool = False
     compression_level: Annotated[int, Field(ge=0, le=9)] = 5
-    chunk_lines: Annotated[int, Field(ge=1)] = 1
+    chunk_lines: Annotated[int, Field(ge=1)] = 16
 
 
 class ProductsSection(Section):

@@ -134,6 +134,7 @@ class FileFields:
         self.group = group
         self.prefix = prefix
         self.max_read_bytes = max_read_bytes
+        self._attrs = group.attrs  # h5py builds a new manager on every ``.attrs``
 
     def subgroup(self, name: str) -> FileFields:
         """The fields of the subgroup ``name`` (same file, same read limit)."""
@@ -148,12 +149,14 @@ class FileFields:
 
     def attr(self, name: str, expected: str) -> object:
         """The raw (unwrapped) value of a required attribute."""
-        if name not in self.group.attrs:
+        try:
+            value = self._attrs[name]
+        except KeyError:
             self.fail(f"attribute '{name}'", f"present ({expected})", "no such attribute")
-        return _unwrap(self.group.attrs[name])
+        return _unwrap(value)
 
     def has_attr(self, name: str) -> bool:
-        return name in self.group.attrs
+        return name in self._attrs
 
     def attr_str(self, name: str, expected: str, pattern: re.Pattern[str] | None = None) -> str:
         """A string attribute, optionally matching ``pattern`` in full."""

@@ -16,7 +16,7 @@ import json
 import math
 import os
 from collections.abc import Iterable, Mapping
-from dataclasses import asdict, dataclass, field
+from dataclasses import dataclass, field, fields
 from pathlib import Path
 from typing import Any, Literal
 
@@ -109,8 +109,10 @@ class RuleDecision:
     detail: Mapping[str, Any] = field(default_factory=dict)
 
     def to_dict(self) -> dict[str, Any]:
-        """Plain JSON-ready data (non-finite numbers as null)."""
-        return _finite(asdict(self))  # type: ignore[no-any-return]
+        """Plain JSON-ready data (non-finite numbers as null). The fields hold plain data
+        only, so :func:`_finite`'s walk is the copy (``dataclasses.asdict`` would deep-copy
+        everything first, at several times the cost)."""
+        return _finite({f.name: getattr(self, f.name) for f in fields(self)})  # type: ignore[no-any-return]
 
     @classmethod
     def from_dict(cls, data: Mapping[str, Any]) -> RuleDecision:
