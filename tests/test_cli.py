@@ -208,15 +208,17 @@ def test_process_prints_the_summary_and_a_rerun_writes_nothing(tmp_path: Path) -
     config = _write_config(tmp_path)
     first = _run_cli("process", str(tmp_path / "incoming"), "--config", str(config), cwd=tmp_path)
     assert first.returncode == 0, first.stderr
-    assert first.stdout.splitlines()[-1] == (
+    assert first.stdout.splitlines()[-1].startswith(
         "7 files: 6 written, 0 already done, 1 quarantined, 0 vanished; "
-        f"{_failed(tmp_path)} pixel fits failed; 1 alert events"
+        f"{_failed(tmp_path)} pixel fits failed; 1 alert events; 1 scan(s) in "
     )
+    assert first.stdout.splitlines()[-1].endswith(" s, 1 worker(s)")  # one scan: no cluster
+    assert first.stderr.splitlines()[-1].startswith("scans 1/1 · lines 7/7 · ")
     again = _run_cli("process", str(tmp_path / "incoming"), "--config", str(config), cwd=tmp_path)
     assert again.returncode == 0, again.stderr
-    assert again.stdout.splitlines()[-1] == (
+    assert again.stdout.splitlines()[-1].startswith(
         "6 files: 0 written, 6 already done, 0 quarantined, 0 vanished; "
-        "0 pixel fits failed; 0 alert events"
+        "0 pixel fits failed; 0 alert events; 1 scan(s) in "
     )
 
 

@@ -105,7 +105,21 @@ def build_parser() -> argparse.ArgumentParser:
     process = sub.add_parser(
         "process", help="process every line file below DIR once with the daemon's pipeline"
     )
-    process.add_argument("folder", type=Path, metavar="DIR")
+    process.add_argument(
+        "folder", type=Path, metavar="DIR", help="folder holding scan folders of line files"
+    )
+    process.add_argument(
+        "--workers",
+        type=_positive_int,
+        default=None,
+        metavar="N",
+        help="scans processed side by side (default: the cores, at most one per scan)",
+    )
+    process.add_argument(
+        "--scheduler",
+        metavar="ADDRESS",
+        help="run the scans on the Dask cluster of this scheduler (e.g. tcp://host:8786)",
+    )
     _config_arg(process)
 
     status = sub.add_parser("status", help="per scan: lines done/planned, rate, ETA, alerts")
@@ -249,15 +263,20 @@ def _cmd_run(args: argparse.Namespace) -> int:
 
 
 def _cmd_process(args: argparse.Namespace) -> int:
-    from strayline.pipeline import process_folder
+    from strayline.pipeline import default_workers, process_folder
 
     config = _load(args)
     _configure_logs(config)
-    summary = process_folder(config, args.folder)
+    workers = args.workers if args.workers is not None else default_workers()
+    summary = process_folder(
+        config, args.folder, workers=workers, scheduler=args.scheduler, progress=sys.stderr
+    )
+    where = f"on {args.scheduler}" if args.scheduler else f"{summary.workers} worker(s)"
     print(
         f"{summary.files} files: {summary.written} written, {summary.duplicates} already done, "
         f"{summary.quarantined} quarantined, {summary.vanished} vanished; "
-        f"{summary.pixels_failed} pixel fits failed; {summary.alerts} alert events"
+        f"{summary.pixels_failed} pixel fits failed; {summary.alerts} alert events; "
+        f"{summary.scans} scan(s) in {summary.wall_s:.1f} s, {where}"
     )
     return EXIT_OK
 

@@ -4,7 +4,7 @@ alerts, and the products once a scan is complete), for the daemon and for one
 """
 
 from strayline.pipeline._setup import PROFILE_RULE, fit_model_from_config, profile_event, zfs_rule
-from strayline.pipeline.folder import ProcessSummary, process_folder
+from strayline.pipeline.folder import ProcessSummary, default_workers, process_folder
 from strayline.pipeline.line_pipeline import LineOutcome, LinePipeline, PipelineStatistics
 
 __all__ = [
@@ -13,6 +13,7 @@ __all__ = [
     "LinePipeline",
     "PipelineStatistics",
     "ProcessSummary",
+    "default_workers",
     "fit_model_from_config",
     "process_folder",
     "profile_event",

@@ -1,23 +1,46 @@
 """``strayline process DIR``: every line file below a folder, once, through the daemon's
-own pipeline."""
+own pipeline, one task per scan folder: in this process, or on a Dask distributed cluster
+(an embedded local one, or a running scheduler by address).
+
+A scan's lines must be judged by the rules in order, so a scan is one task; scans are
+independent, so they run side by side. Each task keeps its rule state in its own file
+(``<state_dir>/process/<scan folder>.json``), so tasks never share a file but the stores,
+whose one-writer lock keeps two tasks from one store, and the append-only alert log and
+JSON log. The stores are the same, bit for bit, whatever the number of workers.
+"""
 
 from __future__ import annotations
 
 import math
+import os
+import re
+import time
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any, TextIO
 
 from strayline.config import Config
 from strayline.lines import line_key_from_name
 from strayline.pipeline.line_pipeline import LineOutcome, LinePipeline
 from strayline.watch import LineNames, list_tree
 
-__all__ = ["ProcessSummary", "acquisition_order", "process_folder"]
+__all__ = [
+    "ProcessProgress",
+    "ProcessSummary",
+    "acquisition_order",
+    "default_workers",
+    "process_folder",
+    "process_scan_files",
+    "rule_state_file",
+    "scan_tasks",
+]
 
 
 @dataclass(frozen=True)
 class ProcessSummary:
-    """What one ``process`` pass did."""
+    """What one ``process`` pass did (``scans``: scan folders; ``wall_s``: its duration)."""
 
     files: int
     written: int
@@ -26,6 +49,23 @@ class ProcessSummary:
     vanished: int
     pixels_failed: int
     alerts: int
+    scans: int = 0
+    wall_s: float = 0.0
+    workers: int = 1
+
+    def __add__(self, other: ProcessSummary) -> ProcessSummary:
+        return ProcessSummary(
+            files=self.files + other.files,
+            written=self.written + other.written,
+            duplicates=self.duplicates + other.duplicates,
+            quarantined=self.quarantined + other.quarantined,
+            vanished=self.vanished + other.vanished,
+            pixels_failed=self.pixels_failed + other.pixels_failed,
+            alerts=self.alerts + other.alerts,
+            scans=self.scans + other.scans,
+            wall_s=max(self.wall_s, other.wall_s),
+            workers=max(self.workers, other.workers),
+        )
 
 
 def _summarise(outcomes: list[LineOutcome]) -> ProcessSummary:
@@ -38,6 +78,7 @@ def _summarise(outcomes: list[LineOutcome]) -> ProcessSummary:
         vanished=kinds.count("vanished"),
         pixels_failed=sum(o.failures for o in outcomes),
         alerts=sum(len(o.events) for o in outcomes),
+        scans=1,
     )
 
 
@@ -58,26 +99,57 @@ def acquisition_order(path: Path) -> tuple[Path, float, int, str]:
 #: scan among them are committed as one group (one set of fsyncs, each chunk written once).
 PROCESS_BATCH = 64
 
+_UNSAFE = re.compile(r"[^A-Za-z0-9_.\-]+")
 
-def process_folder(config: Config, folder: Path) -> ProcessSummary:
-    """Process every line file below ``folder`` once, in acquisition order
-    (:func:`acquisition_order`), then return.
 
-    The same pipeline as the daemon: already committed identical files are skipped, bad
-    files are quarantined. Files go to the pipeline :data:`PROCESS_BATCH` at a time.
+def scan_tasks(config: Config, folder: Path) -> list[tuple[Path, list[Path]]]:
+    """Every line file below ``folder``, per scan folder (the folder holding it), in
+    acquisition order; scan folders in path order.
 
     Raises
     ------
-    OSError
-        If the store fails or a file cannot be read: the pass stops (files before it are
-        done; a second pass skips them).
+    FileNotFoundError
+        If ``folder`` cannot be listed.
     """
     folder = Path(folder).absolute()
     listing = list_tree(folder, LineNames(folder, config.watch.pattern))
     if listing.error is not None and not listing.files:
         raise FileNotFoundError(f"{folder}: {listing.error}")
-    files = sorted(listing.files, key=acquisition_order)
-    pipeline = LinePipeline(config, root=folder)
+    tasks: dict[Path, list[Path]] = {}
+    for path in sorted(listing.files, key=acquisition_order):
+        tasks.setdefault(path.parent, []).append(path)
+    return list(tasks.items())
+
+
+def rule_state_file(config: Config, root: Path, scan_folder: Path) -> Path:
+    """Where a ``process`` pass keeps the rule state of one scan folder."""
+    relative = scan_folder.relative_to(root).as_posix() if scan_folder != root else "_"
+    return config.paths.state_dir / "process" / f"{_UNSAFE.sub('_', relative)}.json"
+
+
+def process_scan_files(
+    config: Config, root: Path, files: list[Path], *, threads: int | None = None
+) -> ProcessSummary:
+    """One task: the line files of one scan folder through one pipeline, in order,
+    :data:`PROCESS_BATCH` at a time, its rule state in :func:`rule_state_file`.
+
+    ``threads`` caps the fit kernels' threads (numba) in this process, so that workers
+    side by side do not oversubscribe the cores.
+
+    Raises
+    ------
+    OSError
+        If the store fails or a file cannot be read: the task stops (files before it are
+        done; a second pass skips them).
+    """
+    if threads is not None:
+        import numba
+
+        cap = int(numba.config.NUMBA_NUM_THREADS)  # type: ignore[attr-defined]
+        numba.set_num_threads(max(1, min(threads, cap)))
+    pipeline = LinePipeline(
+        config, root=root, rule_state=rule_state_file(config, root, files[0].parent)
+    )
     outcomes: list[LineOutcome] = []
     try:
         for start in range(0, len(files), PROCESS_BATCH):
@@ -89,3 +161,165 @@ def process_folder(config: Config, folder: Path) -> ProcessSummary:
     finally:
         pipeline.close()
     return _summarise(outcomes)
+
+
+def _task_in_worker(config: Config, root: Path, files: list[Path], threads: int) -> ProcessSummary:
+    """A task on a Dask worker: logs to the config's JSON file only (the console is the
+    client's), then :func:`process_scan_files`."""
+    from strayline.logs import configure_logging
+
+    configure_logging(level=config.logging.level, console="off", json_file=config.logging.json_file)
+    return process_scan_files(config, root, files, threads=threads)
+
+
+@dataclass
+class ProcessProgress:
+    """Progress of a pass, printed as one line per update (rewritten in place on a
+    terminal): scans and lines done, the line rate and the time left."""
+
+    scans_total: int
+    lines_total: int
+    stream: TextIO | None = None
+    scans_done: int = 0
+    lines_done: int = 0
+    started_s: float = 0.0
+
+    def __post_init__(self) -> None:
+        self.started_s = time.monotonic()
+
+    def add(self, summary: ProcessSummary) -> None:
+        self.scans_done += 1
+        self.lines_done += summary.files
+        self.show()
+
+    def text(self) -> str:
+        elapsed = max(time.monotonic() - self.started_s, 1e-9)
+        rate = self.lines_done / elapsed
+        left = (self.lines_total - self.lines_done) / rate if rate > 0 else math.inf
+        eta = "?" if not math.isfinite(left) else _clock_text(left)
+        return (
+            f"scans {self.scans_done}/{self.scans_total} · lines {self.lines_done}/"
+            f"{self.lines_total} · {rate:.1f} lines/s · {eta} left"
+        )
+
+    def show(self) -> None:
+        if self.stream is None:
+            return
+        if self.stream.isatty():
+            end = "\n" if self.scans_done == self.scans_total else ""
+            self.stream.write(f"\r{self.text()}{end}")
+        else:
+            self.stream.write(self.text() + "\n")
+        self.stream.flush()
+
+
+def _clock_text(seconds: float) -> str:
+    minutes, secs = divmod(round(seconds), 60)
+    hours, minutes = divmod(minutes, 60)
+    return f"{hours}:{minutes:02d}:{secs:02d}"
+
+
+def process_folder(
+    config: Config,
+    folder: Path,
+    *,
+    workers: int = 1,
+    scheduler: str | None = None,
+    progress: TextIO | None = None,
+) -> ProcessSummary:
+    """Process every line file below ``folder`` once, scan folder by scan folder
+    (:func:`scan_tasks`), then return.
+
+    The same pipeline as the daemon: already committed identical files are skipped, bad
+    files are quarantined.
+
+    Parameters
+    ----------
+    workers : int
+        1: the scans one after another in this process. More: that many worker processes
+        of an embedded Dask cluster (one thread each; the fit kernels' threads shared out).
+    scheduler : str or None
+        Address of a running Dask scheduler (``tcp://host:8786``): its workers run the
+        scans (they must reach the folders and have strayline installed); ``workers``
+        then only shares out the fit threads on this machine, and is otherwise unused.
+    progress : text stream or None
+        Where the progress line goes (None: nowhere).
+
+    Raises
+    ------
+    OSError
+        If a store fails or a file cannot be read: the pass stops after the scans under
+        way (work done is kept; a second pass skips it).
+    """
+    started = time.monotonic()
+    root = Path(folder).absolute()
+    tasks = scan_tasks(config, root)
+    meter = ProcessProgress(len(tasks), sum(len(files) for _, files in tasks), progress)
+    total = ProcessSummary(0, 0, 0, 0, 0, 0, 0)
+    workers = max(1, min(workers, len(tasks)))  # a worker per scan at most
+    if workers == 1 and scheduler is None:
+        for _, files in tasks:
+            summary = process_scan_files(config, root, files)
+            meter.add(summary)
+            total += summary
+    else:
+        threads = max(1, default_workers() // max(workers, 1))
+        with _dask_client(workers, scheduler) as client:
+            for summary in _run_on(client, config, root, tasks, threads):
+                meter.add(summary)
+                total += summary
+    wall_s = time.monotonic() - started
+    return ProcessSummary(**{**total.__dict__, "wall_s": wall_s, "workers": workers})
+
+
+@contextmanager
+def _dask_client(workers: int, scheduler: str | None) -> Iterator[Any]:
+    """A client of the scheduler at ``scheduler``, or of an embedded local cluster of
+    ``workers`` single-threaded processes (closed on exit)."""
+    from distributed import Client, LocalCluster
+
+    if scheduler is not None:
+        with Client(scheduler) as client:
+            yield client
+        return
+    with (
+        LocalCluster(
+            n_workers=workers,
+            threads_per_worker=1,
+            processes=True,
+            dashboard_address=None,
+            silence_logs=40,  # logging.ERROR: the workers' own chatter stays out
+        ) as cluster,
+        Client(cluster) as client,
+    ):
+        yield client
+
+
+def _run_on(
+    client: Any, config: Config, root: Path, tasks: list[tuple[Path, list[Path]]], threads: int
+) -> Iterator[ProcessSummary]:
+    """Submit one task per scan folder; yield their summaries as they finish. The first
+    failure is raised once every task has ended (none is left writing behind us)."""
+    from distributed import as_completed
+
+    task: Callable[..., ProcessSummary] = _task_in_worker
+    futures = [
+        client.submit(task, config, root, files, threads, pure=False, key=f"scan-{i}")
+        for i, (_, files) in enumerate(tasks)
+    ]
+    failure: BaseException | None = None
+    for future in as_completed(futures):
+        try:
+            yield future.result()
+        except Exception as error:  # re-raised below, once the rest have ended
+            failure = failure or error
+    if failure is not None:
+        raise failure
+
+
+def default_workers() -> int:
+    """``process --workers``' default: the cores this process may use."""
+    try:
+        return len(os.sched_getaffinity(0))
+    except AttributeError:  # not on Linux
+        return os.cpu_count() or 1

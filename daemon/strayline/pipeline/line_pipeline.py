@@ -179,6 +179,9 @@ class LinePipeline:
         :meth:`process`.
     clock : callable returning float, optional
         Wall-clock seconds (``time.time``) for the rule engine's stall detection.
+    rule_state : Path or None
+        Where the rule engine's state is kept (default ``paths.state_dir /
+        rules_state.json``; a ``process`` pass keeps one per scan folder).
     """
 
     def __init__(
@@ -190,6 +193,7 @@ class LinePipeline:
         root: Path | None = None,
         background_products: bool = False,
         clock: Callable[[], float] = time.time,
+        rule_state: Path | None = None,
     ) -> None:
         self.config = config
         self._log = structlog.get_logger("strayline.pipeline")
@@ -201,7 +205,9 @@ class LinePipeline:
         self._output_root = config.paths.output_root
         self._root = Path(root if root is not None else config.paths.watch_root).resolve()
         self._output_root.mkdir(parents=True, exist_ok=True)  # OSError: the output is unusable
-        self._state_path = config.paths.state_dir / "rules_state.json"
+        self._state_path = (
+            rule_state if rule_state is not None else config.paths.state_dir / "rules_state.json"
+        )
         self._sink = sink if sink is not None else AlertSink.from_config(config)
         self._owns_sink = sink is None
         self._engine = RuleEngine.restore(config.rule_set, self._state_path, clock=clock)
