@@ -15,6 +15,8 @@ from datetime import datetime
 from pathlib import Path
 
 import pytest
+from hypothesis import given
+from hypothesis import strategies as st
 from structlog.testing import capture_logs
 
 from strayline import alerts
@@ -494,3 +496,59 @@ def test_an_alert_reaches_the_hook_and_the_stop_file_when_its_log_cannot_be_writ
     sink.close(5)
     assert read_alert_log(log) == [EVENT]
     assert calls.read_text() == "fluorescence_lost:raised\n"
+
+
+@given(
+    days=st.integers(0, 30),
+    hours=st.integers(0, 48),
+    minutes=st.integers(0, 600),
+    seconds=st.integers(0, 7200),
+)
+def test_since_spans_go_back_from_now_by_their_sum(
+    days: int, hours: int, minutes: int, seconds: int
+) -> None:
+    """A --since span (any mix of d, h, m, s, in this order, each optional) names the
+    moment that long before now; an ISO 8601 time names itself (UTC when it has no zone;
+    datetime.fromisoformat, the standard library's ISO parser, is the reference)."""
+    from datetime import UTC, timedelta
+
+    parts = [(days, "d"), (hours, "h"), (minutes, "m"), (seconds, "s")]
+    text = "".join(f"{n}{unit}" for n, unit in parts if n) or "0s"
+    now = datetime(2026, 12, 5, 3, 0, tzinfo=UTC)
+    back = timedelta(days=days, hours=hours, minutes=minutes, seconds=seconds)
+    assert alerts.parse_since(text, now) == now - back
+    moment = now - back
+    assert alerts.parse_since(moment.isoformat(), now) == moment
+    assert alerts.parse_since(moment.replace(tzinfo=None).isoformat(), now) == moment
+
+
+@pytest.mark.parametrize("text", ["yesterday", "1w", "h", "-1h", "1h bananas", ""])
+def test_a_bad_since_names_what_it_takes_and_what_it_found(text: str) -> None:
+    """A --since that is neither an ISO time nor a span says what it accepts and shows
+    what it was given."""
+    from datetime import UTC
+
+    with pytest.raises(ValueError, match=r"ISO 8601 time .* 30m, 1h, 2d or 1h30m; found"):
+        alerts.parse_since(text, datetime(2026, 12, 5, tzinfo=UTC))
+
+
+def test_alerts_filter_by_severity_and_say_when_a_scan_has_none(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """--severity warning keeps warnings and criticals (info < warning < critical, the
+    order of the rule schema); a --scan the log holds no alert of is said, with the scans
+    it does hold, and exits 1 instead of printing nothing."""
+    log = tmp_path / "alerts.jsonl"
+    sink = AlertSink(log)
+    for i, level in enumerate(("info", "warning", "critical")):
+        sink.deliver(dataclasses.replace(EVENT, line_index=i, severity=level))
+    out = io.StringIO()
+    assert alerts.follow_alerts(log, severity="warning", as_json=True, out=out) == 0
+    kept = [json.loads(t)["severity"] for t in out.getvalue().splitlines()]
+    assert kept == ["warning", "critical"]
+    assert alerts.follow_alerts(log, severity="urgent", out=io.StringIO()) == 2
+    capsys.readouterr()
+    assert alerts.follow_alerts(log, scan_id="nosuch", out=io.StringIO()) == 1
+    err = capsys.readouterr().err
+    assert "no alerts for scan 'nosuch'" in err
+    assert "scans with alerts: night-run" in err

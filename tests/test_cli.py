@@ -125,6 +125,33 @@ def test_check_config_accepts_the_shipped_default(capsys: pytest.CaptureFixture[
     assert out.rstrip().endswith(f"profiles: {', '.join(profiles)})")
 
 
+def test_check_config_takes_the_config_option_or_the_environment(
+    monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """Without FILE, check-config checks --config, else $STRAYLINE_CONFIG, as every other
+    command does; with neither it says how to give one."""
+    default = REPO / "config" / "default.yaml"
+    assert main(["check-config", "--config", str(default)]) == 0
+    assert capsys.readouterr().out.startswith(f"{default}: ok (digest ")
+    monkeypatch.setenv("STRAYLINE_CONFIG", str(default))
+    assert main(["check-config"]) == 0
+    assert capsys.readouterr().out.startswith(f"{default}: ok (digest ")
+    monkeypatch.delenv("STRAYLINE_CONFIG")
+    assert main(["check-config"]) == EXIT_CONFIG
+    assert "no config file given (use --config or $STRAYLINE_CONFIG)" in capsys.readouterr().err
+
+
+def test_demo_help_lists_the_fault_kinds(capsys: pytest.CaptureFixture[str]) -> None:
+    """`demo --help` names every fault kind the demo instrument can inject."""
+    from demo_stream import FAULT_KINDS
+
+    with pytest.raises(SystemExit):
+        main(["demo", "--help"])
+    text = " ".join(capsys.readouterr().out.split())
+    for kind in FAULT_KINDS:
+        assert kind in text
+
+
 def test_check_config_names_the_file_and_key_of_a_bad_value(
     tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:

@@ -76,6 +76,13 @@ def _degrees(text: str) -> float:
     return value
 
 
+def _fault_kinds() -> tuple[str, ...]:
+    """The demo instrument's fault kinds (imported lazily, like its parser)."""
+    from demo_stream import FAULT_KINDS
+
+    return tuple(FAULT_KINDS)
+
+
 def _fault(text: str) -> str:
     """A demo fault spec, checked by the demo instrument's own parser (imported lazily)."""
     from demo_stream import parse_fault
@@ -130,7 +137,16 @@ def build_parser() -> argparse.ArgumentParser:
     _config_arg(alerts)
     alerts.add_argument("--follow", "-f", action="store_true", help="keep printing new alerts")
     alerts.add_argument("--scan", metavar="ID", help="only this scan")
-    alerts.add_argument("--since", metavar="TIME", help="only alerts at or after this ISO time")
+    alerts.add_argument(
+        "--since",
+        metavar="TIME",
+        help="only alerts at or after this ISO 8601 time, or this long ago (30m, 1h, 2d)",
+    )
+    alerts.add_argument(
+        "--severity",
+        choices=("info", "warning", "critical"),
+        help="only alerts of this severity and more urgent ones",
+    )
     alerts.add_argument("--json", action="store_true", help="print the JSON lines as stored")
     alerts.add_argument("-n", "--lines", type=int, default=20, help="how many (default 20)")
 
@@ -147,7 +163,15 @@ def build_parser() -> argparse.ArgumentParser:
     why.add_argument("--json", action="store_true", help="print the records as stored")
 
     check = sub.add_parser("check-config", help="validate a config file and its profiles")
-    check.add_argument("file", type=Path, metavar="FILE")
+    check.add_argument(
+        "file",
+        type=Path,
+        metavar="FILE",
+        nargs="?",
+        default=None,
+        help=f"the YAML config to check (default: --config, or ${_CONFIG_ENV})",
+    )
+    _config_arg(check)
 
     demo = sub.add_parser(
         "demo", help="run the demo instrument and the daemon on a short scan with a fault"
@@ -163,7 +187,10 @@ def build_parser() -> argparse.ArgumentParser:
         "--fault",
         type=_fault,
         default=None,
-        help="fault to inject, e.g. tip_crash@30:64 (default: a tip crash two thirds in)",
+        help=(
+            "fault to inject as KIND@LINE[:PIXEL], e.g. tip_crash@30:64; kinds: "
+            f"{', '.join(_fault_kinds())} (default: a tip crash two thirds in)"
+        ),
     )
     demo.add_argument("--folder", type=Path, default=None, help="work folder (default: a temp one)")
     demo.add_argument("--seed", type=int, default=7, help="noise seed (default 7)")
@@ -284,11 +311,12 @@ def _cmd_process(args: argparse.Namespace) -> int:
 def _cmd_check_config(args: argparse.Namespace) -> int:
     from strayline.config import config_digest, load_config
 
-    config = load_config(args.file)
+    file = args.file if args.file is not None else _need_config(args)
+    config = load_config(file)
     available = config.available_profiles()
     folder = config.profiles_folder
     profiles = ", ".join(available) or f"none in {folder}"
-    print(f"{args.file}: ok (digest {config_digest(config)[:12]}; profiles: {profiles})")
+    print(f"{file}: ok (digest {config_digest(config)[:12]}; profiles: {profiles})")
     if folder != config.profiles_dir:
         print(
             f"strayline: warning: no sample-type profile in {config.profiles_dir} "
@@ -330,6 +358,7 @@ def _cmd_alerts(args: argparse.Namespace) -> int:
         config.paths.alert_log,
         scan_id=args.scan,
         since=args.since,
+        severity=args.severity,
         as_json=args.json,
         follow=args.follow,
         last=args.lines,

@@ -6,7 +6,13 @@ by one :class:`AlertSink`, and read back by :func:`read_alert_log` (``strayline 
 """
 
 from strayline.alerts.event import AlertEvent
-from strayline.alerts.log import follow_alerts, format_alert, read_alert_log
+from strayline.alerts.log import (
+    SEVERITY_ORDER,
+    follow_alerts,
+    format_alert,
+    parse_since,
+    read_alert_log,
+)
 from strayline.alerts.registry import ACTIVE_ALERTS_FILE, ActiveAlerts, deliver_remembered
 from strayline.alerts.sink import (
     HOOK_PLACEHOLDERS,
@@ -20,6 +26,7 @@ from strayline.alerts.sink import (
 __all__ = [
     "ACTIVE_ALERTS_FILE",
     "HOOK_PLACEHOLDERS",
+    "SEVERITY_ORDER",
     "ActiveAlerts",
     "AlertEvent",
     "AlertNotLogged",
@@ -29,6 +36,7 @@ __all__ = [
     "fill_hook_arguments",
     "follow_alerts",
     "format_alert",
+    "parse_since",
     "read_alert_log",
     "write_stop_request",
 ]

@@ -2,17 +2,54 @@
 
 from __future__ import annotations
 
+import re
 import sys
 import threading
 import time
-from datetime import UTC, datetime
+from datetime import UTC, datetime, timedelta
 from os import PathLike
 from pathlib import Path
 from typing import TextIO
 
 from strayline.alerts.event import AlertEvent
 
-__all__ = ["follow_alerts", "format_alert", "printable", "read_alert_log"]
+__all__ = [
+    "SEVERITY_ORDER",
+    "follow_alerts",
+    "format_alert",
+    "parse_since",
+    "printable",
+    "read_alert_log",
+]
+
+#: Alert severities, least urgent first (``alerts --severity`` keeps this one and above).
+SEVERITY_ORDER = ("info", "warning", "critical")
+
+_SPAN = re.compile(r"(\d+(?:\.\d+)?)\s*([smhd])")
+_SPAN_WHOLE = re.compile(r"\s*(?:\d+(?:\.\d+)?\s*[smhd]\s*)+")
+_UNIT_S = {"s": 1.0, "m": 60.0, "h": 3600.0, "d": 86400.0}
+
+
+def parse_since(text: str, now: datetime) -> datetime:
+    """The time ``--since`` names: an ISO 8601 time (without a zone: UTC), or a span back
+    from ``now`` such as ``90s``, ``30m``, ``1h``, ``2d`` or ``1h30m``.
+
+    Raises
+    ------
+    ValueError
+        Naming what was expected and what was found.
+    """
+    if _SPAN_WHOLE.fullmatch(text):
+        seconds = sum(float(n) * _UNIT_S[u] for n, u in _SPAN.findall(text))
+        return now - timedelta(seconds=seconds)
+    try:
+        moment = datetime.fromisoformat(text)
+    except ValueError:
+        raise ValueError(
+            "--since must be an ISO 8601 time such as 2026-03-01T22:00:00Z or a span back "
+            f"from now such as 30m, 1h, 2d or 1h30m; found {text!r}"
+        ) from None
+    return moment if moment.tzinfo is not None else moment.replace(tzinfo=UTC)
 
 
 def read_alert_log(
@@ -98,6 +135,7 @@ def follow_alerts(
     *,
     scan_id: str | None = None,
     since: str | datetime | None = None,
+    severity: str | None = None,
     as_json: bool = False,
     follow: bool = False,
     last: int = 20,
@@ -108,37 +146,58 @@ def follow_alerts(
     """Print the last ``last`` alerts (readable, or the stored JSON lines), then optionally
     keep printing new ones until interrupted; returns a process exit code.
 
-    ``since`` is an ISO 8601 time (a time without zone is taken as UTC). ``stop`` ends
-    following (tests); Ctrl-C ends it too. A bad ``since`` prints the problem and
-    returns 2.
+    ``since`` is an ISO 8601 time (a time without zone is taken as UTC) or a span back
+    from now (:func:`parse_since`); ``severity`` keeps that severity and the more urgent
+    ones (:data:`SEVERITY_ORDER`). ``stop`` ends following (tests); Ctrl-C ends it too. A
+    bad ``since`` or ``severity`` prints the problem and returns 2; a ``scan_id`` the log
+    has no alert of says so, lists the scans it has, and returns 1 (unless following).
     """
     stream = out if out is not None else sys.stdout
     since_dt: datetime | None
     if isinstance(since, str):
         try:
-            since_dt = datetime.fromisoformat(since)
-        except ValueError:
-            print(
-                f"--since must be an ISO 8601 time such as 2026-03-01T22:00:00Z; found {since!r}",
-                file=sys.stderr,
-            )
+            since_dt = parse_since(since, datetime.now(UTC))
+        except ValueError as error:
+            print(str(error), file=sys.stderr)
             return 2
     else:
         since_dt = since
     if since_dt is not None and since_dt.tzinfo is None:
         since_dt = since_dt.replace(tzinfo=UTC)
+    if severity is not None and severity not in SEVERITY_ORDER:
+        print(
+            f"--severity must be one of {', '.join(SEVERITY_ORDER)}; found {severity!r}",
+            file=sys.stderr,
+        )
+        return 2
+    wanted = set(SEVERITY_ORDER[SEVERITY_ORDER.index(severity or "info") :])
 
     def show(event: AlertEvent) -> None:
         stream.write((event.to_json() if as_json else format_alert(event)) + "\n")
 
     p = Path(path)
     bad: list[str] = []
-    events = read_alert_log(p, scan_id=scan_id, since=since_dt, bad_lines=bad)
+    everything = read_alert_log(p, since=since_dt, bad_lines=bad)
     for problem in bad:  # a torn or foreign line costs that line, not the whole log
         print(f"strayline: skipped {printable(problem)}", file=sys.stderr)
+    events = [
+        e for e in everything if (scan_id is None or e.scan_id == scan_id) and e.severity in wanted
+    ]
     for event in events[-last:] if last > 0 else []:
         show(event)
     stream.flush()
+    if scan_id is not None and not any(e.scan_id == scan_id for e in everything) and not follow:
+        scans = sorted({e.scan_id for e in everything if e.scan_id != "*"})
+        known = ", ".join(scans[-10:]) if scans else "none"
+        when = "" if since_dt is None else " in that time"
+        print(
+            printable(
+                f"strayline: no alerts for scan {scan_id!r}{when} in {p} (scans with "
+                f"alerts: {known})"
+            ),
+            file=sys.stderr,
+        )
+        return 1
     if not follow:
         return 0
     identity = _identity(p)
@@ -169,6 +228,8 @@ def follow_alerts(
                     if scan_id is not None and event.scan_id != scan_id:
                         continue
                     if since_dt is not None and event.datetime < since_dt:
+                        continue
+                    if event.severity not in wanted:
                         continue
                     show(event)
                 stream.flush()
