@@ -256,7 +256,9 @@ def _failed(tmp_path: Path) -> int:
     status = np.asarray(
         zarr.open_group(tmp_path / "output" / f"{SCAN}.zarr", mode="r")["forward/status"][:]
     )
-    return int(np.count_nonzero((status != 255) & (status != 0)))
+    from strayline.fit import failed_fits
+
+    return int(np.count_nonzero((status != 255) & failed_fits(status)))
 
 
 def test_process_of_a_missing_folder_exits_1(tmp_path: Path) -> None:

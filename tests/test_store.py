@@ -952,3 +952,17 @@ def test_a_group_writes_a_shared_chunk_once_and_reads_back_each_line(tmp_path: P
         assert (3, "forward") not in store.committed()
     finally:
         store.close()
+
+
+def test_merged_pixels_are_measurements_not_failed_fits() -> None:
+    """A merged pixel carries a bound on its field: counted as measured, not failed, by the
+    store, the status command and the pipeline's log alike (one definition)."""
+    from strayline.fit import MEASURED, FitStatus, failed_fits
+    from strayline.store._rows import count_failures
+
+    status = np.array([int(s) for s in FitStatus] + [255], dtype=np.uint8)
+    failed = failed_fits(status[:-1])
+    assert {FitStatus(int(s)) for s, f in zip(status[:-1], failed, strict=True) if not f} == set(
+        MEASURED
+    )
+    assert count_failures(status) == len(FitStatus) - len(MEASURED)

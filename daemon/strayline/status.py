@@ -14,7 +14,7 @@ from pathlib import Path
 from typing import Any
 
 from strayline.alerts import AlertEvent, format_alert, read_alert_log
-from strayline.fit import FitStatus
+from strayline.fit import failed_fits
 from strayline.lines import DIRECTIONS, QUARANTINE_DIR, line_key_from_name
 from strayline.store import STATUS_FILL, LedgerState, NotAScanStore, open_store_reader
 
@@ -117,7 +117,7 @@ def scan_status(store_path: Path, alerts: Sequence[AlertEvent] | None = None) ->
         status = reader.read_array("status", direction)
         written = status != STATUS_FILL
         pixels += int(written.sum())
-        failed += int((written & (status != FitStatus.OK)).sum())
+        failed += int((written & failed_fits(status)).sum())
     lines = tuple(format_alert(e) for e in (alerts or ()) if e.scan_id == scan_id)[-_ALERTS_SHOWN:]
     held, quarantined = _scan_folder(state)
     return ScanStatus(

@@ -4,6 +4,6 @@
 :class:`FitStatus` code, never an exception. No I/O, no clock.
 """
 
-from strayline.fit.line_fit import FitModel, FitStatus, LineFit, fit_line
+from strayline.fit.line_fit import MEASURED, FitModel, FitStatus, LineFit, failed_fits, fit_line
 
-__all__ = ["FitModel", "FitStatus", "LineFit", "fit_line"]
+__all__ = ["MEASURED", "FitModel", "FitStatus", "LineFit", "failed_fits", "fit_line"]

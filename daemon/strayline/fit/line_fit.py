@@ -57,6 +57,17 @@ class FitStatus(IntEnum):
     AMBIGUOUS = 7  # another solution, a hyperfine spacing away, fits about as well
 
 
+#: Statuses that are measurements: a fitted field, or (merged dips) a bound on it.
+MEASURED = frozenset({FitStatus.OK, FitStatus.MERGED})
+
+
+def failed_fits(status: np.ndarray) -> np.ndarray:
+    """Where a pixel's fit failed: its status is no measurement (:data:`MEASURED`). A
+    merged pixel is not a failure: its field is below resolution and bounded."""
+    status = np.asarray(status)
+    return (status != FitStatus.OK) & (status != FitStatus.MERGED)
+
+
 @dataclass(frozen=True, eq=False)
 class LineFit:
     """Fit results for the n_pixels spectra of one line.

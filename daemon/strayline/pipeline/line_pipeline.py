@@ -43,7 +43,7 @@ from strayline.alerts import (
 from strayline.config import Config, config_digest, select_profile
 from strayline.errors import ConfigError, LineFileError, StoreError
 from strayline.field import LineField, field_from_fit
-from strayline.fit import FitStatus, LineFit, fit_line
+from strayline.fit import LineFit, failed_fits, fit_line
 from strayline.lines import LineLimits, ScanLine, bad_file_event, quarantine_file, read_line_file
 from strayline.pipeline._background import BackgroundWorker
 from strayline.pipeline._reseed import seed_tracker
@@ -367,7 +367,7 @@ class LinePipeline:
             return
         write_s = {id(f): r.write_s for f, r in zip(to_write, receipts, strict=True)}
         superseded = {id(f): r.superseded for f, r in zip(to_write, receipts, strict=True)}
-        failures = {id(f): int(np.count_nonzero(f.fit.status != FitStatus.OK)) for f in group}
+        failures = {id(f): int(np.count_nonzero(failed_fits(f.fit.status))) for f in group}
         # The lines are committed: count them before anything else can fail.
         for f in to_write:
             self._note_written(f.line, failures[id(f)])

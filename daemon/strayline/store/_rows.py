@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 
 from strayline.field import LineField
-from strayline.fit import FitStatus, LineFit
+from strayline.fit import LineFit, failed_fits
 from strayline.lines import ScanLine
 from strayline.store._layout import STATUS_FILL
 
@@ -101,7 +101,7 @@ def line_rows(line: ScanLine, fit: LineFit, field: LineField) -> dict[str, np.nd
 def count_failures(status_row: np.ndarray) -> int:
     """Pixels of a written row whose fit did not succeed."""
     written = status_row != STATUS_FILL
-    return int(np.count_nonzero(written & (status_row != FitStatus.OK)))
+    return int(np.count_nonzero(written & failed_fits(status_row)))
 
 
 def planned_y(y_m: np.ndarray, written: np.ndarray, pitch_m: float) -> np.ndarray:
