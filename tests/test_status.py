@@ -276,3 +276,34 @@ def test_status_command_without_scans(tmp_path: Path, capsys: pytest.CaptureFixt
     config_path = _write_config(tmp_path)
     assert main(["status", "--config", str(config_path)]) == 0
     assert capsys.readouterr().out == f"no scans in {tmp_path / 'output'}\n"
+
+
+def test_a_group_commit_at_the_end_still_gives_a_rate(
+    scan_files: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """Lines committed together share one time; the rate window reaches back to the
+    commit before them instead of finding no time span (3 lines over 30 s: 360 lines/h)."""
+    import strayline.status as status_module
+
+    monkeypatch.setattr(status_module, "_RATE_WINDOW", 3)
+    group = T0 + timedelta(seconds=60)
+    times = [T0, T0 + timedelta(seconds=30), group, group, group]
+    status = scan_status(_store_with_clock(tmp_path, scan_files, times))
+    assert status.rate_lines_per_h == pytest.approx(360.0)
+
+
+def test_status_dates_the_last_line_and_says_when_the_eta_has_passed(
+    scan_files: Path, tmp_path: Path
+) -> None:
+    """The status says how long ago the last line came, and, once the ETA has passed with
+    lines still to come, that the scan stalled or stopped."""
+    times = [T0 + timedelta(seconds=30 * k) for k in range(4)]  # ETA T0 + 3.5 min
+    status = scan_status(_store_with_clock(tmp_path, scan_files, times))
+    soon = format_scan_status(status, now=T0 + timedelta(seconds=150))
+    assert ", last line 60 s ago" in soon.splitlines()[0]
+    assert "ETA passed" not in soon
+    late = format_scan_status(status, now=T0 + timedelta(hours=1))
+    assert ", last line 58 min ago" in late.splitlines()[0]
+    assert late.splitlines()[1] == (
+        "  the ETA passed 56 min ago with 4 line(s) to go: the scan stalled or stopped"
+    )

@@ -101,7 +101,13 @@ def scan_status(store_path: Path, alerts: Sequence[AlertEvent] | None = None) ->
     state = reader.ledger
     done: dict[str, int] = {d: sum(1 for (_, dd) in state.committed if dd == d) for d in DIRECTIONS}
     busiest = max(DIRECTIONS, key=lambda d: done[d])
-    times = _commit_times(state, busiest)[-_RATE_WINDOW:]
+    every = _commit_times(state, busiest)
+    # the last _RATE_WINDOW commits, reaching further back while they share one time (a
+    # group commit stamps its lines alike)
+    start = max(len(every) - _RATE_WINDOW, 0)
+    while start > 0 and every[start] == every[-1]:
+        start -= 1
+    times = every[start:]
     rate = None
     eta = None
     if len(times) >= 2 and times[-1] > times[0]:
@@ -191,15 +197,38 @@ def scan_statuses(output_root: Path, alert_log: Path | None = None) -> list[Scan
     return out
 
 
-def format_scan_status(status: ScanStatus) -> str:
-    """A few readable lines for one scan."""
+def _ago(seconds: float) -> str:
+    """``42 s``, ``3 min``, ``2 h 5 min`` or ``3 d 4 h``."""
+    seconds = max(seconds, 0.0)
+    if seconds < 90:
+        return f"{seconds:.0f} s"
+    minutes = seconds / 60
+    if minutes < 90:
+        return f"{minutes:.0f} min"
+    hours, minutes = divmod(int(minutes), 60)
+    if hours < 48:
+        return f"{hours} h {minutes} min"
+    days, hours = divmod(hours, 24)
+    return f"{days} d {hours} h"
+
+
+def format_scan_status(status: ScanStatus, now: datetime | None = None) -> str:
+    """A few readable lines for one scan; ``now`` (default: the clock) dates the last line
+    and tells a scan whose ETA has passed without its lines (stalled, or stopped)."""
+    now = now if now is not None else datetime.now(UTC)
     fwd, bwd = status.lines_done["forward"], status.lines_done["backward"]
     traces = f"{fwd}/{status.n_lines_planned} lines" + (f" (+{bwd} backward)" if bwd else "")
     rate = f"{status.rate_lines_per_h:.0f} lines/h" if status.rate_lines_per_h else "rate n/a"
+    complete = fwd >= status.n_lines_planned
     eta = (
         f"ETA {status.eta:%Y-%m-%d %H:%M} UTC"
-        if status.eta and fwd < status.n_lines_planned
-        else ("complete" if fwd >= status.n_lines_planned else "ETA n/a")
+        if status.eta and not complete
+        else ("complete" if complete else "ETA n/a")
+    )
+    last = (
+        f"last line {_ago((now - status.last_commit).total_seconds())} ago"
+        if status.last_commit is not None
+        else ""
     )
     failed = (
         f"{status.pixels_failed} of {status.pixels_done} pixel fits failed "
@@ -207,7 +236,13 @@ def format_scan_status(status: ScanStatus) -> str:
         if status.pixels_done
         else ""
     )
-    out = [f"{status.scan_id}: {traces}, {rate}, {eta}, {failed}".rstrip(", ")]
+    parts = [traces, rate, eta, last, failed]
+    out = [f"{status.scan_id}: " + ", ".join(part for part in parts if part)]
+    if not complete and status.eta is not None and status.eta < now:
+        out.append(
+            f"  the ETA passed {_ago((now - status.eta).total_seconds())} ago with "
+            f"{status.n_lines_planned - fwd} line(s) to go: the scan stalled or stopped"
+        )
     if status.held:
         shown = ", ".join(status.held[:3]) + (" …" if len(status.held) > 3 else "")
         out.append(f"  {len(status.held)} line file(s) not in the store yet: {shown}")
