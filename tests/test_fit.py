@@ -492,3 +492,12 @@ def test_a_pair_lifted_by_a_transverse_field_is_kept_when_the_model_allows_it() 
     wide = fit_line(freq, counts, FitModel(transverse_field_max_t=12e-3), pair_center_hz=d_hz)
     assert np.all(wide.status == FitStatus.OK)
     assert np.all(np.abs(wide.center_hz[:, 1] - f_hi) < 5 * wide.center_sigma_hz[:, 1])
+
+
+def test_prepare_kernels_runs_the_fitter_and_times_it() -> None:
+    """Getting the kernels ready runs a real fit of synthetic spectra and reports its
+    duration (loaded from the cache here: well under the half minute of a first build)."""
+    from strayline.fit import prepare_kernels
+
+    seconds = prepare_kernels()
+    assert 0.0 < seconds < 60.0

@@ -454,6 +454,10 @@ def test_under_journald_console_lines_carry_priority_prefixes(tmp_path: Path) ->
     pattern = re.compile(r"^<[0-7]>[a-z_]+( |$)")
     assert [x for x in lines if not pattern.match(x)] == []
     assert any(x.startswith("<6>service_ready ") for x in lines)
+    # the fit kernels are made ready before the service is, and the log says so
+    events = [x.split(" ")[0] for x in lines]
+    assert events.index("<6>fit_kernels_preparing") < events.index("<6>fit_kernels_ready")
+    assert events.index("<6>fit_kernels_ready") < events.index("<6>service_ready")
     assert sum(x.startswith("<6>line_processed ") for x in lines) == 3
     assert any(x.startswith("<4>line_quarantined ") for x in lines)
     assert not any(re.search(r"\d{4}-\d\d-\d\dT\d\d:\d\d", x.split(" ")[0]) for x in lines)

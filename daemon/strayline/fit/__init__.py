@@ -4,6 +4,15 @@
 :class:`FitStatus` code, never an exception. No I/O, no clock.
 """
 
+from strayline.fit.kernels import prepare_kernels
 from strayline.fit.line_fit import MEASURED, FitModel, FitStatus, LineFit, failed_fits, fit_line
 
-__all__ = ["MEASURED", "FitModel", "FitStatus", "LineFit", "failed_fits", "fit_line"]
+__all__ = [
+    "MEASURED",
+    "FitModel",
+    "FitStatus",
+    "LineFit",
+    "failed_fits",
+    "fit_line",
+    "prepare_kernels",
+]

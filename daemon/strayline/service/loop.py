@@ -45,8 +45,9 @@ from strayline.alerts import (
 )
 from strayline.config import Config, load_config
 from strayline.errors import ConfigError, StoreError
+from strayline.fit import prepare_kernels
 from strayline.logs import configure_logging, reopen_log_files
-from strayline.pipeline import LinePipeline
+from strayline.pipeline import LinePipeline, fit_model_from_config
 from strayline.service._events import (
     ServiceAlert,
     disk_low_cleared,
@@ -72,6 +73,10 @@ __all__ = ["Service", "watch_options_from_config"]
 
 #: STATUS is re-sent at least this often even when unchanged, s.
 _STATUS_REFRESH_S = 10.0
+
+#: Preparing the fit kernels takes longer than this only when they were built, not loaded
+#: from the cache (a built set takes tens of seconds, a cached one well under one).
+_KERNELS_BUILT_S = 5.0
 
 #: Files handed to the pipeline at once (a catch-up or burst is committed in groups of up
 #: to this many; the watchdog is pinged between groups, a second or two apart at most).
@@ -187,6 +192,7 @@ class Service:
     def run(self) -> int:
         """Run until stopped; return the process exit code (0 on a clean stop)."""
         faulthandler.enable(file=sys.stderr, all_threads=True)
+        self._prepare_fit()
         self.watcher.start()  # arms the observer and lists the tree (catch-up)
         self._check_resources(force=True)
         self._notifier.notify("READY=1", f"STATUS={self._status_text()}")
@@ -220,6 +226,20 @@ class Service:
             self._shutdown()
         self._log.info("service_stopped", lines_left_for_next_start=len(self._held))
         return 0
+
+    def _prepare_fit(self) -> None:
+        """Get the fit kernels ready before the first line (built once after an install,
+        about half a minute; loaded from the cache after that), saying so meanwhile."""
+        self._notifier.notify(
+            "STATUS=preparing the fit kernels (built once after an install, then cached)"
+        )
+        self._log.info("fit_kernels_preparing")
+        seconds = prepare_kernels(fit_model_from_config(self.config))
+        self._log.info(
+            "fit_kernels_ready",
+            seconds=round(seconds, 2),
+            built=seconds > _KERNELS_BUILT_S,  # first start after an install (or an upgrade)
+        )
 
     def _turn(self) -> None:
         """One loop turn: reload if asked, guard resources, take ready files, work, report."""
