@@ -52,7 +52,14 @@ def _freq_list(text: str) -> np.ndarray:
 
 
 class _Formatter(argparse.ArgumentDefaultsHelpFormatter, argparse.RawDescriptionHelpFormatter):
-    """Option defaults shown, epilog kept as written."""
+    """Option defaults shown once (not where the help states its own default, nor for an
+    option without one), epilog kept as written."""
+
+    def _get_help_string(self, action: argparse.Action) -> str | None:
+        text = action.help or ""
+        if "(default" in text or action.default in (None, [], False, argparse.SUPPRESS):
+            return text
+        return super()._get_help_string(action)
 
 
 def _fault_help() -> str:

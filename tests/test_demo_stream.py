@@ -686,3 +686,21 @@ def test_the_signal_option_sets_the_preset_and_single_options_override_it() -> N
     assert config.freq_hz.size == 161
     assert config.tip.contrast == 0.09
     assert config.tip.dwell_s == pytest.approx(7e-3)
+
+
+def test_the_instruments_help_states_each_default_once() -> None:
+    """`python -m demo_stream --help` gives each option's default once: not a second
+    "(default: …)" after a help text that states its own, and none for an option that
+    has no default (argparse's ArgumentDefaultsHelpFormatter, which it builds on, would)."""
+    import contextlib
+    import io
+
+    from demo_stream.__main__ import build_parser
+
+    out = io.StringIO()
+    with contextlib.redirect_stdout(out), contextlib.suppress(SystemExit):
+        build_parser().parse_args(["--help"])
+    text = " ".join(out.getvalue().split())
+    assert "(default: None)" not in text
+    assert "sweep suits) (default" not in text  # --scene states its own default
+    assert "lines (slow axis) (default: 64)" in text
