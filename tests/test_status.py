@@ -147,6 +147,10 @@ def test_status_shows_the_scans_latest_alerts(scan_files: Path, tmp_path: Path) 
     assert "line 5 (forward)" in status.last_alerts[-1]
     shown = format_scan_status(status).splitlines()
     assert shown[-1] == "  " + status.last_alerts[-1]
+    # as JSON, the same alerts are the alert log's records, not text to parse again
+    records = status.as_json_dict()["last_alerts"]
+    assert [(r["rule"], r["line_index"]) for r in records][-1] == ("bad_file", 5)
+    assert records == [json.loads(e.to_json()) for e in events][-3:]
     # Lines 3, 4, 6 and 7 were never processed here; line 5 went to the quarantine.
     assert status.held == tuple(f"line_0000{i}_fwd.h5" for i in (3, 4, 6, 7))
     assert status.quarantined == 1

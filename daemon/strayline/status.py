@@ -7,6 +7,7 @@ alert log that cannot be parsed is reported in place of the alerts, never fatal.
 
 from __future__ import annotations
 
+import json
 from collections.abc import Sequence
 from dataclasses import asdict, dataclass, replace
 from datetime import UTC, datetime, timedelta
@@ -45,6 +46,8 @@ class ScanStatus:
     pixels_done : int
     last_alerts : tuple of str
         The scan's latest alert lines, readable.
+    last_events : tuple of AlertEvent
+        The same alerts as records (what ``status --json`` gives).
     held : tuple of str
         Line files in the scan's folder whose line is not in the store yet (being
         written, waiting to settle, or one that will never open), by name.
@@ -64,15 +67,18 @@ class ScanStatus:
     last_alerts: tuple[str, ...]
     held: tuple[str, ...] = ()
     quarantined: int = 0
+    last_events: tuple[AlertEvent, ...] = ()
 
     def as_json_dict(self) -> dict[str, Any]:
-        """Plain JSON-ready values (times as ISO 8601 strings, the store as a string)."""
+        """Plain JSON-ready values (times as ISO 8601 strings, the store as a string; the
+        last alerts as the alert log's records, not as text)."""
         data = asdict(self)
         data["store"] = str(self.store)
         for key in ("eta", "last_commit"):
             value = data[key]
             data[key] = value.isoformat() if value is not None else None
-        data["last_alerts"] = list(self.last_alerts)
+        data["last_alerts"] = [json.loads(event.to_json()) for event in self.last_events]
+        del data["last_events"]
         data["held"] = list(self.held)
         return data
 
@@ -124,7 +130,8 @@ def scan_status(store_path: Path, alerts: Sequence[AlertEvent] | None = None) ->
         written = status != STATUS_FILL
         pixels += int(written.sum())
         failed += int((written & failed_fits(status)).sum())
-    lines = tuple(format_alert(e) for e in (alerts or ()) if e.scan_id == scan_id)[-_ALERTS_SHOWN:]
+    events = tuple(e for e in (alerts or ()) if e.scan_id == scan_id)[-_ALERTS_SHOWN:]
+    lines = tuple(format_alert(e) for e in events)
     held, quarantined = _scan_folder(state)
     return ScanStatus(
         scan_id=scan_id,
@@ -139,6 +146,7 @@ def scan_status(store_path: Path, alerts: Sequence[AlertEvent] | None = None) ->
         last_alerts=lines,
         held=held,
         quarantined=quarantined,
+        last_events=events,
     )
 
 
