@@ -209,13 +209,15 @@ def test_a_complete_scan_says_complete(scan_files: Path, tmp_path: Path) -> None
 
 
 def test_failed_pixels_are_counted_from_the_status_map(scan_files: Path, tmp_path: Path) -> None:
-    """pixels_failed counts written pixels whose status code is not OK."""
+    """pixels_failed counts written pixels whose status code is neither OK nor MERGED (a
+    merged pixel is a measurement: its field is bounded)."""
     times = [T0 + timedelta(seconds=10 * k) for k in range(3)]
     store = _store_with_clock(tmp_path, scan_files, times)
     import zarr
 
     codes = np.asarray(zarr.open_group(store, mode="r")["forward/status"][:3])
-    assert scan_status(store).pixels_failed == int(np.count_nonzero(codes != FitStatus.OK))
+    measured = (codes == FitStatus.OK) | (codes == FitStatus.MERGED)
+    assert scan_status(store).pixels_failed == int(np.count_nonzero(~measured))
 
 
 # -- many stores, odd folders, bad alert logs -------------------------------------------

@@ -600,12 +600,18 @@ class ScanStore:
     def _write_rows(
         self, keys: list[Key], rows: list[dict[str, np.ndarray]], lines: list[ScanLine]
     ) -> tuple[list[Path], set[Path]]:
-        """Write the rows of ``keys`` into every map and ``y`` in one pass, then their raw
-        spectra; returns the files written and the folders whose entries changed (what a
-        durable commit must flush)."""
+        """Write the rows of ``keys`` into every map and ``y``, then their raw spectra;
+        returns the files written and the folders whose entries changed (what a durable
+        commit must flush).
+
+        Each map's rows go in runs of consecutive lines. All maps are written together, one
+        run each at a time (``rounds``): two runs of one map may share a chunk (lines 0 and
+        2 in chunks of 3), and written concurrently each would read the chunk, change its
+        own rows and write it back, the last undoing the first.
+        """
         files: list[Path] = []
         dirs: set[Path] = set()
-        writes: list[tuple[Any, tuple[slice, ...], np.ndarray]] = []
+        rounds: list[list[tuple[Any, tuple[slice, ...], np.ndarray]]] = [[]]
         for direction in DIRECTIONS:
             picked = [k for k, key in enumerate(keys) if key[1] == direction]
             if not picked:
@@ -618,7 +624,7 @@ class ScanStore:
             self._y_m[direction] = planned_y(
                 self._y_m[direction], self._y_written[direction], self._pitch_m
             )
-            writes.append((self._y[direction], (slice(None),), self._y_m[direction]))
+            rounds[0].append((self._y[direction], (slice(None),), self._y_m[direction]))
             files.append(chunk_file(self.path, f"{direction}/y", (0,)))
             # Maps are in increasing x, whatever order the pixels were acquired in (a
             # backward trace is written in decreasing x; its x_m says where each pixel is).
@@ -626,13 +632,16 @@ class ScanStore:
             for name in MAP_NAMES:
                 array = maps[name]
                 block = array.chunks[0]
-                for start, stop, members in _runs(index):
+                for n, (start, stop, members) in enumerate(_runs(index)):
                     data = np.stack([np.asarray(rows[picked[m]][name])[orders[m]] for m in members])
-                    writes.append((array, (slice(start, stop), slice(None)), data))
+                    if n == len(rounds):
+                        rounds.append([])
+                    rounds[n].append((array, (slice(start, stop), slice(None)), data))
                 for chunk in sorted({int(i) // block for i in index}):
                     files.append(chunk_file(self.path, f"{direction}/{name}", (chunk, 0)))
         dirs |= dirs_to_flush(files, self.path)
-        write_together(writes)
+        for writes in rounds:
+            write_together(writes)
         for key, line in zip(keys, lines, strict=True):
             raw_line = self.path / "raw" / key[1] / str(key[0])
             if raw_line.exists():  # spectra of a superseded version
