@@ -101,7 +101,7 @@ class ContrastCollapsedSpec(RuleSpec):
     suppressed_by: tuple[str, ...] = ("fluorescence_lost",)
     contrast_fraction_below: float = Field(default=0.5, gt=0.0, lt=1.0)
     contrast_fraction_clear_above: float = Field(default=0.75, gt=0.0, le=2.0)
-    contrast_z_below: float = Field(default=-4.0, lt=0.0)
+    contrast_z_below: float = Field(default=-14.5, lt=0.0)
     pl_fraction_normal_above: float = Field(default=0.8, gt=0.0, le=2.0)
     advice: str = (
         "PL is normal, so the NV is still there: check the microwave chain (source "
@@ -217,7 +217,7 @@ class FitFailuresRisingSpec(RuleSpec):
     suppressed_by: tuple[str, ...] = ("fluorescence_lost", "contrast_collapsed")
     failure_fraction_above: float = Field(default=0.2, ge=0.0, le=1.0)
     rise_fraction_above: float = Field(default=0.15, ge=0.0, le=1.0)
-    binomial_z_above: float = Field(default=4.0, ge=0.0)
+    binomial_z_above: float = Field(default=21.5, ge=0.0)
     rise_fraction_clear_below: float = Field(default=0.05, ge=0.0, le=1.0)
     advice: str = (
         "check the spectra of the failing pixels: lines merging (field too small), "
