@@ -447,3 +447,16 @@ def test_why_prints_the_decisions_of_one_line(
     assert RuleDecision.from_dict(json.loads(capsys.readouterr().out)) == record(
         6, "resonance_jump", "quiet"
     )
+
+
+def test_building_the_parser_does_not_import_the_demo_instrument() -> None:
+    """The parser is built before any command runs (and before `run` can take a stop
+    request): the demo instrument's imports are left to the demo and its help."""
+    code = (
+        "import sys, strayline.cli; strayline.cli.build_parser(); "
+        "print('demo_stream' in sys.modules)"
+    )
+    result = subprocess.run(
+        [sys.executable, "-c", code], capture_output=True, text=True, check=True, timeout=60
+    )
+    assert result.stdout.strip() == "False"
