@@ -747,7 +747,14 @@ def test_raw_spectra_round_trip_with_a_changing_frequency_count(tmp_path: Path) 
         first = make_records(0, n_freq=11)
         second_line, fit, field = make_records(1, n_freq=17)
         reference = np.full((N_PIXELS, 17), 40, dtype=np.int32)
-        second_line = ScanLine(**{**second_line.__dict__, "reference_counts": reference})
+        second_line = ScanLine(
+            **{
+                **second_line.__dict__,
+                "reference_counts": reference,
+                "temperature_k": 4.2,
+                "profile": "cryogenic-2d-magnet",
+            }
+        )
         store.write_line(*first)
         store.write_line(second_line, fit, field)
         store.write_line(*make_records(2))
@@ -769,6 +776,9 @@ def test_raw_spectra_round_trip_with_a_changing_frequency_count(tmp_path: Path) 
     assert raw1.y_m == second_line.y_m
     assert raw1.start_time == T0
     assert raw1.sha256 == second_line.sha256
+    # what a refit needs beyond the spectra: the temperature (D) and the profile
+    assert (raw1.temperature_k, raw1.profile) == (4.2, "cryogenic-2d-magnet")
+    assert (raw0.temperature_k, raw0.profile) == (None, None)
 
 
 def test_raw_spectra_are_compressed(tmp_path: Path) -> None:

@@ -166,6 +166,11 @@ class RawSpectra:
         Acquisition window, aware UTC.
     source : str
     sha256 : str or None
+    temperature_k : float or None
+        The line file's tip temperature, K, which sets D when the config derives it from
+        the temperature (None: the file had none, or the store predates this record).
+    profile : str or None
+        The sample-type profile the line file asked for (None: none, or an older store).
     """
 
     line_index: int
@@ -182,6 +187,8 @@ class RawSpectra:
     end_time: datetime
     source: str
     sha256: str | None
+    temperature_k: float | None = None
+    profile: str | None = None
 
 
 def _utc_now() -> datetime:
@@ -678,6 +685,10 @@ class ScanStore:
                 "end_time": format_time(line.end_time),
                 "source": str(line.source),
                 "sha256": line.sha256,
+                # what a refit needs beyond the spectra: D may follow the temperature,
+                # and the profile chooses the fit model
+                "temperature_k": None if line.temperature_k is None else float(line.temperature_k),
+                "profile": line.profile,
             },
         )
         arrays: dict[str, tuple[np.ndarray, tuple[str, ...], str]] = {
@@ -792,6 +803,8 @@ class ScanStore:
             end_time=parse_time(str(attrs["end_time"])),
             source=str(attrs["source"]),
             sha256=attrs["sha256"],  # type: ignore[arg-type]
+            temperature_k=_optional_float(attrs.get("temperature_k")),
+            profile=None if attrs.get("profile") is None else str(attrs["profile"]),
         )
 
     # ------------------------------------------------------------------ lifetime
@@ -823,6 +836,10 @@ class ScanStore:
             raise
         except OSError as exc:
             raise StoreError(f"{self.path}: {operation} failed: {exc}") from exc
+
+
+def _optional_float(value: object) -> float | None:
+    return None if value is None else float(value)  # type: ignore[arg-type]
 
 
 def _skip_flush(files: list[Path], dirs: set[Path]) -> None:
