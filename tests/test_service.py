@@ -185,6 +185,36 @@ def test_low_disk_stops_raw_spectra_then_restores_them(tmp_path: Path) -> None:
     assert events[0].seen_unit == "MiB"
 
 
+def test_a_reload_keeps_the_services_counts(tmp_path: Path) -> None:
+    """A reload (SIGHUP) builds a new pipeline; the lines written before it still count:
+    3 lines, a reload, 2 more lines make 5, not 2."""
+    config = load_config(_config(tmp_path, logging={"console": "off"}))
+    incoming = tmp_path / "incoming"
+    store_a, store_b = tmp_path / "output" / "count-a.zarr", tmp_path / "output" / "count-b.zarr"
+    _write_scan(incoming, "count-a", 3, tmp_path / "truth")
+    phase = {"reloaded": False}
+    started = time.monotonic()
+    service: Service
+
+    def stop_when() -> bool:
+        assert time.monotonic() - started < 60, "the service did not get there in 60 s"
+        if not phase["reloaded"] and len(committed_keys(store_a)) == 3:
+            service.request_reload()
+            _write_scan(incoming, "count-b", 2, tmp_path / "truth")
+            phase["reloaded"] = True
+        done = phase["reloaded"] and len(committed_keys(store_b)) == 2
+        if done:
+            phase["rebuilt"] = service.pipeline is not first
+        return done
+
+    service = Service(config, stop_when=stop_when)
+    first = service.pipeline
+    assert service.run() == 0
+    assert phase["rebuilt"], "the reload did not build a new pipeline"
+    assert service._counted is not None
+    assert service._counted.lines_written == 5  # the pipeline closed at the stop
+
+
 def test_chunks_left_in_a_deleted_store_are_set_aside_and_the_scan_rebuilt(
     tmp_path: Path,
 ) -> None:

@@ -619,6 +619,20 @@ class LinePipeline:
             active_alerts=len(self._engine.active()) + len(self._active),
         )
 
+    def count_on_from(self, previous: PipelineStatistics) -> None:
+        """Start this pipeline's counts (lines written, duplicates, quarantined, failed
+        pixels, the last line) where a previous pipeline of the same service left them,
+        so that a reload does not reset what ``status`` and the logs report."""
+        c = self._counters
+        c.lines_written += previous.lines_written
+        c.duplicates += previous.duplicates
+        c.quarantined += previous.quarantined
+        c.pixels_failed += previous.pixels_failed
+        if c.last_line_s is None:
+            c.last_scan_id = previous.last_scan_id
+            c.last_line_index = previous.last_line_index
+            c.last_line_s = previous.last_line_s
+
     def scan_progress(self) -> dict[str, tuple[int, int]]:
         """Per scan seen: (lines committed in its store, lines planned)."""
         out = dict(self._closed_progress)

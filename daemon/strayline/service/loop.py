@@ -47,7 +47,7 @@ from strayline.config import Config, load_config
 from strayline.errors import ConfigError, StoreError
 from strayline.fit import prepare_kernels
 from strayline.logs import configure_logging, reopen_log_files
-from strayline.pipeline import LinePipeline, fit_model_from_config
+from strayline.pipeline import LinePipeline, PipelineStatistics, fit_model_from_config
 from strayline.service._events import (
     ServiceAlert,
     disk_low_cleared,
@@ -145,6 +145,7 @@ class Service:
         self._held: deque[ReadyFile] = deque()
         self._unreadable = UnreadableFiles()
         self._unlogged: list[AlertEvent] = []  # announced, not yet in the alert log
+        self._counted: PipelineStatistics | None = None  # counts of the pipeline closed last
         self._outage: Outage | None = None
         self._last_alert: AlertEvent | None = None
         self._last_scan_id: str | None = None
@@ -517,6 +518,8 @@ class Service:
         pipeline = LinePipeline(
             config, sink=self._sink, active=self._alerts, background_products=True
         )
+        if self._counted is not None:  # a reload or an outage: the service's counts go on
+            pipeline.count_on_from(self._counted)
         if self._disk.low:
             pipeline.set_raw_spectra(False)  # no scan is open yet: nothing to reopen
         unlogged, self._unlogged = self._unlogged, []
@@ -543,6 +546,7 @@ class Service:
         pipeline, self.pipeline = self.pipeline, None
         if pipeline is None:
             return
+        self._counted = pipeline.statistics()  # the next pipeline counts on from here
         try:
             pipeline.close()
         except OSError as exc:  # the output is failing; what is committed is on disk
