@@ -41,6 +41,7 @@ from strayline.rules import (
     RulesConfig,
     ThresholdSpec,
     ZfsDriftSpec,
+    apply_overrides,
     default_rules,
     load_rules,
     rules_from_data,
@@ -546,12 +547,35 @@ def test_config_file_matches_the_built_in_rules() -> None:
 
 
 def test_unknown_key_is_a_config_error_with_its_key_path(tmp_path: Path) -> None:
-    """A misspelt threshold is rejected with the file, the key path and 'unknown key'."""
+    """A misspelt threshold is rejected with the file, the key path, 'unknown key', the
+    nearest key and the keys the rule takes."""
     path = tmp_path / "rules.yaml"
     path.write_text("rules:\n  - kind: fluorescence_lost\n    pl_fraction_belo: 0.5\n")
     with pytest.raises(ConfigError) as info:
         load_rules(path)
-    assert str(info.value) == f"{path}: rules[0].pl_fraction_belo: unknown key"
+    keys = ", ".join(FluorescenceLostSpec.model_fields)
+    assert str(info.value) == (
+        f"{path}: rules[0].pl_fraction_belo: unknown key (did you mean 'pl_fraction_below'?); "
+        f"the keys of this rule are {keys}"
+    )
+
+
+def test_an_unknown_key_in_rule_overrides_suggests_and_lists_the_keys() -> None:
+    """A misspelt key of a rule override names the override's key path, suggests the
+    nearest key and lists the rule's keys; the other problems are named after it."""
+    with pytest.raises(ConfigError) as info:
+        apply_overrides(default_rules(), {"resonance_jump": {"field_step_log_ratio_abve": 3.0}})
+    assert str(info.value).startswith(
+        "rule_overrides.resonance_jump.field_step_log_ratio_abve: unknown key (did you mean "
+        "'field_step_log_ratio_above'?); the keys of this rule are name, kind, "
+    )
+    with pytest.raises(ConfigError) as info:
+        apply_overrides(default_rules(), {"resonance_jump": {"typo_key": 1, "z_above": -1}})
+    paths = {"rule_overrides.resonance_jump.typo_key", "rule_overrides.resonance_jump.z_above"}
+    text = str(info.value)
+    first = text.split(":", maxsplit=1)[0]
+    assert first in paths
+    assert text.endswith(f"(and 1 more problem(s): {(paths - {first}).pop()})")
 
 
 def test_unknown_metric_suggests_the_nearest_name() -> None:
@@ -560,9 +584,13 @@ def test_unknown_metric_suggests_the_nearest_name() -> None:
         rules_from_data(
             [{"name": "x", "kind": "threshold", "metric": "pl_median_per_sec", "below": 1}]
         )
-    assert str(info.value) == (
-        "rules[0].metric: unknown metric 'pl_median_per_sec'; did you mean "
-        "'pl_median_per_s'?; found 'pl_median_per_sec'"
+    text = str(info.value)
+    assert text.startswith(
+        "rules[0].metric: unknown metric 'pl_median_per_sec' (did you mean "
+        "'pl_median_per_s'?); the metrics are line_index, "
+    )
+    assert text.endswith(
+        "and aux.<channel>.<stat> with stat one of median, p10, p90, min, max, spread"
     )
 
 
@@ -648,7 +676,9 @@ def test_rules_from_a_daemon_config_object() -> None:
     assert [r.name for r in custom.rules] == ["zfs_drift"]
     with pytest.raises(ConfigError) as info:
         load_rules(Cfg(rules=[{"kind": "zfs_drift", "drift_hz": 1e6}], source=Path("d.yaml")))
-    assert str(info.value) == "d.yaml: rules[0].drift_hz: unknown key"
+    assert str(info.value).startswith(
+        "d.yaml: rules[0].drift_hz: unknown key (did you mean 'drift_hz_above'?)"
+    )
 
 
 # -- tuned behaviour: suppression, latched tip events, drift floor ------------------------

@@ -8,7 +8,7 @@ was found. Re-exported by :mod:`strayline.rules`.
 from __future__ import annotations
 
 import difflib
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from os import PathLike
 from pathlib import Path
 from typing import Any, Protocol
@@ -26,6 +26,7 @@ from strayline.rules.spec import (
     FluorescenceLostSpec,
     ResonanceJumpSpec,
     RulesConfig,
+    ThresholdSpec,
     ZfsDriftSpec,
 )
 
@@ -62,18 +63,58 @@ def _key_path(loc: tuple[int | str, ...]) -> str:
     return "".join(parts) or "<root>"
 
 
-def _problem(first: Mapping[str, Any], n_errors: int) -> str:
-    """One pydantic error as our wording (the first of ``n_errors``)."""
+_SPEC_BY_KIND: dict[str, type[Any]] = {
+    cls.model_fields["kind"].default: cls
+    for cls in (
+        FluorescenceLostSpec,
+        ContrastCollapsedSpec,
+        ResonanceJumpSpec,
+        FitFailuresRisingSpec,
+        AcquisitionStalledSpec,
+        ZfsDriftSpec,
+        ThresholdSpec,
+    )
+}
+
+
+def _spec_keys(loc: tuple[Any, ...], spec: type[Any] | None = None) -> list[str]:
+    """The keys a rule of the kind named in ``loc`` (or ``spec``) takes; none if unknown."""
+    if spec is None:
+        kinds = [item for item in loc if isinstance(item, str) and item in _SPEC_BY_KIND]
+        spec = _SPEC_BY_KIND[kinds[-1]] if kinds else None
+    return list(spec.model_fields) if spec is not None else []
+
+
+def _problem(
+    errors: list[Any], spec: type[Any] | None = None, where: Callable[[Any], str] | None = None
+) -> str:
+    """The first pydantic error in our wording, the others' key paths after it.
+
+    An unknown key of a rule comes with the nearest key and the rule's keys; a message
+    that already shows what it found is not followed by a second "found". ``where`` gives
+    an error's key path (default: :func:`_key_path` of its location).
+    """
+    path_of = where if where is not None else (lambda e: _key_path(tuple(e["loc"])))
+    first = errors[0]
     problem = str(first["msg"]).removeprefix("Value error, ")
     if first["type"] == "extra_forbidden":
-        problem = "unknown key"
+        key = str(first["loc"][-1]) if first["loc"] else ""
+        known = _spec_keys(tuple(first["loc"]), spec)
+        close = difflib.get_close_matches(key, known, n=1)
+        problem = "unknown key" + (f" (did you mean {close[0]!r}?)" if close else "")
+        if known:
+            problem += f"; the keys of this rule are {', '.join(known)}"
     elif first["type"] == "union_tag_invalid":
         problem = f"kind must be one of {', '.join(RULE_KINDS)}; found {first['input']!r}"
     elif "input" in first and first["type"] not in ("missing",) and first["loc"]:
         # (a whole-set check at the root names what it found in its own message)
-        problem += f"; found {first['input']!r}"
-    if n_errors > 1:
-        problem += f" (and {n_errors - 1} more problem(s))"
+        found = repr(first["input"])
+        if found not in problem:
+            problem += f"; found {found}"
+    if len(errors) > 1:
+        others = ", ".join(path_of(e) for e in errors[1:4])
+        more = " …" if len(errors) > 4 else ""
+        problem += f" (and {len(errors) - 1} more problem(s): {others}{more})"
     return problem
 
 
@@ -97,9 +138,7 @@ def rules_from_data(
     except ValidationError as exc:
         errors = exc.errors()
         first = errors[0]
-        raise ConfigError(
-            path, _key_path(tuple(first["loc"])), _problem(first, len(errors))
-        ) from None
+        raise ConfigError(path, _key_path(tuple(first["loc"])), _problem(errors)) from None
 
 
 _ONE_RULE: TypeAdapter[Any] = TypeAdapter(AnyRuleSpec)
@@ -152,16 +191,21 @@ def apply_overrides(
             specs[name] = _ONE_RULE.validate_python({**data, **keys})
         except ValidationError as exc:
             errors = exc.errors()
-            first = errors[0]
-            loc = [str(v) for v in first["loc"]]
-            if loc and loc[0] == spec.kind:  # the discriminator's own level
-                loc = loc[1:]
-            raise ConfigError(path, ".".join([where, *loc]), _problem(first, len(errors))) from None
+
+            def key_path(error: Any, where: str = where, kind: str = spec.kind) -> str:
+                loc = [str(v) for v in error["loc"]]
+                if loc and loc[0] == kind:  # the discriminator's own level
+                    loc = loc[1:]
+                return ".".join([where, *loc])
+
+            raise ConfigError(
+                path, key_path(errors[0]), _problem(errors, type(spec), key_path)
+            ) from None
     try:
         return RulesConfig(version=rules.version, baseline=rules.baseline, rules=[*specs.values()])
     except ValidationError as exc:
         errors = exc.errors()
-        raise ConfigError(path, "rule_overrides", _problem(errors[0], len(errors))) from None
+        raise ConfigError(path, "rule_overrides", _problem(errors)) from None
 
 
 class _HasRules(Protocol):

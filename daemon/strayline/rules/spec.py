@@ -313,8 +313,11 @@ class ThresholdSpec(RuleSpec):
         names = metric_names()
         if value not in names:
             close = difflib.get_close_matches(value, names, n=1)
-            hint = f"; did you mean {close[0]!r}?" if close else ""
-            raise ValueError(f"unknown metric {value!r}{hint}")
+            hint = f" (did you mean {close[0]!r}?)" if close else ""
+            raise ValueError(
+                f"unknown metric {value!r}{hint}; the metrics are {', '.join(names)}, and "
+                f"aux.<channel>.<stat> with stat one of {', '.join(AUX_STATS)}"
+            )
         return value
 
     @model_validator(mode="after")
