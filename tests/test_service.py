@@ -26,6 +26,7 @@ import yaml
 import demo_stream as ds
 from strayline.alerts import read_alert_log
 from strayline.config import load_config
+from strayline.heartbeat import read_heartbeat
 from strayline.service import Service
 from strayline.service._guards import DiskGuard, free_disk_bytes
 from tests._daemon import (
@@ -187,12 +188,13 @@ def test_low_disk_stops_raw_spectra_then_restores_them(tmp_path: Path) -> None:
 
 def test_a_reload_keeps_the_services_counts(tmp_path: Path) -> None:
     """A reload (SIGHUP) builds a new pipeline; the lines written before it still count:
-    3 lines, a reload, 2 more lines make 5, not 2."""
+    3 lines, a reload, 2 more lines make 5, not 2. The heartbeat says "running" (this
+    process) while the service runs, and "stopped" with the 5 lines once it has stopped."""
     config = load_config(_config(tmp_path, logging={"console": "off"}))
     incoming = tmp_path / "incoming"
     store_a, store_b = tmp_path / "output" / "count-a.zarr", tmp_path / "output" / "count-b.zarr"
     _write_scan(incoming, "count-a", 3, tmp_path / "truth")
-    phase = {"reloaded": False}
+    phase: dict[str, Any] = {"reloaded": False}
     started = time.monotonic()
     service: Service
 
@@ -205,6 +207,7 @@ def test_a_reload_keeps_the_services_counts(tmp_path: Path) -> None:
         done = phase["reloaded"] and len(committed_keys(store_b)) == 2
         if done:
             phase["rebuilt"] = service.pipeline is not first
+            phase["beat"] = read_heartbeat(config.paths.state_dir)
         return done
 
     service = Service(config, stop_when=stop_when)
@@ -213,6 +216,9 @@ def test_a_reload_keeps_the_services_counts(tmp_path: Path) -> None:
     assert phase["rebuilt"], "the reload did not build a new pipeline"
     assert service._counted is not None
     assert service._counted.lines_written == 5  # the pipeline closed at the stop
+    running, stopped = phase["beat"], read_heartbeat(config.paths.state_dir)
+    assert (running.state, running.pid) == ("running", os.getpid())
+    assert (stopped.state, stopped.lines_written) == ("stopped", 5)
 
 
 def test_chunks_left_in_a_deleted_store_are_set_aside_and_the_scan_rebuilt(

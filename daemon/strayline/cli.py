@@ -347,14 +347,22 @@ def _cmd_check_config(args: argparse.Namespace) -> int:
 
 
 def _cmd_status(args: argparse.Namespace) -> int:
+    from strayline.heartbeat import describe_heartbeat, pid_alive, read_heartbeat
     from strayline.status import format_scan_status, scan_statuses
 
     config = _load(args)
     statuses = scan_statuses(config.paths.output_root, config.paths.alert_log)
+    beat = read_heartbeat(config.paths.state_dir)
     if args.json:
+        if beat is not None:  # first, and only when a daemon ever ran with this state folder
+            daemon = beat.as_json_dict() | {"process_present": pid_alive(beat.pid)}
+            print(json.dumps({"daemon": daemon}))
         for status in statuses:
             print(json.dumps(status.as_json_dict()))
-    elif not statuses:
+        return EXIT_OK
+    if beat is not None:
+        print(describe_heartbeat(beat))
+    if not statuses:
         print(f"no scans in {config.paths.output_root}")
     else:
         for status in statuses:

@@ -23,6 +23,7 @@ there.
 from __future__ import annotations
 
 import faulthandler
+import os
 import signal
 import sys
 import threading
@@ -32,9 +33,11 @@ from collections.abc import Callable
 from datetime import UTC, datetime
 from pathlib import Path
 from types import FrameType
+from typing import Literal
 
 import structlog
 
+from strayline import __version__
 from strayline._numbers import MIB
 from strayline.alerts import (
     ACTIVE_ALERTS_FILE,
@@ -46,6 +49,7 @@ from strayline.alerts import (
 from strayline.config import Config, load_config
 from strayline.errors import ConfigError, StoreError
 from strayline.fit import prepare_kernels
+from strayline.heartbeat import HEARTBEAT_INTERVAL_S, Heartbeat, write_heartbeat
 from strayline.logs import configure_logging, reopen_log_files
 from strayline.pipeline import LinePipeline, PipelineStatistics, fit_model_from_config
 from strayline.service._events import (
@@ -146,6 +150,9 @@ class Service:
         self._unreadable = UnreadableFiles()
         self._unlogged: list[AlertEvent] = []  # announced, not yet in the alert log
         self._counted: PipelineStatistics | None = None  # counts of the pipeline closed last
+        self._started = datetime.now(UTC)
+        self._next_beat_s = 0.0
+        self._beat_failing = False
         self._outage: Outage | None = None
         self._last_alert: AlertEvent | None = None
         self._last_scan_id: str | None = None
@@ -193,6 +200,7 @@ class Service:
     def run(self) -> int:
         """Run until stopped; return the process exit code (0 on a clean stop)."""
         faulthandler.enable(file=sys.stderr, all_threads=True)
+        self._beat("running")
         self._prepare_fit()
         self.watcher.start()  # arms the observer and lists the tree (catch-up)
         self._check_resources(force=True)
@@ -266,6 +274,9 @@ class Service:
         if now >= self._next_status_log_s:
             self._next_status_log_s = now + self.config.service.status_interval_s
             self._log_status()
+        if now >= self._next_beat_s:
+            self._next_beat_s = now + HEARTBEAT_INTERVAL_S
+            self._beat("running")
 
     def _wait_s(self) -> float:
         """How long the watcher may block: 1 s, less if a ping or retry falls due sooner."""
@@ -340,8 +351,33 @@ class Service:
     def _shutdown(self) -> None:
         self.watcher.stop()
         self._close_pipeline()
+        self._beat("stopped")
         self._sink.close()
         self._notifier.close()
+
+    def _beat(self, state: Literal["running", "stopped"]) -> None:
+        """Rewrite the heartbeat ``strayline status`` reads (a failure is logged once per
+        outage of it: the daemon never stops over its heartbeat)."""
+        stats = self.pipeline.statistics() if self.pipeline is not None else self._counted
+        beat = Heartbeat(
+            pid=os.getpid(),
+            state=state,
+            started=self._started,
+            seen=datetime.now(UTC),
+            lines_written=0 if stats is None else stats.lines_written,
+            waiting=len(self._held) + self.watcher.statistics().candidates_pending,
+            last_scan_id=self._last_scan_id,
+            output_failing=self._outage is not None,
+            version=__version__,
+        )
+        try:
+            write_heartbeat(self.config.paths.state_dir, beat)
+        except OSError as exc:
+            if not self._beat_failing:
+                self._log.warning("heartbeat_not_written", error=str(exc))
+            self._beat_failing = True
+        else:
+            self._beat_failing = False
 
     # -- unreadable files ---------------------------------------------------------------
 
