@@ -9,7 +9,14 @@ import math
 
 import numpy as np
 
-__all__ = ["HZ_PER_MHZ", "MAD_TO_SIGMA", "MIB", "finite_or_none", "median_and_spread"]
+__all__ = [
+    "HZ_PER_MHZ",
+    "MAD_TO_SIGMA",
+    "MIB",
+    "duration_text",
+    "finite_or_none",
+    "median_and_spread",
+]
 
 #: 1 / Φ⁻¹(3/4): the median absolute deviation of a normal sample times this is its σ
 #: (common practice; e.g. Huber, *Robust Statistics*, 1981, §5.1).
@@ -29,3 +36,18 @@ def median_and_spread(a: np.ndarray) -> tuple[float, float]:
 def finite_or_none(value: float | None) -> float | None:
     """``value`` as a float, or None when it is None, NaN or infinite (JSON has no NaN)."""
     return None if value is None or not math.isfinite(value) else float(value)
+
+
+def duration_text(seconds: float) -> str:
+    """A duration for people: ``42 s``, ``3 min``, ``2 h 5 min`` or ``3 d 4 h``."""
+    seconds = max(seconds, 0.0)
+    if seconds < 90:
+        return f"{seconds:.0f} s"
+    minutes = seconds / 60
+    if minutes < 90:
+        return f"{minutes:.0f} min"
+    hours, minutes = divmod(int(minutes), 60)
+    if hours < 48:
+        return f"{hours} h {minutes} min"
+    days, hours = divmod(hours, 24)
+    return f"{days} d {hours} h"

@@ -17,6 +17,7 @@ from pathlib import Path
 from typing import Any, Literal
 
 from strayline._atomic import write_text_atomic
+from strayline._numbers import duration_text
 
 __all__ = [
     "HEARTBEAT_FILE",
@@ -117,15 +118,6 @@ def pid_alive(pid: int) -> bool:
     return True
 
 
-def _ago(seconds: float) -> str:
-    seconds = max(seconds, 0.0)
-    if seconds < 90:
-        return f"{seconds:.0f} s"
-    if seconds < 90 * 60:
-        return f"{seconds / 60:.0f} min"
-    return f"{seconds / 3600:.1f} h"
-
-
 def describe_heartbeat(beat: Heartbeat, now: datetime | None = None, *, alive: Any = None) -> str:
     """One line about the daemon for ``strayline status``.
 
@@ -142,11 +134,11 @@ def describe_heartbeat(beat: Heartbeat, now: datetime | None = None, *, alive: A
     if silent_s > _SILENT_AFTER_S:
         there = "still there: blocked?" if alive(beat.pid) else "gone: killed or crashed?"
         return (
-            f"daemon: not seen for {_ago(silent_s)} (pid {beat.pid} {there}); check "
+            f"daemon: not seen for {duration_text(silent_s)} (pid {beat.pid} {there}); check "
             "`systemctl status strayline` and its journal"
         )
     failing = "; the output is failing" if beat.output_failing else ""
     return (
-        f"daemon: running (pid {beat.pid}) since {since}, last seen {_ago(silent_s)} ago; "
+        f"daemon: running (pid {beat.pid}) since {since}, last seen {duration_text(silent_s)} ago; "
         f"{work}, {beat.waiting} waiting{failing}"
     )

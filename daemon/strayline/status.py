@@ -14,6 +14,7 @@ from datetime import UTC, datetime, timedelta
 from pathlib import Path
 from typing import Any
 
+from strayline._numbers import duration_text
 from strayline.alerts import AlertEvent, format_alert, read_alert_log
 from strayline.fit import failed_fits
 from strayline.lines import DIRECTIONS, QUARANTINE_DIR, line_key_from_name
@@ -205,21 +206,6 @@ def scan_statuses(output_root: Path, alert_log: Path | None = None) -> list[Scan
     return out
 
 
-def _ago(seconds: float) -> str:
-    """``42 s``, ``3 min``, ``2 h 5 min`` or ``3 d 4 h``."""
-    seconds = max(seconds, 0.0)
-    if seconds < 90:
-        return f"{seconds:.0f} s"
-    minutes = seconds / 60
-    if minutes < 90:
-        return f"{minutes:.0f} min"
-    hours, minutes = divmod(int(minutes), 60)
-    if hours < 48:
-        return f"{hours} h {minutes} min"
-    days, hours = divmod(hours, 24)
-    return f"{days} d {hours} h"
-
-
 def format_scan_status(status: ScanStatus, now: datetime | None = None) -> str:
     """A few readable lines for one scan; ``now`` (default: the clock) dates the last line
     and tells a scan whose ETA has passed without its lines (stalled, or stopped)."""
@@ -234,7 +220,7 @@ def format_scan_status(status: ScanStatus, now: datetime | None = None) -> str:
         else ("complete" if complete else "ETA n/a")
     )
     last = (
-        f"last line {_ago((now - status.last_commit).total_seconds())} ago"
+        f"last line {duration_text((now - status.last_commit).total_seconds())} ago"
         if status.last_commit is not None
         else ""
     )
@@ -248,7 +234,7 @@ def format_scan_status(status: ScanStatus, now: datetime | None = None) -> str:
     out = [f"{status.scan_id}: " + ", ".join(part for part in parts if part)]
     if not complete and status.eta is not None and status.eta < now:
         out.append(
-            f"  the ETA passed {_ago((now - status.eta).total_seconds())} ago with "
+            f"  the ETA passed {duration_text((now - status.eta).total_seconds())} ago with "
             f"{status.n_lines_planned - fwd} line(s) to go: the scan stalled or stopped"
         )
     if status.held:
