@@ -11,7 +11,7 @@ import sys
 import threading
 import time
 from collections.abc import Iterator
-from datetime import datetime
+from datetime import datetime, timedelta
 from pathlib import Path
 
 import pytest
@@ -552,3 +552,37 @@ def test_alerts_filter_by_severity_and_say_when_a_scan_has_none(
     err = capsys.readouterr().err
     assert "no alerts for scan 'nosuch'" in err
     assert "scans with alerts: night-run" in err
+
+
+def test_active_alerts_are_the_raises_not_cleared_since(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """--active keeps, per scan and rule, a raise with no clear after it: a raised then
+    cleared alert is gone, one raised again after its clear is back, another scan's raise
+    stays; with none raised it says so."""
+    log = tmp_path / "alerts.jsonl"
+    sink = AlertSink(log)
+    t = datetime.fromisoformat(EVENT.time)
+    steps = [
+        ("night-run", "fluorescence_lost", "raised"),
+        ("night-run", "fluorescence_lost", "cleared"),
+        ("night-run", "resonance_jump", "raised"),
+        ("day-run", "fluorescence_lost", "raised"),
+        ("night-run", "fluorescence_lost", "raised"),
+    ]
+    for k, (scan, rule, state) in enumerate(steps):
+        when = (t + timedelta(minutes=k)).isoformat()
+        sink.deliver(dataclasses.replace(EVENT, time=when, scan_id=scan, rule=rule, state=state))
+    out = io.StringIO()
+    assert alerts.follow_alerts(log, active=True, as_json=True, out=out) == 0
+    shown = [(r["scan_id"], r["rule"]) for r in map(json.loads, out.getvalue().splitlines())]
+    assert shown == [
+        ("night-run", "resonance_jump"),
+        ("day-run", "fluorescence_lost"),
+        ("night-run", "fluorescence_lost"),
+    ]
+    quiet = tmp_path / "quiet.jsonl"
+    AlertSink(quiet).deliver(dataclasses.replace(EVENT, state="cleared"))
+    capsys.readouterr()
+    assert alerts.follow_alerts(quiet, active=True, out=io.StringIO()) == 0
+    assert "no alert is raised now" in capsys.readouterr().err

@@ -153,6 +153,9 @@ def build_parser() -> argparse.ArgumentParser:
         help="only alerts at or after this ISO 8601 time, or this long ago (30m, 1h, 2d)",
     )
     alerts.add_argument(
+        "--active", action="store_true", help="only alerts raised and not cleared since"
+    )
+    alerts.add_argument(
         "--severity",
         choices=("info", "warning", "critical"),
         help="only alerts of this severity and more urgent ones",
@@ -379,6 +382,7 @@ def _cmd_alerts(args: argparse.Namespace) -> int:
         scan_id=args.scan,
         since=args.since,
         severity=args.severity,
+        active=args.active,
         as_json=args.json,
         follow=args.follow,
         last=args.lines,

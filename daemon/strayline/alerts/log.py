@@ -15,6 +15,7 @@ from strayline.alerts.event import AlertEvent
 
 __all__ = [
     "SEVERITY_ORDER",
+    "active_now",
     "follow_alerts",
     "format_alert",
     "parse_since",
@@ -28,6 +29,15 @@ SEVERITY_ORDER = ("info", "warning", "critical")
 _SPAN = re.compile(r"(\d+(?:\.\d+)?)\s*([smhd])")
 _SPAN_WHOLE = re.compile(r"\s*(?:\d+(?:\.\d+)?\s*[smhd]\s*)+")
 _UNIT_S = {"s": 1.0, "m": 60.0, "h": 3600.0, "d": 86400.0}
+
+
+def active_now(events: list[AlertEvent]) -> list[AlertEvent]:
+    """The raise events not cleared since, one per (scan, rule), oldest first: what is
+    wrong right now, as far as the alert log knows."""
+    last: dict[tuple[str, str], AlertEvent] = {}
+    for event in events:
+        last[(event.scan_id, event.rule)] = event
+    return [e for e in sorted(last.values(), key=lambda e: e.datetime) if e.state == "raised"]
 
 
 def parse_since(text: str, now: datetime) -> datetime:
@@ -136,6 +146,7 @@ def follow_alerts(
     scan_id: str | None = None,
     since: str | datetime | None = None,
     severity: str | None = None,
+    active: bool = False,
     as_json: bool = False,
     follow: bool = False,
     last: int = 20,
@@ -148,7 +159,8 @@ def follow_alerts(
 
     ``since`` is an ISO 8601 time (a time without zone is taken as UTC) or a span back
     from now (:func:`parse_since`); ``severity`` keeps that severity and the more urgent
-    ones (:data:`SEVERITY_ORDER`). ``stop`` ends following (tests); Ctrl-C ends it too. A
+    ones (:data:`SEVERITY_ORDER`); ``active`` keeps only the alerts raised and not cleared
+    since (:func:`active_now`). ``stop`` ends following (tests); Ctrl-C ends it too. A
     bad ``since`` or ``severity`` prints the problem and returns 2; a ``scan_id`` the log
     has no alert of says so, lists the scans it has, and returns 1 (unless following).
     """
@@ -181,8 +193,12 @@ def follow_alerts(
     for problem in bad:  # a torn or foreign line costs that line, not the whole log
         print(f"strayline: skipped {printable(problem)}", file=sys.stderr)
     events = [
-        e for e in everything if (scan_id is None or e.scan_id == scan_id) and e.severity in wanted
+        e
+        for e in (active_now(everything) if active else everything)
+        if (scan_id is None or e.scan_id == scan_id) and e.severity in wanted
     ]
+    if active and not events and not follow:
+        print("strayline: no alert is raised now", file=sys.stderr)
     for event in events[-last:] if last > 0 else []:
         show(event)
     stream.flush()
