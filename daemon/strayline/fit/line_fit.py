@@ -64,8 +64,7 @@ MEASURED = frozenset({FitStatus.OK, FitStatus.MERGED})
 def failed_fits(status: np.ndarray) -> np.ndarray:
     """Where a pixel's fit failed: its status is no measurement (:data:`MEASURED`). A
     merged pixel is not a failure: its field is below resolution and bounded."""
-    status = np.asarray(status)
-    return (status != FitStatus.OK) & (status != FitStatus.MERGED)
+    return ~np.isin(np.asarray(status), [int(s) for s in MEASURED])
 
 
 @dataclass(frozen=True, eq=False)

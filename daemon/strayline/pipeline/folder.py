@@ -21,6 +21,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, TextIO
 
+from strayline._numbers import duration_text
 from strayline.config import Config
 from strayline.lines import line_key_from_name
 from strayline.pipeline.line_pipeline import LineOutcome, LinePipeline
@@ -196,7 +197,7 @@ class ProcessProgress:
         elapsed = max(time.monotonic() - self.started_s, 1e-9)
         rate = self.lines_done / elapsed
         left = (self.lines_total - self.lines_done) / rate if rate > 0 else math.inf
-        eta = "?" if not math.isfinite(left) else _clock_text(left)
+        eta = "?" if not math.isfinite(left) else duration_text(left)
         return (
             f"scans {self.scans_done}/{self.scans_total} · lines {self.lines_done}/"
             f"{self.lines_total} · {rate:.1f} lines/s · {eta} left"
@@ -211,12 +212,6 @@ class ProcessProgress:
         else:
             self.stream.write(self.text() + "\n")
         self.stream.flush()
-
-
-def _clock_text(seconds: float) -> str:
-    minutes, secs = divmod(round(seconds), 60)
-    hours, minutes = divmod(minutes, 60)
-    return f"{hours}:{minutes:02d}:{secs:02d}"
 
 
 def process_folder(
