@@ -23,7 +23,17 @@ from strayline.store._ledger import parse_records
 
 REPO = Path(__file__).resolve().parents[1]
 SCAN = "cli-scan"
-COMMANDS = ("run", "process", "status", "alerts", "why", "check-config", "demo", "products")
+COMMANDS = (
+    "run",
+    "process",
+    "refit",
+    "status",
+    "alerts",
+    "why",
+    "check-config",
+    "demo",
+    "products",
+)
 
 
 def _write_config(tmp_path: Path, **sections: Any) -> Path:
@@ -104,8 +114,8 @@ def test_an_unknown_command_is_a_usage_error(capsys: pytest.CaptureFixture[str])
 
 
 def test_the_parser_knows_exactly_the_commands() -> None:
-    """The parser's commands are run, process, status, alerts, why, check-config, demo and
-    products."""
+    """The parser's commands are run, process, refit, status, alerts, why, check-config,
+    demo and products."""
     parser = build_parser()
     sub = next(a for a in parser._actions if a.dest == "command")
     assert tuple(sub.choices) == COMMANDS  # type: ignore[arg-type]

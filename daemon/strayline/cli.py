@@ -15,7 +15,7 @@ from collections.abc import Sequence
 from pathlib import Path
 
 from strayline import __version__
-from strayline.errors import EXIT_CONFIG, EXIT_LOCKED, EXIT_OK, EXIT_USAGE, ConfigError
+from strayline.errors import EXIT_CONFIG, EXIT_LOCKED, EXIT_OK, EXIT_USAGE, ConfigError, StoreError
 
 __all__ = ["build_parser", "main"]
 
@@ -104,6 +104,21 @@ def _fault(text: str) -> str:
     return text
 
 
+def _parallel_args(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument(
+        "--workers",
+        type=_positive_int,
+        default=None,
+        metavar="N",
+        help="scans processed side by side (default: the cores, at most one per scan)",
+    )
+    parser.add_argument(
+        "--scheduler",
+        metavar="ADDRESS",
+        help="run the scans on the Dask cluster of this scheduler (e.g. tcp://host:8786)",
+    )
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of the ``strayline`` command."""
     parser = argparse.ArgumentParser(
@@ -125,19 +140,28 @@ def build_parser() -> argparse.ArgumentParser:
     process.add_argument(
         "folder", type=Path, metavar="DIR", help="folder holding scan folders of line files"
     )
-    process.add_argument(
-        "--workers",
-        type=_positive_int,
-        default=None,
-        metavar="N",
-        help="scans processed side by side (default: the cores, at most one per scan)",
-    )
-    process.add_argument(
-        "--scheduler",
-        metavar="ADDRESS",
-        help="run the scans on the Dask cluster of this scheduler (e.g. tcp://host:8786)",
-    )
+    _parallel_args(process)
     _config_arg(process)
+
+    refit = sub.add_parser(
+        "refit",
+        help="fit archived scans again from their stored raw spectra into new stores",
+    )
+    refit.add_argument(
+        "source",
+        type=Path,
+        metavar="SOURCE",
+        help="a scan store (<scan>.zarr) or a folder with stores below it; only read",
+    )
+    refit.add_argument(
+        "--out",
+        type=Path,
+        required=True,
+        metavar="DIR",
+        help="folder for the new stores, their products, state and alert log",
+    )
+    _parallel_args(refit)
+    _config_arg(refit)
 
     status = sub.add_parser("status", help="per scan: lines done/planned, rate, ETA, alerts")
     _config_arg(status)
@@ -313,13 +337,36 @@ def _cmd_process(args: argparse.Namespace) -> int:
     summary = process_folder(
         config, args.folder, workers=workers, scheduler=args.scheduler, progress=sys.stderr
     )
-    where = f"on {args.scheduler}" if args.scheduler else f"{summary.workers} worker(s)"
-    print(
-        f"{summary.files} files: {summary.written} written, {summary.duplicates} already done, "
-        f"{summary.quarantined} quarantined, {summary.vanished} vanished; "
+    print(_summary_text(summary, args.scheduler, "files"))
+    return EXIT_OK
+
+
+def _summary_text(summary, scheduler: str | None, what: str) -> str:  # type: ignore[no-untyped-def]
+    where = f"on {scheduler}" if scheduler else f"{summary.workers} worker(s)"
+    return (
+        f"{summary.files} {what}: {summary.written} written, {summary.duplicates} already "
+        f"done, {summary.quarantined} quarantined, {summary.vanished} vanished; "
         f"{summary.pixels_failed} pixel fits failed; {summary.alerts} alert events; "
         f"{summary.scans} scan(s) in {summary.wall_s:.1f} s, {where}"
     )
+
+
+def _cmd_refit(args: argparse.Namespace) -> int:
+    from strayline.pipeline import default_workers, refit_stores
+
+    config = _load(args)
+    _configure_logs(config)
+    workers = args.workers if args.workers is not None else default_workers()
+    summary = refit_stores(
+        config,
+        args.source,
+        args.out,
+        workers=workers,
+        scheduler=args.scheduler,
+        progress=sys.stderr,
+    )
+    print(_summary_text(summary, args.scheduler, "lines"))
+    print(f"new stores in {args.out.absolute()}")
     return EXIT_OK
 
 
@@ -470,6 +517,7 @@ def _cmd_products(args: argparse.Namespace) -> int:
 _COMMANDS = {
     "run": _cmd_run,
     "process": _cmd_process,
+    "refit": _cmd_refit,
     "check-config": _cmd_check_config,
     "status": _cmd_status,
     "alerts": _cmd_alerts,
@@ -493,7 +541,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     except ConfigError as error:
         print(f"strayline: config error: {error}", file=sys.stderr)
         return EXIT_CONFIG
-    except FileNotFoundError as error:
+    except (FileNotFoundError, StoreError) as error:
         print(f"strayline: {error}", file=sys.stderr)
         return 1
     except KeyboardInterrupt:

@@ -12,11 +12,9 @@ JSON log. The stores are the same, bit for bit, whatever the number of workers.
 from __future__ import annotations
 
 import math
-import os
 import re
 import time
-from collections.abc import Callable, Iterator
-from contextlib import contextmanager
+from collections.abc import Callable, Iterable
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, TextIO
@@ -24,6 +22,7 @@ from typing import Any, TextIO
 from strayline._numbers import duration_text
 from strayline.config import Config
 from strayline.lines import line_key_from_name
+from strayline.pipeline._cluster import cap_fit_threads, dask_client, default_workers, run_tasks
 from strayline.pipeline.line_pipeline import LineOutcome, LinePipeline
 from strayline.watch import LineNames, list_tree
 
@@ -35,7 +34,9 @@ __all__ = [
     "process_folder",
     "process_scan_files",
     "rule_state_file",
+    "run_scan_tasks",
     "scan_tasks",
+    "summarise",
 ]
 
 
@@ -69,7 +70,7 @@ class ProcessSummary:
         )
 
 
-def _summarise(outcomes: list[LineOutcome]) -> ProcessSummary:
+def summarise(outcomes: list[LineOutcome]) -> ProcessSummary:
     kinds = [o.kind for o in outcomes]
     return ProcessSummary(
         files=len(outcomes),
@@ -128,14 +129,9 @@ def rule_state_file(config: Config, root: Path, scan_folder: Path) -> Path:
     return config.paths.state_dir / "process" / f"{_UNSAFE.sub('_', relative)}.json"
 
 
-def process_scan_files(
-    config: Config, root: Path, files: list[Path], *, threads: int | None = None
-) -> ProcessSummary:
+def process_scan_files(config: Config, root: Path, files: list[Path]) -> ProcessSummary:
     """One task: the line files of one scan folder through one pipeline, in order,
     :data:`PROCESS_BATCH` at a time, its rule state in :func:`rule_state_file`.
-
-    ``threads`` caps the fit kernels' threads (numba) in this process, so that workers
-    side by side do not oversubscribe the cores.
 
     Raises
     ------
@@ -143,11 +139,6 @@ def process_scan_files(
         If the store fails or a file cannot be read: the task stops (files before it are
         done; a second pass skips them).
     """
-    if threads is not None:
-        import numba
-
-        cap = int(numba.config.NUMBA_NUM_THREADS)  # type: ignore[attr-defined]
-        numba.set_num_threads(max(1, min(threads, cap)))
     pipeline = LinePipeline(
         config, root=root, rule_state=rule_state_file(config, root, files[0].parent)
     )
@@ -161,16 +152,7 @@ def process_scan_files(
                 raise OSError(f"{unreadable[0].path}: {unreadable[0].problem}")
     finally:
         pipeline.close()
-    return _summarise(outcomes)
-
-
-def _task_in_worker(config: Config, root: Path, files: list[Path], threads: int) -> ProcessSummary:
-    """A task on a Dask worker: logs to the config's JSON file only (the console is the
-    client's), then :func:`process_scan_files`."""
-    from strayline.logs import configure_logging
-
-    configure_logging(level=config.logging.level, console="off", json_file=config.logging.json_file)
-    return process_scan_files(config, root, files, threads=threads)
+    return summarise(outcomes)
 
 
 @dataclass
@@ -246,75 +228,60 @@ def process_folder(
         If a store fails or a file cannot be read: the pass stops after the scans under
         way (work done is kept; a second pass skips it).
     """
-    started = time.monotonic()
     root = Path(folder).absolute()
     tasks = scan_tasks(config, root)
     meter = ProcessProgress(len(tasks), sum(len(files) for _, files in tasks), progress)
+    arguments = [(root, files) for _, files in tasks]
+    return run_scan_tasks(
+        process_scan_files, config, arguments, workers=workers, scheduler=scheduler, meter=meter
+    )
+
+
+def run_scan_tasks(
+    task: Callable[..., ProcessSummary],
+    config: Config,
+    arguments: list[tuple[Any, ...]],
+    *,
+    workers: int,
+    scheduler: str | None,
+    meter: ProcessProgress,
+) -> ProcessSummary:
+    """``task(config, *args)`` for each ``args`` (a scan each): one after another here
+    when ``workers`` is 1, else on Dask (``workers`` single-threaded worker processes of an
+    embedded cluster, or the cluster of ``scheduler``), the fit threads shared out; the
+    summaries added up as they finish.
+
+    Raises
+    ------
+    Exception
+        The first task's failure, once every task has ended.
+    """
+    started = time.monotonic()
     total = ProcessSummary(0, 0, 0, 0, 0, 0, 0)
-    workers = max(1, min(workers, len(tasks)))  # a worker per scan at most
+    workers = max(1, min(workers, len(arguments)))  # a worker per scan at most
     if workers == 1 and scheduler is None:
-        for _, files in tasks:
-            summary = process_scan_files(config, root, files)
+        summaries: Iterable[ProcessSummary] = (task(config, *args) for args in arguments)
+        for summary in summaries:
             meter.add(summary)
             total += summary
     else:
-        threads = max(1, default_workers() // max(workers, 1))
-        with _dask_client(workers, scheduler) as client:
-            for summary in _run_on(client, config, root, tasks, threads):
+        threads = max(1, default_workers() // workers)
+        calls = [(task, config, threads, *args) for args in arguments]
+        with dask_client(workers, scheduler) as client:
+            for summary in run_tasks(client, _in_worker, calls, task.__name__):
                 meter.add(summary)
                 total += summary
     wall_s = time.monotonic() - started
     return ProcessSummary(**{**total.__dict__, "wall_s": wall_s, "workers": workers})
 
 
-@contextmanager
-def _dask_client(workers: int, scheduler: str | None) -> Iterator[Any]:
-    """A client of the scheduler at ``scheduler``, or of an embedded local cluster of
-    ``workers`` single-threaded processes (closed on exit)."""
-    from distributed import Client, LocalCluster
+def _in_worker(
+    task: Callable[..., ProcessSummary], config: Config, threads: int, *args: Any
+) -> ProcessSummary:
+    """A task on a Dask worker: logs to the config's JSON file only (the console is the
+    client's), the fit kernels on ``threads`` threads, then ``task(config, *args)``."""
+    from strayline.logs import configure_logging
 
-    if scheduler is not None:
-        with Client(scheduler) as client:
-            yield client
-        return
-    with (
-        LocalCluster(
-            n_workers=workers,
-            threads_per_worker=1,
-            processes=True,
-            dashboard_address=None,
-            silence_logs=40,  # logging.ERROR: the workers' own chatter stays out
-        ) as cluster,
-        Client(cluster) as client,
-    ):
-        yield client
-
-
-def _run_on(
-    client: Any, config: Config, root: Path, tasks: list[tuple[Path, list[Path]]], threads: int
-) -> Iterator[ProcessSummary]:
-    """Submit one task per scan folder; yield their summaries as they finish. The first
-    failure is raised once every task has ended (none is left writing behind us)."""
-    from distributed import as_completed
-
-    task: Callable[..., ProcessSummary] = _task_in_worker
-    futures = [
-        client.submit(task, config, root, files, threads, pure=False, key=f"scan-{i}")
-        for i, (_, files) in enumerate(tasks)
-    ]
-    failure: BaseException | None = None
-    for future in as_completed(futures):
-        try:
-            yield future.result()
-        except Exception as error:  # re-raised below, once the rest have ended
-            failure = failure or error
-    if failure is not None:
-        raise failure
-
-
-def default_workers() -> int:
-    """``process --workers``' default: the cores this process may use."""
-    try:
-        return len(os.sched_getaffinity(0))
-    except AttributeError:  # not on Linux
-        return os.cpu_count() or 1
+    configure_logging(level=config.logging.level, console="off", json_file=config.logging.json_file)
+    cap_fit_threads(threads)
+    return task(config, *args)

@@ -182,6 +182,10 @@ class LinePipeline:
     rule_state : Path or None
         Where the rule engine's state is kept (default ``paths.state_dir /
         rules_state.json``; a ``process`` pass keeps one per scan folder).
+    move_bad_files : bool
+        Quarantine a file that fails (the default); off, such a line is an
+        ``unreadable`` outcome and nothing is moved (a refit, whose lines come from a
+        store and whose files, if still there, belong to the archive).
     """
 
     def __init__(
@@ -194,8 +198,10 @@ class LinePipeline:
         background_products: bool = False,
         clock: Callable[[], float] = time.time,
         rule_state: Path | None = None,
+        move_bad_files: bool = True,
     ) -> None:
         self.config = config
+        self._move_bad_files = move_bad_files
         self._log = structlog.get_logger("strayline.pipeline")
         self._limits = LineLimits(
             max_pixels=config.limits.max_pixels,
@@ -240,7 +246,8 @@ class LinePipeline:
         Exception
             A fault of strayline's (the caller sets the file aside, :meth:`set_aside`).
         """
-        return self._run([Path(path)], strict=True)[0]
+        path = Path(path)
+        return self._run([(path, partial(self._read, path))], strict=True)[0]
 
     def process_many(self, paths: Sequence[Path]) -> list[LineOutcome]:
         """Run files that are ready together through every stage, in order: the
@@ -262,18 +269,39 @@ class LinePipeline:
             committed (given again, their files come back as duplicates); the files of the
             failed group and those after it are left in place.
         """
-        return self._run([Path(p) for p in paths], strict=False)
+        items = [(Path(p), partial(self._read, Path(p))) for p in paths]
+        return self._run(items, strict=False)
 
-    def _run(self, paths: list[Path], *, strict: bool) -> list[LineOutcome]:
-        """:meth:`process` (``strict``: an unreadable file or a fault raises) and
-        :meth:`process_many` (they become outcomes)."""
-        outcomes: list[LineOutcome | None] = [None] * len(paths)
+    def process_lines(self, lines: Sequence[tuple[Path, ScanLine]]) -> list[LineOutcome]:
+        """Run lines read elsewhere (a store's raw spectra, for a refit) through every
+        stage after reading, in order, as :meth:`process_many` runs files; each comes with
+        the path of the line file it was first read from, which chooses its profile (by
+        its folder) and names it in logs and outcomes.
+
+        Raises
+        ------
+        StoreError
+            As :meth:`process_many`.
+        """
+        items = [(Path(path), partial(_given, line)) for path, line in lines]
+        return self._run(items, strict=False)
+
+    def _read(self, path: Path) -> ScanLine:
+        self._check_inside(path)
+        return read_line_file(path, limits=self._limits)
+
+    def _run(
+        self, items: Sequence[tuple[Path, Callable[[], ScanLine]]], *, strict: bool
+    ) -> list[LineOutcome]:
+        """:meth:`process` (``strict``: an unreadable file or a fault raises),
+        :meth:`process_many` and :meth:`process_lines` (they become outcomes): each item
+        is a file's path and what reads its line."""
+        outcomes: list[LineOutcome | None] = [None] * len(items)
         group: list[_Fitted] = []
-        for position, path in enumerate(paths):
+        for position, (path, read) in enumerate(items):
             try:
                 started = time.perf_counter()
-                self._check_inside(path)
-                line = read_line_file(path, limits=self._limits)
+                line = read()
                 read_s = time.perf_counter() - started
                 key = (line.scan_id, line.line_index, line.direction)
                 if group and (
@@ -663,6 +691,9 @@ class LinePipeline:
         c.last_line_s = time.time()
 
     def _quarantine(self, path: Path, error: LineFileError) -> LineOutcome:
+        if not self._move_bad_files:  # a refit: the line is no file of ours to move
+            self._log.error("line_refused", file=str(path), problem=str(error))
+            return LineOutcome(path, "unreadable", problem=str(error))
         self._counters.quarantined += 1
         try:
             record = quarantine_file(
@@ -853,3 +884,8 @@ class LinePipeline:
             raw_spectra=store.raw_spectra,
         )
         return scan, events
+
+
+def _given(line: ScanLine) -> ScanLine:
+    """The reader of a line that was read already."""
+    return line

@@ -18,6 +18,7 @@ from strayline.errors import StoreError
 from strayline.lines import DIRECTIONS
 from strayline.store._layout import MAPS, STORE_FORMAT, row_blocks_on_disk
 from strayline.store._ledger import LEDGER_FILE, LedgerState, read_ledger_state
+from strayline.store._raw import RawSpectra, read_raw_group
 
 __all__ = [
     "NotAScanStore",
@@ -123,6 +124,29 @@ class StoreReader:
             return _read_sparse(array, self.path, f"{direction}/{name}")
         except OSError as error:
             raise StoreError(f"{self.path}: reading {direction}/{name} failed: {error}") from error
+
+    def read_raw(self, line_index: int, direction: str) -> RawSpectra | None:
+        """The raw spectra of a line committed in this view, or None if the store kept none
+        for it (``store.raw_spectra`` was off when it was written).
+
+        Raises
+        ------
+        StoreError
+            If they are there but cannot be read.
+        """
+        if (line_index, direction) not in self.ledger.committed:
+            return None
+        where = f"raw/{direction}/{line_index}"
+        try:
+            group = self._group[where]
+        except KeyError:
+            return None
+        try:
+            if not isinstance(group, zarr.Group):
+                raise TypeError("a group was expected")
+            return read_raw_group(group, line_index, direction)
+        except (OSError, KeyError, ValueError, TypeError) as error:
+            raise StoreError(f"{self.path}: reading {where} failed: {error}") from error
 
     def nv_axis_rad(self) -> tuple[float, float] | None:
         """The NV axis (θ, φ) in rad recorded for the scan, or None where it is not.

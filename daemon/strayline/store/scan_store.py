@@ -68,7 +68,8 @@ from strayline.store._layout import (
     row_blocks_on_disk,
     write_together,
 )
-from strayline.store._ledger import Key, Ledger, LedgerEntry, format_time, parse_time
+from strayline.store._ledger import Key, Ledger, LedgerEntry, format_time
+from strayline.store._raw import RawSpectra, read_raw_group, write_raw_group
 from strayline.store._rows import count_failures, line_rows, planned_y
 from strayline.store.reader import store_path
 
@@ -140,55 +141,6 @@ class StoreStatistics:
     lines_recovered: int
     fit_failures: int
     last_commit_time: datetime | None
-
-
-@dataclass(frozen=True, eq=False)
-class RawSpectra:
-    """The raw spectra of one stored line, enough to fit it again.
-
-    Attributes
-    ----------
-    freq_hz : ndarray, shape (n_freq,)
-        Microwave frequencies, Hz.
-    counts : ndarray, shape (n_pixels, n_freq)
-        Photon counts per sample, in the line file's dtype.
-    x_m : ndarray, shape (n_pixels,)
-        Fast-axis pixel positions, m.
-    reference_counts : ndarray, shape (n_pixels, n_freq), or None
-        Counts with the microwave off, if recorded.
-    dwell_s : float
-        Integration time per sample, s.
-    y_m : float
-        Slow-axis position, m.
-    nv_theta_rad, nv_phi_rad : float
-        NV axis orientation in the scan frame, rad.
-    start_time, end_time : datetime
-        Acquisition window, aware UTC.
-    source : str
-    sha256 : str or None
-    temperature_k : float or None
-        The line file's tip temperature, K, which sets D when the config derives it from
-        the temperature (None: the file had none, or the store predates this record).
-    profile : str or None
-        The sample-type profile the line file asked for (None: none, or an older store).
-    """
-
-    line_index: int
-    direction: str
-    freq_hz: np.ndarray
-    counts: np.ndarray
-    x_m: np.ndarray
-    reference_counts: np.ndarray | None
-    dwell_s: float
-    y_m: float
-    nv_theta_rad: float
-    nv_phi_rad: float
-    start_time: datetime
-    end_time: datetime
-    source: str
-    sha256: str | None
-    temperature_k: float | None = None
-    profile: str | None = None
 
 
 def _utc_now() -> datetime:
@@ -673,41 +625,7 @@ class ScanStore:
 
     def _write_raw(self, key: Key, line: ScanLine) -> None:
         """Store the line's spectra as group ``raw/<direction>/<line_index>``."""
-        index, direction = key
-        group = self._raw[direction].create_group(
-            str(index),
-            attributes={
-                "dwell_s": float(line.dwell_s),
-                "y_m": float(line.y_m),
-                "nv_theta_rad": float(line.nv_theta_rad),
-                "nv_phi_rad": float(line.nv_phi_rad),
-                "start_time": format_time(line.start_time),
-                "end_time": format_time(line.end_time),
-                "source": str(line.source),
-                "sha256": line.sha256,
-                # what a refit needs beyond the spectra: D may follow the temperature,
-                # and the profile chooses the fit model
-                "temperature_k": None if line.temperature_k is None else float(line.temperature_k),
-                "profile": line.profile,
-            },
-        )
-        arrays: dict[str, tuple[np.ndarray, tuple[str, ...], str]] = {
-            "counts": (np.asarray(line.counts), ("x", "freq"), "counts"),
-            "freq_hz": (np.asarray(line.freq_hz, dtype=np.float64), ("freq",), "Hz"),
-            "x_m": (np.asarray(line.x_m, dtype=np.float64), ("x",), "m"),
-        }
-        if line.reference_counts is not None:
-            reference = np.asarray(line.reference_counts)
-            arrays["reference_counts"] = (reference, ("x", "freq"), "counts")
-        for name, (data, dims, units) in arrays.items():
-            group.create_array(
-                name,
-                data=data,
-                chunks=data.shape,
-                compressors=self._codecs,
-                dimension_names=dims,
-                attributes={"units": units},
-            )
+        write_raw_group(self._raw[key[1]], line, self._codecs)
 
     def check_line(self, line: ScanLine) -> None:
         """Raise :class:`StoreMismatch` if ``line`` cannot be written to this store (another
@@ -785,27 +703,7 @@ class ScanStore:
             return None
         if not (self.path / "raw" / direction / str(line_index)).is_dir():
             return None
-        group = self._raw[direction][str(line_index)]
-        attrs = group.attrs.asdict()
-        reference = group["reference_counts"][:] if "reference_counts" in group else None
-        return RawSpectra(
-            line_index=line_index,
-            direction=direction,
-            freq_hz=group["freq_hz"][:],
-            counts=group["counts"][:],
-            x_m=group["x_m"][:],
-            reference_counts=reference,
-            dwell_s=float(attrs["dwell_s"]),  # type: ignore[arg-type]
-            y_m=float(attrs["y_m"]),  # type: ignore[arg-type]
-            nv_theta_rad=float(attrs["nv_theta_rad"]),  # type: ignore[arg-type]
-            nv_phi_rad=float(attrs["nv_phi_rad"]),  # type: ignore[arg-type]
-            start_time=parse_time(str(attrs["start_time"])),
-            end_time=parse_time(str(attrs["end_time"])),
-            source=str(attrs["source"]),
-            sha256=attrs["sha256"],  # type: ignore[arg-type]
-            temperature_k=_optional_float(attrs.get("temperature_k")),
-            profile=None if attrs.get("profile") is None else str(attrs["profile"]),
-        )
+        return read_raw_group(self._raw[direction][str(line_index)], line_index, direction)
 
     # ------------------------------------------------------------------ lifetime
 
@@ -836,10 +734,6 @@ class ScanStore:
             raise
         except OSError as exc:
             raise StoreError(f"{self.path}: {operation} failed: {exc}") from exc
-
-
-def _optional_float(value: object) -> float | None:
-    return None if value is None else float(value)  # type: ignore[arg-type]
 
 
 def _skip_flush(files: list[Path], dirs: set[Path]) -> None:
