@@ -13,6 +13,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.stats import median_abs_deviation
 
+from strayline._numbers import median
 from strayline.field import LineField
 from strayline.fit import FitStatus, LineFit
 from strayline.lines import ScanLine
@@ -660,3 +661,27 @@ def test_compiled_segment_search_finds_the_exhaustive_best(
         assert best < 6.0 + 1e-9 or not np.isfinite(robust_scatter(c))
     else:
         assert seg.score == pytest.approx(best, rel=1e-9, abs=1e-12)
+
+
+@settings(max_examples=300, deadline=None)
+@given(
+    st.lists(
+        st.one_of(
+            st.floats(allow_nan=False, allow_infinity=True, width=64),
+            st.integers(-5, 5).map(float),  # ties
+            st.just(float("nan")),
+        ),
+        max_size=80,
+    )
+)
+def test_fast_median_is_numpy_median(values: list[float]) -> None:
+    """The rules' median is ``np.median``'s number exactly (reference: numpy), NaN for an
+    empty array or one holding a NaN, for any values, ties and infinities included."""
+    import warnings
+
+    a = np.asarray(values, dtype=np.float64)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # numpy on an empty array, inf − inf
+        expected = float(np.median(a)) if a.size else float("nan")
+    got = median(a)
+    assert got == expected or (np.isnan(got) and np.isnan(expected))

@@ -15,6 +15,7 @@ __all__ = [
     "MIB",
     "duration_text",
     "finite_or_none",
+    "median",
     "median_and_spread",
 ]
 
@@ -27,10 +28,25 @@ MIB = 1024 * 1024
 HZ_PER_MHZ = 1e6
 
 
+def median(a: np.ndarray | list[float]) -> float:
+    """``np.median`` of a 1-D array, the same number (NaN if any value is NaN or there is
+    none), at a fifth of its cost on small arrays: the rules take a few dozen medians of a
+    few to a few hundred values per line, where ``np.median``'s own overhead (about 20 µs a
+    call) was most of the time."""
+    ordered = np.sort(np.asarray(a, dtype=np.float64))
+    n = ordered.size
+    if n == 0 or np.isnan(ordered[-1]):  # NaN sorts last
+        return math.nan
+    middle = n // 2
+    if n % 2:
+        return float(ordered[middle])
+    return float((ordered[middle - 1] + ordered[middle]) / 2)
+
+
 def median_and_spread(a: np.ndarray) -> tuple[float, float]:
     """Median and robust σ (``MAD_TO_SIGMA`` · MAD) of a non-empty 1-D array of finite values."""
-    med = float(np.median(a))
-    return med, float(MAD_TO_SIGMA * np.median(np.abs(a - med)))
+    med = median(a)
+    return med, float(MAD_TO_SIGMA * median(np.abs(a - med)))
 
 
 def finite_or_none(value: float | None) -> float | None:

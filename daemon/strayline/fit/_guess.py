@@ -29,6 +29,7 @@ from dataclasses import dataclass
 import numpy as np
 from numba import njit, prange
 
+from strayline._numbers import median
 from strayline.fit._detect import (
     detect_dips,
     dip_templates,
@@ -243,10 +244,10 @@ def line_width(
     w1, z1 = _rough_widths(
         x, sub, comb_j, comb_t, hf_off, hf_w, use_comb, k_base, fwhm_bounds[0], fwhm_bounds[1]
     )
-    rough = float(np.median(w1))
+    rough = median(w1)
     for floor in (_CONFIDENT, 0.5 * _CONFIDENT):
         if np.count_nonzero(z1 > floor) >= 3:
-            rough = float(np.median(w1[z1 > floor]))
+            rough = median(w1[z1 > floor])
             break
     return matched_width(
         x, sub, rough, hf_off, hf_w, fwhm_bounds, center_range, pair_center, mirror_tol

@@ -12,7 +12,7 @@ from collections.abc import Callable
 
 import numpy as np
 
-from strayline._numbers import MAD_TO_SIGMA
+from strayline._numbers import MAD_TO_SIGMA, median
 from strayline.fit._layout import Layout as _Layout
 
 __all__ = ["MIN_POOLED", "best_alias", "looser_prior", "penalised", "profile_sigma"]
@@ -47,8 +47,8 @@ def looser_prior(
         good = np.isfinite(i_data) & (i_data > 0.0)
         widths = np.where(good, g0 + (fitted - g0) * (i_data + i_prior) / i_data, fitted)
         w_sigma = np.where(good, 1.0 / np.sqrt(i_data), np.nan)
-    scatter2 = (MAD_TO_SIGMA * float(np.median(np.abs(widths - np.median(widths))))) ** 2
-    own2 = float(np.median(np.where(np.isfinite(w_sigma), w_sigma, 0.0) ** 2))
+    scatter2 = (MAD_TO_SIGMA * median(np.abs(widths - median(widths)))) ** 2
+    own2 = median(np.where(np.isfinite(w_sigma), w_sigma, 0.0) ** 2)
     base = (spread * prior[0]) ** 2
     var = base + max(scatter2 - own2, 0.0)
     return (prior[0], 1.0 / var) if var >= 2.0 * base else None

@@ -27,6 +27,7 @@ from typing import Literal
 
 import numpy as np
 
+from strayline._numbers import median
 from strayline.fit._guess import DipGuess, guess_dips
 from strayline.fit._kernel import MAX_ITER, lm_batch
 from strayline.fit._layout import Layout as _Layout
@@ -684,7 +685,7 @@ def fit_line(
     lift_hz = transverse_shift_hz(model.transverse_field_max_t, pair_center)
     pair_x = (pair_center + 0.5 * lift_hz - ref) / half
     tol_x = (model.pair_tolerance_hz + 0.5 * lift_hz) / half
-    fwhm_lo = max(model.fwhm_bounds_hz[0], float(np.median(np.diff(freq))))
+    fwhm_lo = max(model.fwhm_bounds_hz[0], median(np.diff(freq)))
     c_lo, c_hi = _bounds(layout, model, x, half_hz=half, ref_hz=ref, fwhm_lo_hz=fwhm_lo)
     guess = guess_dips(
         x,

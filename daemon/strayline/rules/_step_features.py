@@ -17,6 +17,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from strayline._numbers import median
 from strayline.physics.constants import D_ROOM_HZ, GAMMA_NV_HZ_PER_T
 from strayline.rules._steps import Segment, best_energy_segment, best_level_segment
 
@@ -91,7 +92,7 @@ def common_mode_sigma(
 
 def nanmedian(a: np.ndarray) -> float:
     a = a[np.isfinite(a)]
-    return float(np.median(a)) if a.size else float("nan")
+    return median(a)
 
 
 def row_mean(a: np.ndarray) -> np.ndarray:
@@ -190,7 +191,7 @@ def _range_against(
                 ok &= np.isfinite(e)
             if ok.sum() < 2 or not eps_t2 > 0:
                 continue
-            ref_sum = float(np.median([float(e[ok].sum()) for e in e_refs]))
+            ref_sum = median([float(e[ok].sum()) for e in e_refs])
             out[ch] = float(np.log((float(e_now[ok].sum()) + eps_t2) / (ref_sum + eps_t2)))
             continue
         key = "pl_per_s" if ch == "pl" else "center_mean_hz"

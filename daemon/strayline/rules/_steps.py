@@ -35,7 +35,7 @@ from dataclasses import dataclass
 import numpy as np
 from numba import njit
 
-from strayline._numbers import MAD_TO_SIGMA
+from strayline._numbers import MAD_TO_SIGMA, median
 
 __all__ = ["Segment", "best_energy_segment", "best_level_segment", "robust_scatter"]
 
@@ -91,7 +91,7 @@ def robust_scatter(values: np.ndarray) -> float:
     d = d[np.isfinite(d)]
     if d.size < 3:
         return float("nan")
-    return float(MAD_TO_SIGMA * np.median(np.abs(d)) / np.sqrt(2.0))
+    return float(MAD_TO_SIGMA * median(np.abs(d)) / np.sqrt(2.0))
 
 
 def _grid(n: int) -> tuple[np.ndarray, int]:

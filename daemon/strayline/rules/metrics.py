@@ -51,7 +51,7 @@ from types import MappingProxyType
 
 import numpy as np
 
-from strayline._numbers import median_and_spread
+from strayline._numbers import median, median_and_spread
 from strayline.field import LineField
 from strayline.fit import FitStatus, LineFit
 from strayline.lines import ScanLine
@@ -315,7 +315,7 @@ def _aux_stats(line: ScanLine) -> dict[str, Mapping[str, float]]:
         stats = dict.fromkeys(_AUX_STATS, float("nan"))
         if finite.size:
             stats.update(
-                median=float(np.median(finite)),
+                median=median(finite),
                 p10=float(np.percentile(finite, 10)),
                 p90=float(np.percentile(finite, 90)),
                 min=float(finite.min()),
