@@ -5,14 +5,12 @@ Run: ``/work/venv/bin/python benchmarks/reprocess_throughput.py [--scans 20] [--
 
 An archive of ``--scans`` demo scans (one folder each, 201 frequencies, products off) is
 processed into a fresh output folder by :func:`strayline.pipeline.process_folder`, exactly
-as the command runs it: first with one worker (the scans one after another in this
-process, the fit kernels on every core, what ``--workers 1`` does), then the same with the
-fit kernels on one core (the per-core baseline), then on an embedded Dask cluster of
-``--workers`` single-threaded worker processes (the fit threads shared out), the cluster's
-start included. ``--workers 1`` already runs the fit, about half of a line's time, on every
-core, so on a 2-core machine the speed-up of 2 workers over it is bounded near 1.5; the
-speed-up over one core shows how the work scales. Each figure is the best of ``--repeats``
-runs (wall clock). The stores of the runs are compared bit for bit.
+as the command runs it: with ``--workers 1`` (the scans one after another in this process,
+on one core), then with ``--workers N`` (an embedded Dask cluster of N single-threaded
+worker processes, its start included). For reference, the same scans one after another in
+one process with the fit kernels threaded over every core (what one daemon does with a
+scan: only the fit, about half of a line's time, is parallel there). Each figure is the
+best of ``--repeats`` runs (wall clock). The stores of the runs are compared bit for bit.
 
 Printed: wall time and lines/s of each, their ratio (the speed-up), the cluster's start
 and shut-down cost (measured alone), the cost of one scan task (the one-worker run's time
@@ -40,6 +38,8 @@ import zarr
 import demo_stream as ds
 from strayline.config import load_config
 from strayline.pipeline import default_workers, process_folder
+from strayline.pipeline._cluster import fit_threads
+from strayline.pipeline.folder import process_scan_files, scan_tasks
 from strayline.store import MAP_NAMES
 
 ARCHIVE_SCANS, CLUSTER_NODES = 10_000, 10
@@ -68,11 +68,8 @@ def fresh(work: Path) -> None:
         shutil.rmtree(work / name, ignore_errors=True)
 
 
-def timed_pass(work: Path, workers: int, threads: int | None = None) -> float:
-    """One pass into a fresh output folder (``threads``: the fit threads of this process)."""
-    import numba
-
-    numba.set_num_threads(threads or numba.config.NUMBA_NUM_THREADS)
+def timed_pass(work: Path, workers: int) -> float:
+    """One ``process`` pass with ``workers`` cores into a fresh output folder."""
     fresh(work)
     config = load_config(work / "strayline.yaml")
     started = time.perf_counter()
@@ -81,6 +78,18 @@ def timed_pass(work: Path, workers: int, threads: int | None = None) -> float:
     if summary.written != summary.files:
         raise SystemExit(f"only {summary.written} of {summary.files} lines written")
     return wall
+
+
+def timed_threaded(work: Path, cores: int) -> float:
+    """The scans one after another in this process, the fit kernels on ``cores`` threads."""
+    fresh(work)
+    config = load_config(work / "strayline.yaml")
+    root = work / "incoming"
+    started = time.perf_counter()
+    with fit_threads(cores):
+        for _, files in scan_tasks(config, root):
+            process_scan_files(config, root, files)
+    return time.perf_counter() - started
 
 
 def cluster_cost(workers: int) -> float:
@@ -124,7 +133,7 @@ def main() -> None:
         timed_pass(work, 1)  # compile and cache the kernels, warm the file cache
         one = min(timed_pass(work, 1) for _ in range(args.repeats))
         reference = stores(work)
-        single = min(timed_pass(work, 1, threads=1) for _ in range(args.repeats))
+        threaded = min(timed_threaded(work, default_workers()) for _ in range(args.repeats))
         many = min(timed_pass(work, args.workers) for _ in range(args.repeats))
         same = stores(work)
         identical = reference.keys() == same.keys() and all(
@@ -142,16 +151,19 @@ def main() -> None:
         f"archive: {args.scans} scans x {args.lines} lines x {args.pixels} px x 201 freqs "
         f"({lines} lines); {default_workers()} cores here"
     )
-    print(f"1 worker, fit on every core  : {one:7.2f} s  {lines / one:7.1f} lines/s")
-    print(f"1 worker, fit on one core    : {single:7.2f} s  {lines / single:7.1f} lines/s")
+    print(f"--workers 1 (one core)              : {one:7.2f} s  {lines / one:7.1f} lines/s")
     print(
-        f"{args.workers} workers, one core each    : {many:7.2f} s  {lines / many:7.1f} lines/s"
-        f"  (stores identical to 1 worker's: {identical})"
+        f"--workers {args.workers} ({args.workers} worker processes)    : {many:7.2f} s  "
+        f"{lines / many:7.1f} lines/s  (stores identical to --workers 1's: {identical})"
     )
     print(
-        f"speed-up of {args.workers} workers: {speedup:.2f}x over `--workers 1` (whose fit "
-        f"already uses every core), {single / many:.2f}x over one core; parallel "
-        f"efficiency {efficiency:.0%} of `--workers 1` per worker"
+        f"one process, fit on {default_workers()} cores (reference): {threaded:7.2f} s  "
+        f"{lines / threaded:7.1f} lines/s"
+    )
+    print(
+        f"speed-up of --workers {args.workers} over --workers 1: {speedup:.2f}x (parallel "
+        f"efficiency {efficiency:.0%}); over one process with threaded fits: "
+        f"{threaded / many:.2f}x"
     )
     print(
         f"embedded cluster start + stop alone: {start:.2f} s "

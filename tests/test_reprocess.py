@@ -21,7 +21,13 @@ import zarr
 import demo_stream as ds
 from strayline.config import Config, config_from_mapping
 from strayline.pipeline import process_folder
-from strayline.pipeline.folder import ProcessProgress, ProcessSummary, rule_state_file, scan_tasks
+from strayline.pipeline.folder import (
+    ProcessProgress,
+    ProcessSummary,
+    rule_state_file,
+    run_scan_tasks,
+    scan_tasks,
+)
 from strayline.store import MAP_NAMES
 
 N_SCANS, N_LINES, N_PIXELS = 3, 8, 24
@@ -169,3 +175,26 @@ def test_a_pass_killed_with_sigkill_is_finished_by_the_next(tmp_path: Path) -> N
         clean = _maps(clean_root / "output", f"arch{i}")
         for name, values in _maps(output, f"arch{i}").items():
             np.testing.assert_array_equal(values, clean[name], err_msg=f"arch{i} {name}")
+
+
+def _threads_seen(config: Config, *args: object) -> ProcessSummary:
+    import numba
+
+    return ProcessSummary(int(numba.get_num_threads()), 0, 0, 0, 0, 0, 0, scans=1)
+
+
+def test_workers_are_cores_in_this_process_too(tmp_path: Path) -> None:
+    """``--workers 1`` runs the scans here on one core (the fit kernels on one thread), a
+    single scan given two workers gets both cores for its fit, and the fit threads are
+    given back afterwards (common practice: a worker count is a count of cores)."""
+    import numba
+
+    if numba.config.NUMBA_NUM_THREADS < 2:  # type: ignore[attr-defined]
+        pytest.skip("one core here")
+    before = numba.get_num_threads()
+    config = _config(tmp_path)
+    meter = ProcessProgress(1, 1)
+    one = run_scan_tasks(_threads_seen, config, [()], workers=1, scheduler=None, meter=meter)
+    two = run_scan_tasks(_threads_seen, config, [()], workers=2, scheduler=None, meter=meter)
+    assert (one.files, two.files, one.workers, two.workers) == (1, 2, 1, 1)
+    assert numba.get_num_threads() == before

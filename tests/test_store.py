@@ -783,9 +783,11 @@ def test_raw_spectra_round_trip_with_a_changing_frequency_count(tmp_path: Path) 
     assert (raw0.temperature_k, raw0.profile) == (None, None)
     # and the auxiliary channels the rules may read
     np.testing.assert_array_equal(raw1.aux["height"], np.linspace(1.0, 2.0, N_PIXELS))
-    assert dict(raw1.aux_units) == {"height": "nm"} and not raw0.aux
+    assert dict(raw1.aux_units) == {"height": "nm"}
+    assert not raw0.aux
     again = raw1.scan_line("scan7", store.n_lines_planned, tmp_path / "elsewhere")
-    assert again.sha256 == second_line.sha256 and again.source == tmp_path / "elsewhere"
+    assert again.sha256 == second_line.sha256
+    assert again.source == tmp_path / "elsewhere"
     np.testing.assert_array_equal(again.counts, second_line.counts)
     np.testing.assert_array_equal(again.aux["height"], second_line.aux["height"])
 

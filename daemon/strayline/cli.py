@@ -110,7 +110,7 @@ def _parallel_args(parser: argparse.ArgumentParser) -> None:
         type=_positive_int,
         default=None,
         metavar="N",
-        help="scans processed side by side (default: the cores, at most one per scan)",
+        help="cores to use: scans side by side, one core each (default: every core)",
     )
     parser.add_argument(
         "--scheduler",

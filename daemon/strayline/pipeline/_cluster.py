@@ -8,7 +8,7 @@ from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
 from typing import Any, TypeVar
 
-__all__ = ["cap_fit_threads", "dask_client", "default_workers", "run_tasks"]
+__all__ = ["cap_fit_threads", "dask_client", "default_workers", "fit_threads", "run_tasks"]
 
 T = TypeVar("T")
 
@@ -21,13 +21,25 @@ def default_workers() -> int:
         return os.cpu_count() or 1
 
 
-def cap_fit_threads(threads: int) -> None:
+def cap_fit_threads(threads: int) -> int:
     """Cap the fit kernels' threads (numba) in this process, so that workers side by side
-    do not oversubscribe the cores."""
+    do not oversubscribe the cores; returns the number before."""
     import numba
 
+    before = int(numba.get_num_threads())
     cap = int(numba.config.NUMBA_NUM_THREADS)  # type: ignore[attr-defined]
     numba.set_num_threads(max(1, min(threads, cap)))
+    return before
+
+
+@contextmanager
+def fit_threads(threads: int) -> Iterator[None]:
+    """The fit kernels on ``threads`` threads in this process while the block runs."""
+    before = cap_fit_threads(threads)
+    try:
+        yield
+    finally:
+        cap_fit_threads(before)
 
 
 @contextmanager

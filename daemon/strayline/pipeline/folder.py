@@ -14,7 +14,7 @@ from __future__ import annotations
 import math
 import re
 import time
-from collections.abc import Callable, Iterable
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, TextIO
@@ -22,7 +22,13 @@ from typing import Any, TextIO
 from strayline._numbers import duration_text
 from strayline.config import Config
 from strayline.lines import line_key_from_name
-from strayline.pipeline._cluster import cap_fit_threads, dask_client, default_workers, run_tasks
+from strayline.pipeline._cluster import (
+    cap_fit_threads,
+    dask_client,
+    default_workers,
+    fit_threads,
+    run_tasks,
+)
 from strayline.pipeline.line_pipeline import LineOutcome, LinePipeline
 from strayline.watch import LineNames, list_tree
 
@@ -213,12 +219,14 @@ def process_folder(
     Parameters
     ----------
     workers : int
-        1: the scans one after another in this process. More: that many worker processes
-        of an embedded Dask cluster (one thread each; the fit kernels' threads shared out).
+        The cores to use (:func:`run_scan_tasks`): 1, the scans one after another in this
+        process on one core; more, that many single-threaded worker processes of an
+        embedded Dask cluster (fewer when there are fewer scans, their fits then
+        threaded over the cores left).
     scheduler : str or None
         Address of a running Dask scheduler (``tcp://host:8786``): its workers run the
-        scans (they must reach the folders and have strayline installed); ``workers``
-        then only shares out the fit threads on this machine, and is otherwise unused.
+        scans, one fit thread each (they must reach the folders and have strayline
+        installed); ``workers`` is then unused.
     progress : text stream or None
         Where the progress line goes (None: nowhere).
 
@@ -246,10 +254,12 @@ def run_scan_tasks(
     scheduler: str | None,
     meter: ProcessProgress,
 ) -> ProcessSummary:
-    """``task(config, *args)`` for each ``args`` (a scan each): one after another here
-    when ``workers`` is 1, else on Dask (``workers`` single-threaded worker processes of an
-    embedded cluster, or the cluster of ``scheduler``), the fit threads shared out; the
-    summaries added up as they finish.
+    """``task(config, *args)`` for each ``args`` (a scan each) on ``workers`` cores: one
+    after another here when one worker is enough (``workers`` 1, or a single scan: its fit
+    kernels then get the ``workers`` cores), else on Dask: as many single-threaded worker
+    processes of an embedded cluster as there are scans, at most ``workers``, the cores
+    shared out; or on the cluster of ``scheduler``, one fit thread per task. The summaries
+    are added up as they finish.
 
     Raises
     ------
@@ -258,14 +268,15 @@ def run_scan_tasks(
     """
     started = time.monotonic()
     total = ProcessSummary(0, 0, 0, 0, 0, 0, 0)
-    workers = max(1, min(workers, len(arguments)))  # a worker per scan at most
+    cores, workers = workers, max(1, min(workers, len(arguments)))  # a worker per scan at most
     if workers == 1 and scheduler is None:
-        summaries: Iterable[ProcessSummary] = (task(config, *args) for args in arguments)
-        for summary in summaries:
-            meter.add(summary)
-            total += summary
+        with fit_threads(cores):
+            for args in arguments:
+                summary = task(config, *args)
+                meter.add(summary)
+                total += summary
     else:
-        threads = max(1, default_workers() // workers)
+        threads = max(1, cores // workers) if scheduler is None else 1
         calls = [(task, config, threads, *args) for args in arguments]
         with dask_client(workers, scheduler) as client:
             for summary in run_tasks(client, _in_worker, calls, task.__name__):
