@@ -227,3 +227,35 @@ def committed_keys(store: Path) -> set[tuple[int, str]]:
     for record in parse_records(data, "ledger")[0]:
         state.apply(record)
     return set(state.committed)
+
+
+def kill_midway(command: list[str], cwd: Path, stores: Path, *, after: int, total: int) -> None:
+    """Run ``command`` in a process group of its own and ``kill -9`` the group (workers
+    included) once at least ``after`` lines are committed in the stores below ``stores``,
+    checking that it was still short of ``total`` then; then run it again to the end."""
+
+    def committed() -> int:
+        return sum(
+            ledger.read_text().count('"event":"commit"')
+            for ledger in stores.glob("*.zarr/ledger/records.jsonl")
+        )
+
+    proc = subprocess.Popen(
+        command,
+        cwd=cwd,
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.DEVNULL,
+        start_new_session=True,  # its own process group: the workers die with it
+    )
+    deadline = time.monotonic() + 120
+    while committed() < after:
+        assert proc.poll() is None, "the run ended before it could be killed"
+        assert time.monotonic() < deadline, "no line was committed"
+        time.sleep(0.02)
+    os.killpg(proc.pid, signal.SIGKILL)
+    proc.wait(timeout=30)
+    assert committed() < total, "every line was done before the kill"
+    again = subprocess.run(
+        command, cwd=cwd, capture_output=True, text=True, timeout=300, check=False
+    )
+    assert again.returncode == 0, again.stderr

@@ -5,11 +5,7 @@ from __future__ import annotations
 
 import hashlib
 import json
-import os
-import signal
-import subprocess
 import sys
-import time
 from pathlib import Path
 
 import numpy as np
@@ -24,6 +20,7 @@ from strayline.errors import StoreError
 from strayline.pipeline import process_folder, refit_stores
 from strayline.pipeline.refit import refit_config, source_stores
 from strayline.store import MAP_NAMES
+from tests._daemon import kill_midway
 
 N_LINES, N_PIXELS = 6, 20
 
@@ -191,32 +188,7 @@ def test_a_refit_killed_with_sigkill_is_finished_by_the_next(tmp_path: Path) -> 
     out = tmp_path / "refit"
     command = [sys.executable, "-m", "strayline", "refit", str(output), "--out", str(out)]
     command += ["--config", str(config), "--workers", "2"]
-    proc = subprocess.Popen(
-        command,
-        cwd=tmp_path,
-        stdout=subprocess.DEVNULL,
-        stderr=subprocess.DEVNULL,
-        start_new_session=True,  # its own process group: the workers die with it
-    )
-
-    def committed() -> int:
-        return sum(
-            ledger.read_text().count('"event":"commit"')
-            for ledger in out.glob("*.zarr/ledger/records.jsonl")
-        )
-
-    deadline = time.monotonic() + 120
-    while committed() < 6:
-        assert proc.poll() is None, "the refit ended before it could be killed"
-        assert time.monotonic() < deadline, "no line was committed"
-        time.sleep(0.02)
-    os.killpg(proc.pid, signal.SIGKILL)
-    proc.wait(timeout=30)
-    assert committed() < n_scans * n_lines, "every line was done before the kill"
-    again = subprocess.run(
-        command, cwd=tmp_path, capture_output=True, text=True, timeout=300, check=False
-    )
-    assert again.returncode == 0, again.stderr
+    kill_midway(command, tmp_path, out, after=6, total=n_scans * n_lines)
     for i in range(n_scans):
         old, new = _maps(output / f"old{i}.zarr"), _maps(out / f"old{i}.zarr")
         for name, values in old.items():

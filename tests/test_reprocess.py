@@ -6,11 +6,7 @@ from __future__ import annotations
 
 import io
 import json
-import os
-import signal
-import subprocess
 import sys
-import time
 from pathlib import Path
 
 import numpy as np
@@ -29,6 +25,7 @@ from strayline.pipeline.folder import (
     scan_tasks,
 )
 from strayline.store import MAP_NAMES
+from tests._daemon import kill_midway
 
 N_SCANS, N_LINES, N_PIXELS = 3, 8, 24
 
@@ -134,33 +131,7 @@ def test_a_pass_killed_with_sigkill_is_finished_by_the_next(tmp_path: Path) -> N
     output = tmp_path / "output"
     command = [sys.executable, "-m", "strayline", "process", str(incoming)]
     command += ["--config", str(config), "--workers", "2"]
-    proc = subprocess.Popen(
-        command,
-        cwd=tmp_path,
-        stdout=subprocess.DEVNULL,
-        stderr=subprocess.DEVNULL,
-        start_new_session=True,  # its own process group: the workers die with it
-    )
-
-    def committed() -> int:
-        total = 0
-        for ledger in output.glob("*.zarr/ledger/records.jsonl"):
-            total += ledger.read_text().count('"event":"commit"')
-        return total
-
-    deadline = time.monotonic() + 120
-    while committed() < 8:
-        assert proc.poll() is None, "the pass ended before it could be killed"
-        assert time.monotonic() < deadline, "no line was committed"
-        time.sleep(0.02)
-    os.killpg(proc.pid, signal.SIGKILL)
-    proc.wait(timeout=30)
-    assert committed() < n_scans * n_lines, "every line was done before the kill"
-
-    again = subprocess.run(
-        command, cwd=tmp_path, capture_output=True, text=True, timeout=300, check=False
-    )
-    assert again.returncode == 0, again.stderr
+    kill_midway(command, tmp_path, output, after=8, total=n_scans * n_lines)
     clean_root = tmp_path / "clean"
     _archive(clean_root, n_scans=n_scans, n_lines=n_lines)
     process_folder(_config(clean_root), clean_root / "incoming", workers=1)

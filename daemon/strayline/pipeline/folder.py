@@ -14,10 +14,10 @@ from __future__ import annotations
 import math
 import re
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, TextIO
+from typing import Any, TextIO, TypeVar
 
 from strayline._numbers import duration_text
 from strayline.config import Config
@@ -32,11 +32,14 @@ from strayline.pipeline._cluster import (
 from strayline.pipeline.line_pipeline import LineOutcome, LinePipeline
 from strayline.watch import LineNames, list_tree
 
+T = TypeVar("T")
+
 __all__ = [
     "ProcessProgress",
     "ProcessSummary",
     "acquisition_order",
     "default_workers",
+    "in_batches",
     "process_folder",
     "process_scan_files",
     "rule_state_file",
@@ -148,14 +151,25 @@ def process_scan_files(config: Config, root: Path, files: list[Path]) -> Process
     pipeline = LinePipeline(
         config, root=root, rule_state=rule_state_file(config, root, files[0].parent)
     )
+    return in_batches(pipeline, pipeline.process_many, files, OSError)
+
+
+def in_batches(
+    pipeline: LinePipeline,
+    run: Callable[[Sequence[T]], list[LineOutcome]],
+    items: Sequence[T],
+    error: Callable[[str], Exception],
+) -> ProcessSummary:
+    """``run`` over ``items`` :data:`PROCESS_BATCH` at a time, then close ``pipeline``; the
+    first ``unreadable`` outcome stops the task with ``error`` (what is done is kept)."""
     outcomes: list[LineOutcome] = []
     try:
-        for start in range(0, len(files), PROCESS_BATCH):
-            batch = pipeline.process_many(files[start : start + PROCESS_BATCH])
+        for start in range(0, len(items), PROCESS_BATCH):
+            batch = run(items[start : start + PROCESS_BATCH])
             outcomes += batch
             unreadable = [o for o in batch if o.kind == "unreadable"]
             if unreadable:
-                raise OSError(f"{unreadable[0].path}: {unreadable[0].problem}")
+                raise error(f"{unreadable[0].path}: {unreadable[0].problem}")
     finally:
         pipeline.close()
     return summarise(outcomes)

@@ -23,19 +23,14 @@ another source) is refused, never mixed.
 from __future__ import annotations
 
 import os
+from collections.abc import Sequence
 from pathlib import Path
 from typing import TextIO
 
 from strayline.config import Config, config_digest, config_from_mapping
 from strayline.errors import StoreError
 from strayline.lines import ScanLine
-from strayline.pipeline.folder import (
-    PROCESS_BATCH,
-    ProcessProgress,
-    ProcessSummary,
-    run_scan_tasks,
-    summarise,
-)
+from strayline.pipeline.folder import ProcessProgress, ProcessSummary, in_batches, run_scan_tasks
 from strayline.pipeline.line_pipeline import LineOutcome, LinePipeline
 from strayline.store import StoreReader, open_store_reader, store_metadata_present, store_path
 
@@ -88,7 +83,9 @@ def refit_config(config: Config, out: Path) -> Config:
     return config_from_mapping(data, base_dir=out, source=config.source)
 
 
-def _stored_lines(reader: StoreReader, batch: list[tuple[int, str]]) -> list[tuple[Path, ScanLine]]:
+def _stored_lines(
+    reader: StoreReader, batch: Sequence[tuple[int, str]]
+) -> list[tuple[Path, ScanLine]]:
     """The lines of ``batch`` as their raw spectra give them, each with its original file."""
     lines = []
     for index, direction in batch:
@@ -151,19 +148,11 @@ def refit_store(config: Config, source: Path) -> ProcessSummary:
         rule_state=config.paths.state_dir / "refit" / f"{reader.scan_id}.json",
         move_bad_files=False,
     )
-    outcomes: list[LineOutcome] = []
-    try:
-        for start in range(0, len(keys), PROCESS_BATCH):
-            batch = pipeline.process_lines(
-                _stored_lines(reader, keys[start : start + PROCESS_BATCH])
-            )
-            outcomes += batch
-            refused = [o for o in batch if o.kind == "unreadable"]
-            if refused:
-                raise StoreError(f"{reader.path}: {refused[0].path}: {refused[0].problem}")
-    finally:
-        pipeline.close()
-    return summarise(outcomes)
+
+    def run(batch: Sequence[tuple[int, str]]) -> list[LineOutcome]:
+        return pipeline.process_lines(_stored_lines(reader, batch))
+
+    return in_batches(pipeline, run, keys, lambda problem: StoreError(f"{reader.path}: {problem}"))
 
 
 def refit_stores(
