@@ -571,12 +571,17 @@ def test_quicklook_shows_merged_pixels_below_resolution_not_as_failures(tmp_path
     """The field panel draws exactly the MERGED pixels in one neutral colour with a legend
     entry "below resolution (|B∥| < bound, …)" giving the median bound; the status legend
     names them below resolution; a scan without them gets no such entry."""
-    from strayline.products._figures import BELOW_RESOLUTION_LABEL, quicklook_figure
+    from strayline.products._figures import (
+        BELOW_RESOLUTION_LABEL,
+        FigureHeading,
+        quicklook_figure,
+    )
     from strayline.products._read import read_snapshot
 
     store, status = _merged_scan(tmp_path)
     trace = read_snapshot(store).traces["forward"]
-    fig = quicklook_figure(trace, "low")
+    heading = FigureHeading("low", None, None, None, T0)
+    fig = quicklook_figure(trace, heading)
     field_ax, status_ax = fig.axes[0], fig.axes[3]
     assert BELOW_RESOLUTION_LABEL == "below resolution (|B∥| < bound)"
     labels = [t.get_text() for t in field_ax.get_legend().get_texts()]
@@ -588,7 +593,7 @@ def test_quicklook_shows_merged_pixels_below_resolution_not_as_failures(tmp_path
     assert f"below resolution (merged dips) ({share:.1f} %)" in status_labels
     assert not any(label.startswith("merged") for label in status_labels)
     plain = dataclasses.replace(trace, maps={**trace.maps, "status": np.zeros_like(status)})
-    assert quicklook_figure(plain, "low").axes[0].get_legend() is None
+    assert quicklook_figure(plain, heading).axes[0].get_legend() is None
 
 
 def test_report_lists_merged_pixels_with_their_bound_apart_from_failures(tmp_path: Path) -> None:
