@@ -48,6 +48,7 @@ from strayline.store import STATUS_FILL
 __all__ = [
     "BELOW_RESOLUTION_LABEL",
     "NO_STANDOFF_TEXT",
+    "QUICKLOOK_MAPS",
     "FigureHeading",
     "quicklook_figure",
     "save_png",
@@ -73,6 +74,15 @@ _STATUS_COLOURS = {
 _STATUS_LABELS = {int(s): s.name.lower().replace("_", " ") for s in FitStatus} | {
     int(FitStatus.MERGED): "below resolution (merged dips)",
 }
+#: The store maps :func:`quicklook_figure` draws from (a live picture reads only these).
+QUICKLOOK_MAPS = (
+    "field_nv_t",
+    "field_nv_bound_t",
+    "pl_rate_cps",
+    "contrast_lo",
+    "contrast_hi",
+    "status",
+)
 #: Marker colours of the lines where an alert was raised, by severity.
 _SEVERITY_COLOURS = {"info": "#1e88e5", "warning": "#fb8c00", "critical": "#d50000"}
 NO_STANDOFF_TEXT = (

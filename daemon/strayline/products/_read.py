@@ -7,6 +7,7 @@ never reaches a product.
 
 from __future__ import annotations
 
+from collections.abc import Collection
 from dataclasses import dataclass
 from datetime import datetime
 from pathlib import Path
@@ -76,8 +77,11 @@ class StoreSnapshot:
         return moment if moment is not None and moment.tzinfo is not None else None
 
 
-def read_snapshot(store_path: Path) -> StoreSnapshot:
+def read_snapshot(store_path: Path, maps: Collection[str] = MAP_NAMES) -> StoreSnapshot:
     """Read the committed part of every trace of a store.
+
+    ``maps`` names the maps to read (every one by default; a picture that needs a few
+    reads only those).
 
     Raises
     ------
@@ -91,13 +95,12 @@ def read_snapshot(store_path: Path) -> StoreSnapshot:
         lines = committed[direction]
         if not lines:
             continue
-        maps = {name: reader.read_array(name, direction) for name in MAP_NAMES}
         trace = assemble_trace(
             direction,
             reader.read_array("x", direction).astype(np.float64),
             reader.read_array("y", direction).astype(np.float64),
             np.asarray(lines),
-            maps,
+            {name: reader.read_array(name, direction) for name in maps},
         )
         if trace is not None:
             traces[direction] = trace

@@ -89,9 +89,14 @@ class LivePicture:
             If a picture cannot be written.
         """
         # matplotlib on first use only: it adds ~0.5 s to the daemon's start-up
-        from strayline.products._figures import FigureHeading, quicklook_figure, save_png
+        from strayline.products._figures import (
+            QUICKLOOK_MAPS,
+            FigureHeading,
+            quicklook_figure,
+            save_png,
+        )
 
-        snapshot = read_snapshot(self.store_path)
+        snapshot = read_snapshot(self.store_path, QUICKLOOK_MAPS)
         if self._cursor is None:
             self._cursor = AlertLogCursor(self._alert_log, snapshot.scan_id)
         marks = self._cursor.marks()
