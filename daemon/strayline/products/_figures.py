@@ -375,7 +375,7 @@ def _status_panel(ax: Axes, trace: TraceMaps) -> None:
 
 
 def _trace_marks(trace: TraceMaps, marks: Sequence[AlertMark]) -> dict[int, AlertMark]:
-    """Per row of ``trace``, the most urgent mark on its line (rows without none left out)."""
+    """Per row of ``trace``, the most urgent mark on its line (rows with none left out)."""
     row_of = {int(index): row for row, index in enumerate(trace.line_index)}
     out: dict[int, AlertMark] = {}
     for mark in marks:
