@@ -571,12 +571,17 @@ def test_quicklook_shows_merged_pixels_below_resolution_not_as_failures(tmp_path
     """The field panel draws exactly the MERGED pixels in one neutral colour with a legend
     entry "below resolution (|B∥| < bound, …)" giving the median bound; the status legend
     names them below resolution; a scan without them gets no such entry."""
-    from strayline.products._figures import BELOW_RESOLUTION_LABEL, quicklook_figure
+    from strayline.products._figures import (
+        BELOW_RESOLUTION_LABEL,
+        FigureHeading,
+        quicklook_figure,
+    )
     from strayline.products._read import read_snapshot
 
     store, status = _merged_scan(tmp_path)
     trace = read_snapshot(store).traces["forward"]
-    fig = quicklook_figure(trace, "low")
+    heading = FigureHeading("low", None, None, None, T0)
+    fig = quicklook_figure(trace, heading)
     field_ax, status_ax = fig.axes[0], fig.axes[3]
     assert BELOW_RESOLUTION_LABEL == "below resolution (|B∥| < bound)"
     labels = [t.get_text() for t in field_ax.get_legend().get_texts()]
@@ -588,7 +593,7 @@ def test_quicklook_shows_merged_pixels_below_resolution_not_as_failures(tmp_path
     assert f"below resolution (merged dips) ({share:.1f} %)" in status_labels
     assert not any(label.startswith("merged") for label in status_labels)
     plain = dataclasses.replace(trace, maps={**trace.maps, "status": np.zeros_like(status)})
-    assert quicklook_figure(plain, "low").axes[0].get_legend() is None
+    assert quicklook_figure(plain, heading).axes[0].get_legend() is None
 
 
 def test_report_lists_merged_pixels_with_their_bound_apart_from_failures(tmp_path: Path) -> None:
@@ -613,6 +618,298 @@ def test_report_lists_merged_pixels_with_their_bound_apart_from_failures(tmp_pat
         "median bound 150 µT" in md
     )
     assert "- not OK: no resonance 0.8 %\n" in md
+
+
+# -- what the quick-look says: title, marks, scales, legend --------------------------------
+
+NIGHT = "night-07"
+NIGHT_PLANNED = 48
+NIGHT_PIXELS = 64
+NIGHT_LINES = [i for i in range(36) if i not in (10, 11)]  # lines 10 and 11 never came
+DARK = range(20, 23)  # fluorescence lost on these lines
+
+
+def _night_scan(root: Path) -> tuple[Path, np.ndarray, Path]:
+    """A weak field (3.002 mT ± ~70 µT) scanned 36 of 48 lines with two lines missing, a
+    dark band (lines 20–22, low counts), one one-resonance pixel, the thin-film profile;
+    and an alert log with alerts at lines 12 (warning) and 21 (critical, every trace)."""
+    rng = np.random.default_rng(11)
+    b = 3.002e-3 + 0.05 * patch_field_t(NIGHT_PIXELS, 30e-9, 600e-9)[:NIGHT_PLANNED, :, 2]
+    status = np.zeros(b.shape, np.uint8)
+    status[30, 5] = FitStatus.ONE_RESONANCE
+    with ScanStore.open(
+        root,
+        NIGHT,
+        n_lines_planned=NIGHT_PLANNED,
+        n_pixels=NIGHT_PIXELS,
+        x_m=axis_m(NIGHT_PIXELS, 30e-9),
+        config_json={"_profile": "thin-film"},
+        config_digest="5eed",
+        nv_axis_rad=(THETA, PHI),
+        raw_spectra=False,
+        compression_level=1,
+        durable=False,
+    ) as store:
+        for i in NIGHT_LINES:
+            row = status[i].copy()
+            if i in DARK:
+                row[:] = FitStatus.LOW_COUNTS
+            line, fit, field = line_records(
+                i,
+                np.where(row == FitStatus.OK, b[i], np.nan),
+                row,
+                rng,
+                scan_id=NIGHT,
+                n_lines=NIGHT_PLANNED,
+                x_m=axis_m(NIGHT_PIXELS, 30e-9),
+                pitch_m=30e-9,
+            )
+            if i in DARK:
+                fit = dataclasses.replace(fit, baseline=rng.normal(6.0, 1.0, NIGHT_PIXELS))
+            store.write_line(line, fit, field)
+            status[i] = row
+    events = [
+        dataclasses.replace(alert(NIGHT, "contrast_collapsed", "raised"), line_index=12),
+        dataclasses.replace(
+            alert(NIGHT, "fluorescence_lost", "raised", "critical"), line_index=21, direction=None
+        ),
+        dataclasses.replace(alert(NIGHT, "fluorescence_lost", "cleared"), line_index=24),
+        dataclasses.replace(alert(NIGHT, "acquisition_stalled", "raised"), line_index=None),
+        dataclasses.replace(alert("other", "resonance_jump", "raised"), line_index=30),
+        dataclasses.replace(
+            alert(NIGHT, "resonance_jump", "raised"), line_index=5, direction="backward"
+        ),
+    ]
+    log = root / "alerts.jsonl"
+    log.write_text("".join(e.to_json() + "\n" for e in events), encoding="utf-8")
+    return root / f"{NIGHT}.zarr", status, log
+
+
+@pytest.fixture(scope="module")
+def night(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Any]:
+    """The night scan, its products (report without images) and its quick-look figure."""
+    from strayline.products._figures import FigureHeading, quicklook_figure
+    from strayline.products._marks import alert_marks
+    from strayline.products._read import read_snapshot
+
+    root = tmp_path_factory.mktemp("night")
+    store, status, log = _night_scan(root)
+    out = root / "p"
+    make_products(
+        store,
+        standoff_m=None,
+        nv_theta_rad=THETA,
+        nv_phi_rad=PHI,
+        out_dir=out,
+        alert_log=log,
+        images=False,
+    )
+    snapshot = read_snapshot(store)
+    heading = FigureHeading(NIGHT, snapshot.profile, snapshot.lines_planned, snapshot.started, T0)
+    marks = alert_marks(read_alert_log_events(log), NIGHT)
+    trace = snapshot.traces["forward"]
+    return {
+        "store": store,
+        "status": status,
+        "log": log,
+        "trace": trace,
+        "heading": heading,
+        "figure": quicklook_figure(trace, heading, marks),
+        "json": json.loads((out / REPORT_JSON).read_text(encoding="utf-8")),
+        "md": (out / REPORT_MD).read_text(encoding="utf-8"),
+    }
+
+
+def read_alert_log_events(path: Path) -> list[AlertEvent]:
+    """Every event of an alert log, through the package's reader."""
+    from strayline.alerts import read_alert_log
+
+    return read_alert_log(path)
+
+
+def test_percent_text_never_rounds_a_share_to_nothing_or_everything() -> None:
+    """A share above 0 reads "< 0.1 %" rather than "0.0 %", one short of all "> 99.9 %"
+    rather than "100.0 %"; others have one decimal."""
+    from strayline.products._report import percent_text
+
+    assert percent_text(0.0) == "0.0 %"
+    assert percent_text(1 / 4096) == "< 0.1 %"
+    assert percent_text(0.0005) == "0.1 %"
+    assert percent_text(0.898) == "89.8 %"
+    assert percent_text(1 - 1 / 4096) == "> 99.9 %"
+    assert percent_text(1.0) == "100.0 %"
+
+
+def test_status_legend_agrees_with_the_report(night: dict[str, Any]) -> None:
+    """The status legend gives each status's share of the committed pixels exactly as the
+    report does (same fractions, same rounding): a single one-resonance pixel reads
+    "< 0.1 %", not "0.0 %"; the two missing lines are counted as lines, not as a share."""
+    from strayline.products._report import percent_text
+
+    status_ax = night["figure"].axes[3]
+    labels = [t.get_text() for t in status_ax.get_legend().get_texts()]
+    fractions = night["json"]["traces"]["forward"]["fit_status_fractions"]
+    committed = night["status"][NIGHT_LINES]
+    assert fractions["one_resonance"] == pytest.approx(1 / committed.size)
+    assert labels == [
+        f"ok ({percent_text(fractions['ok'])})",
+        f"low counts ({percent_text(fractions['low_counts'])})",
+        "one resonance (< 0.1 %)",
+        "not written (2 lines)",
+    ]
+    md = night["md"]
+    assert f"fits OK {percent_text(fractions['ok'])}" in md
+    assert f"low counts {percent_text(fractions['low_counts'])}, one resonance < 0.1 %" in md
+
+
+def test_quicklook_title_names_scan_profile_lines_and_local_times(
+    night: dict[str, Any], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """The title names the scan, trace, profile, lines done of those planned, and when the
+    scan started and the picture was drawn in local time, ISO 8601 with the UTC offset."""
+    import time as time_module
+
+    monkeypatch.setenv("TZ", "LST-02")  # POSIX zone 2 h east of UTC, no zone database needed
+    time_module.tzset()
+    try:
+        text = night["heading"].lines(night["trace"])
+    finally:
+        monkeypatch.undo()
+        time_module.tzset()
+    first, second = text.split("\n")
+    assert first == (
+        f"{NIGHT} — forward trace — profile thin-film — {len(NIGHT_LINES)} of "
+        f"{NIGHT_PLANNED} lines × {NIGHT_PIXELS} pixels"
+    )
+    assert second.startswith("scan started 20")
+    assert second.endswith(", drawn 2031-05-04T14:00:00+02:00")  # T0 is 12:00 UTC
+    started = second.removeprefix("scan started ").split(",")[0]
+    assert datetime.fromisoformat(started).utcoffset() == timedelta(hours=2)
+    assert night["figure"].get_suptitle() == night["heading"].lines(night["trace"])
+    live = dataclasses.replace(night["heading"], live=True, profile=None)
+    assert "profile none (base config)" in live.lines(night["trace"])
+    assert live.lines(night["trace"]).split("\n")[1].startswith("live picture — scan started")
+
+
+def test_alert_lines_are_marked_at_every_map_edge(night: dict[str, Any]) -> None:
+    """Each map carries a marker level with line 12 (warning colour) and line 21 (critical
+    colour); a cleared event, an event without a line, another scan's and another trace's
+    are not marked; the key below names the lines and rules."""
+    trace = night["trace"]
+    y_of = {int(i): trace.y_m[row] * 1e6 for row, i in enumerate(trace.line_index)}
+    fig = night["figure"]
+    for ax in fig.axes[:4]:
+        marked = {
+            line.get_markerfacecolor(): list(line.get_ydata())
+            for line in ax.get_lines()
+            if line.get_marker() == "<"
+        }
+        assert marked == {"#fb8c00": [y_of[12]], "#d50000": [y_of[21]]}
+    [key] = fig.legends
+    assert key.get_title().get_text() == (
+        "◀ at a map's right edge: an alert raised at line 12, 21 "
+        "(contrast_collapsed, fluorescence_lost)"
+    )
+    assert [t.get_text() for t in key.get_texts()] == ["warning", "critical"]
+
+
+def test_weak_field_panel_shows_delta_b_and_says_so(night: dict[str, Any]) -> None:
+    """The field panel of a weak field draws B − median on a scale symmetric about 0 µT,
+    with the median named in the colour bar's label and the title."""
+    ax = night["figure"].axes[0]
+    trace = night["trace"]
+    values = trace.maps["field_nv_t"]
+    median = float(np.nanmedian(values))
+    image = ax.get_images()[0]
+    low, high = image.get_clim()
+    assert low == pytest.approx(-high)
+    assert 10 < high < 500  # µT: the pattern, not the 3 mT bias
+    np.testing.assert_allclose(image.get_array().filled(np.nan), (values - median) * 1e6)
+    # The median is named to a hundredth of the half-range: 3 decimals in mT here.
+    reference = f"{median * 1e3:.3f} mT"
+    assert 1.0 <= high / 100 < 10.0  # a step of 1–10 µT = 0.001–0.01 mT
+    assert ax.child_axes[0].get_ylabel() == f"ΔB = B along NV − {reference} (µT)"
+    assert ax.get_title() == f"B along NV: ΔB from the median {reference}"
+
+
+def test_pl_panel_scale_comes_from_the_lines_with_fluorescence(night: dict[str, Any]) -> None:
+    """The PL panel's scale starts near the lit lines' PL (about 200 kcounts/s), the dark
+    band below it; the title counts the three dark lines, the colour bar shows an extension."""
+    ax = night["figure"].axes[1]
+    low, high = ax.get_images()[0].get_clim()
+    assert 150 < low < high < 250
+    assert ax.get_title().endswith("3 dark lines below it")
+    assert ax.child_axes[0].get_ylabel() == "PL (kcounts/s)"
+
+
+def test_scan_end_quicklook_gets_the_heading_and_the_logs_marks(
+    night: dict[str, Any], tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """make_products draws its quick-look with the store's profile, lines planned and start,
+    its own time, and the marks of this scan's raised alerts from the alert log."""
+    from strayline.products import _figures
+
+    seen: list[tuple[Any, Any]] = []
+    draw = _figures.quicklook_figure
+
+    def spy(trace: Any, heading: Any, marks: Any = ()) -> Any:
+        seen.append((heading, marks))
+        return draw(trace, heading, marks)
+
+    monkeypatch.setattr(_figures, "quicklook_figure", spy)
+    made = datetime(2031, 5, 5, 3, 0, tzinfo=UTC)
+    make_products(
+        night["store"],
+        standoff_m=None,
+        nv_theta_rad=THETA,
+        nv_phi_rad=PHI,
+        out_dir=tmp_path,
+        alert_log=night["log"],
+        clock=lambda: made,
+    )
+    [(heading, marks)] = seen
+    assert (heading.scan_id, heading.profile, heading.lines_planned) == (
+        NIGHT,
+        "thin-film",
+        NIGHT_PLANNED,
+    )
+    assert (heading.drawn, heading.live) == (made, False)
+    assert heading.started is not None
+    assert [(m.line_index, m.direction, m.severity) for m in marks] == [
+        (5, "backward", "warning"),
+        (12, "forward", "warning"),
+        (21, None, "critical"),
+    ]
+    assert (tmp_path / "quicklook_forward.png").is_file()
+
+
+def test_vector_figure_says_when_no_standoff_is_configured(night: dict[str, Any]) -> None:
+    """Without a standoff the vector figure's fourth panel says no stand-off is configured
+    and how to give one, instead of standing empty; with one it draws m_z."""
+    from strayline.products._figures import NO_STANDOFF_TEXT, vector_figure
+
+    trace = night["trace"]
+    without = reconstruct_vector(
+        trace.maps["field_nv_t"],
+        trace.valid,
+        pixel_m=trace.pixel_m,
+        nv_theta_rad=THETA,
+        nv_phi_rad=PHI,
+        standoff_m=None,
+    )
+    fig = vector_figure(trace, without, night["heading"], None)
+    fourth = fig.axes[3]
+    assert fourth.get_visible()
+    assert not fourth.axison
+    assert [t.get_text() for t in fourth.texts] == [NO_STANDOFF_TEXT]
+    assert "no NV-sample stand-off is configured" in NO_STANDOFF_TEXT
+    assert "products.standoff_nm" in NO_STANDOFF_TEXT
+    with_standoff = dataclasses.replace(
+        without, m_z_a=np.zeros_like(without.b_xyz_t[0]), k_cut_rad_per_m=1e7
+    )
+    fig = vector_figure(trace, with_standoff, night["heading"], 60e-9)
+    assert fig.axes[3].get_images()
+    assert fig.axes[3].get_title().startswith("Sheet moment m_z")
 
 
 def test_products_of_a_store_written_before_the_bound_existed(tmp_path: Path) -> None:

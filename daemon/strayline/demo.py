@@ -44,8 +44,9 @@ def demo_config(folder: Path, *, settle_s: float = 0.2) -> Config:
         },
         "logging": {"console": "plain", "json_file": "output/strayline.log.jsonl"},
         "service": {"status_interval_s": 5.0},
-        # The demo tip's NV stand-off (demo_stream.TipModel), so the sheet moment is made.
-        "products": {"standoff_nm": 60.0},
+        # The demo tip's NV stand-off (demo_stream.TipModel), so the sheet moment is made;
+        # the live picture redrawn often enough to watch a short scan fill in.
+        "products": {"standoff_nm": 60.0, "live_every_lines": 8},
     }
     return config_from_mapping(data, base_dir=folder)
 
@@ -133,6 +134,13 @@ def run_demo(
     truth_dir = folder / "truth"
     configure_logging(level="info", console="plain", json_file=config.logging.json_file)
     print(f"strayline demo: {lines} lines x {pixels} pixels, fault {spec}, in {folder}")
+    from strayline.products import live_image_name, products_dir
+
+    live = products_dir(config.paths.output_root, config.products.folder, _SCAN_ID)
+    print(
+        f"live picture {live / live_image_name('forward')} (redrawn every "
+        f"{config.products.live_every_lines} lines: open it and watch the scan fill in)"
+    )
 
     from strayline.service import Service
 

@@ -275,12 +275,30 @@ class StoreSection(Section):
 
 
 class ProductsSection(Section):
-    """What is made once a scan is complete (see :mod:`strayline.products`)."""
+    """What is made once a scan is complete (see :mod:`strayline.products`), and the live
+    picture of a running scan (:mod:`strayline.products.live`)."""
 
     enabled: bool = True
     standoff_nm: Annotated[float, Field(gt=0)] | None = None
     images: bool = True
     folder: ResolvedPath | None = None
+    live_image: bool = True
+    live_every_lines: Annotated[int, Field(ge=1)] | None = 32
+    live_every_s: Seconds | None = 30.0
+
+    @model_validator(mode="after")
+    def _check_live(self) -> ProductsSection:
+        if self.live_image and self.live_every_lines is None and self.live_every_s is None:
+            raise Problems(
+                [
+                    (
+                        "live_every_lines",
+                        "the live image needs live_every_lines or live_every_s (or both); "
+                        "found both null (set live_image: false to turn it off)",
+                    )
+                ]
+            )
+        return self
 
     @property
     def standoff_m(self) -> float | None:

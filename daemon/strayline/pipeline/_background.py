@@ -1,5 +1,6 @@
-"""One worker thread for slow by-products (a finished scan's products), so the service
-loop keeps serving lines and pinging the watchdog while they are made."""
+"""One worker thread for slow by-products (a finished scan's products, a running scan's
+live picture), so the service loop keeps serving lines and pinging the watchdog while
+they are made."""
 
 from __future__ import annotations
 
@@ -29,6 +30,13 @@ class BackgroundWorker:
     def submit(self, job: Callable[[], None]) -> None:
         """Queue ``job``; returns at once."""
         self._jobs.put(job)
+
+    def wait_idle(self, timeout_s: float) -> bool:
+        """Block until the jobs queued so far have run, at most ``timeout_s``; True if
+        they have."""
+        done = threading.Event()
+        self._jobs.put(done.set)
+        return done.wait(timeout_s)
 
     def close(self, timeout_s: float) -> bool:
         """Stop after the queued jobs, waiting at most ``timeout_s``; True if all ran."""

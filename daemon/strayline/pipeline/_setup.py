@@ -33,6 +33,7 @@ __all__ = [
     "no_products",
     "profile_event",
     "progress_of",
+    "scan_complete",
     "store_config",
     "zfs_rule",
 ]
@@ -51,6 +52,17 @@ MAX_OPEN_SCANS = 4
 def progress_of(store: ScanStore) -> tuple[int, int]:
     stats = store.statistics()
     return stats.committed_forward + stats.committed_backward, stats.n_lines_planned
+
+
+def scan_complete(store: ScanStore) -> bool:
+    """Whether a scan's last planned line is committed: the last forward line and, if
+    the scan has a backward trace at all, its last line too (an instrument writing trace
+    and retrace finishes with the retrace of the last line)."""
+    committed = store.committed()
+    last = store.n_lines_planned - 1
+    if (last, "forward") not in committed:
+        return False
+    return (last, "backward") in committed or all(d != "backward" for _, d in committed)
 
 
 def fit_model_from_config(config: Config) -> FitModel:

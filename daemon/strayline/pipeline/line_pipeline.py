@@ -7,7 +7,9 @@ fsyncs, each chunk written once), judged by the rules in order, and the rule sta
 once for the group. A single file is a group of one.
 
 When a scan's last planned line is committed, the pipeline also makes the scan's products
-once (images, vector field, sheet moment, report; :mod:`strayline.products`).
+once (images, vector field, sheet moment, report; :mod:`strayline.products`). With a
+background worker (the daemon), it also keeps a live picture of each running scan,
+redrawn on that worker every few lines or seconds (:mod:`strayline.pipeline._live`).
 
 :class:`LinePipeline` wires the stages together for one daemon (or one ``process`` pass).
 Everything it needs per scan — the profile-resolved config, the fit model, the store, the
@@ -46,6 +48,7 @@ from strayline.field import LineField, field_from_fit
 from strayline.fit import LineFit, failed_fits, fit_line
 from strayline.lines import LineLimits, ScanLine, bad_file_event, quarantine_file, read_line_file
 from strayline.pipeline._background import BackgroundWorker
+from strayline.pipeline._live import LiveRefresh
 from strayline.pipeline._reseed import seed_tracker
 from strayline.pipeline._setup import (
     MAX_OPEN_SCANS,
@@ -54,6 +57,7 @@ from strayline.pipeline._setup import (
     no_products,
     profile_event,
     progress_of,
+    scan_complete,
     store_config,
     zfs_rule,
 )
@@ -62,6 +66,11 @@ from strayline.rules import DecisionLog, MetricsTracker, RuleDecision, RuleEngin
 from strayline.store import ScanStore
 
 __all__ = ["LineOutcome", "LinePipeline", "PipelineStatistics"]
+
+
+def _no_live(scan: ScanContext, n_lines: int) -> None:
+    """No live picture (``products.live_image: false``, or no background worker)."""
+
 
 #: How long closing waits for products under way, s (within systemd's TimeoutStopSec;
 #: products left unfinished are remade with ``strayline products``).
@@ -176,7 +185,8 @@ class LinePipeline:
     background_products : bool
         Make a finished scan's products on a worker thread (the service does, so that
         a large scan's products never hold up its loop); otherwise at once, in
-        :meth:`process`.
+        :meth:`process`. Only with the worker is a running scan's live picture drawn
+        (``products.live_image``), on that thread.
     clock : callable returning float, optional
         Wall-clock seconds (``time.time``) for the rule engine's stall detection.
     rule_state : Path or None
@@ -231,6 +241,19 @@ class LinePipeline:
         self._products: BackgroundWorker | None = (
             BackgroundWorker("strayline-products") if background_products else None
         )
+        section = config.products
+        self._live: Callable[[ScanContext, int], None] = _no_live
+        if self._products is not None and section.live_image:
+            self._live = partial(
+                self._live_after_commit,
+                LiveRefresh(
+                    self._products,
+                    every_lines=section.live_every_lines,
+                    every_s=section.live_every_s,
+                    alert_log=config.paths.alert_log,
+                    clock=clock,
+                ),
+            )
 
     # -- one file -----------------------------------------------------------------------
 
@@ -453,6 +476,7 @@ class LinePipeline:
                 rules_s=rules_s + settle_s,
             )
         if to_write:
+            self._live(scan, len(to_write))
             scan.after_commit(scan, to_write[-1].line)
 
     def _duplicate(
@@ -668,6 +692,11 @@ class LinePipeline:
             out[scan_id] = progress_of(scan.store)
         return out
 
+    def wait_background(self, timeout_s: float) -> bool:
+        """Block until the background jobs queued so far (products, live pictures) have
+        run, at most ``timeout_s``; True if they have (and without a worker)."""
+        return self._products is None or self._products.wait_idle(timeout_s)
+
     def close(self) -> None:
         """Close every store, and the alert sink if this pipeline built it (waits for
         running hooks)."""
@@ -729,11 +758,7 @@ class LinePipeline:
         a line the store has. A failure is logged as an error and never retried
         automatically (``strayline products`` remakes them).
         """
-        committed = scan.store.committed()
-        last = scan.store.n_lines_planned - 1
-        if (last, "forward") not in committed:
-            return
-        if (last, "backward") not in committed and any(d == "backward" for _, d in committed):
+        if not scan_complete(scan.store):
             return
         if scan.products_done:
             self._log.info(
@@ -745,6 +770,13 @@ class LinePipeline:
             job()
         else:
             self._products.submit(job)
+
+    def _live_after_commit(self, live: LiveRefresh, scan: ScanContext, n_lines: int) -> None:
+        """Count a commit's lines towards the scan's next live picture."""
+        out_dir = products_dir(self._output_root, self.config.products.folder, scan.scan_id)
+        live.lines_committed(
+            scan.scan_id, scan.store.path, out_dir, n_lines, complete=scan_complete(scan.store)
+        )
 
     def _make_products(self, scan: ScanContext, nv_theta_rad: float, nv_phi_rad: float) -> None:
         """Make one finished scan's products (reads the store without its lock)."""

@@ -2,9 +2,15 @@
 
 No pyplot: figures are built as :class:`matplotlib.figure.Figure` objects that no global
 registry holds, so nothing stays open after a product is written and no display is
-needed. Colour scales are robust (1st–99th percentile), the field scale is diverging and
-centred on the map's median (or on zero for the reconstructed components, whose mean is
-not measurable), the status map is categorical with a legend. Pixels whose two resonances
+needed. Colour scales are robust (:mod:`strayline.products._scales`): the field scale is
+diverging and centred on the map's median (or on zero for the reconstructed components,
+whose mean is not measurable), drawn as ΔB = B − median where the field is weak beside
+its median; the PL scale comes from the lines that have fluorescence; the status map is
+categorical with a legend whose shares are the report's (:func:`status_fractions`,
+:func:`percent_text`). The title names the scan, trace, profile, lines done of those
+planned, when the scan started and when the picture was drawn (local time, ISO 8601 with
+its UTC offset); a line where an alert was raised is marked at the maps' right edge
+(◀, coloured by severity). Pixels whose two resonances
 merged into one dip are a measurement too, an upper bound on |B∥|
 (:func:`strayline.field.merged_field_bound_t`): both panels show them as "below
 resolution" in one neutral colour, not as failures.
@@ -12,7 +18,11 @@ resolution" in one neutral colour, not as failures.
 
 from __future__ import annotations
 
+import math
 import os
+from collections.abc import Sequence
+from dataclasses import dataclass
+from datetime import datetime
 from pathlib import Path
 from typing import Literal
 
@@ -23,13 +33,27 @@ from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.colors import BoundaryNorm, Colormap, ListedColormap
 from matplotlib.figure import Figure
 from matplotlib.image import AxesImage
+from matplotlib.lines import Line2D
 from matplotlib.patches import Patch
+from matplotlib.transforms import blended_transform_factory
 
+from strayline.alerts import SEVERITY_ORDER
 from strayline.fit import FitStatus
 from strayline.products._maps import TraceMaps, VectorField, contrast_map
+from strayline.products._marks import AlertMark
+from strayline.products._report import percent_text, status_fractions
+from strayline.products._scales import field_scale, field_unit, pl_scale, robust_range
 from strayline.store import STATUS_FILL
 
-__all__ = ["BELOW_RESOLUTION_LABEL", "quicklook_figure", "save_png", "vector_figure"]
+__all__ = [
+    "BELOW_RESOLUTION_LABEL",
+    "NO_STANDOFF_TEXT",
+    "QUICKLOOK_MAPS",
+    "FigureHeading",
+    "quicklook_figure",
+    "save_png",
+    "vector_figure",
+]
 
 _DPI = 110
 # Pixels below resolution (status MERGED): a neutral blue-grey, apart from the field's
@@ -49,12 +73,75 @@ _STATUS_COLOURS = {
 }
 _STATUS_LABELS = {int(s): s.name.lower().replace("_", " ") for s in FitStatus} | {
     int(FitStatus.MERGED): "below resolution (merged dips)",
-    STATUS_FILL: "not written",
 }
+#: The store maps :func:`quicklook_figure` draws from (a live picture reads only these).
+QUICKLOOK_MAPS = (
+    "field_nv_t",
+    "field_nv_bound_t",
+    "pl_rate_cps",
+    "contrast_lo",
+    "contrast_hi",
+    "status",
+)
+#: Marker colours of the lines where an alert was raised, by severity.
+_SEVERITY_COLOURS = {"info": "#1e88e5", "warning": "#fb8c00", "critical": "#d50000"}
+NO_STANDOFF_TEXT = (
+    "Sheet moment m_z not computed:\nno NV-sample stand-off is configured\n"
+    "(set products.standoff_nm, or pass --standoff-nm\nto strayline products)"
+)
 # Drawn width of one map panel, inches: 12.5 in × (0.86 − 0.07) / (2 + wspace 0.42).
 _PANEL_W_IN = 4.08
 # Stretching a map more than this (physical aspect ratio) gets an unequal-aspect plot.
 _MAX_ASPECT = 4.0
+
+
+@dataclass(frozen=True)
+class FigureHeading:
+    """What a figure's title says besides its trace.
+
+    Attributes
+    ----------
+    scan_id : str
+    profile : str or None
+        The scan's sample-type profile (None: the base config).
+    lines_planned : int or None
+        Lines the scan plans (None: unknown, the trace's line range is shown instead).
+    started : datetime or None
+        When the scan's store was created (aware), if known.
+    drawn : datetime
+        When the picture is drawn (aware).
+    live : bool
+        A picture of a scan still running, redrawn as lines arrive.
+    """
+
+    scan_id: str
+    profile: str | None
+    lines_planned: int | None
+    started: datetime | None
+    drawn: datetime
+    live: bool = False
+
+    def lines(self, trace: TraceMaps, what: str | None = None) -> str:
+        """The title for ``trace``: scan, trace, profile, lines done of those planned;
+        then ``what`` the figure shows, if given; then when the scan started and when the
+        picture was drawn (local time)."""
+        planned = self.lines_planned if self.lines_planned is not None else trace.shape[0]
+        profile = self.profile if self.profile is not None else "none (base config)"
+        lines = [
+            f"{self.scan_id} — {trace.direction} trace — profile {profile} — "
+            f"{trace.n_lines_committed} of {planned} lines × {trace.shape[1]} pixels"
+        ]
+        if what is not None:
+            lines.append(what)
+        when = [] if self.started is None else [f"scan started {_local(self.started)}"]
+        when.append(f"drawn {_local(self.drawn)}")
+        lines.append(("live picture — " if self.live else "") + ", ".join(when))
+        return "\n".join(lines)
+
+
+def _local(moment: datetime) -> str:
+    """``moment`` in the machine's local time, ISO 8601 with its UTC offset."""
+    return moment.astimezone().isoformat(timespec="seconds")
 
 
 def _with_bad(name: str) -> Colormap:
@@ -91,8 +178,9 @@ def _figure(trace: TraceMaps) -> tuple[Figure, np.ndarray]:
     if _aspect(trace) == "auto":
         tall = 0.5
     map_h = min(max(_PANEL_W_IN * tall, 1.6), 5.5)
-    gap_in = 1.0  # titles above and axis labels below a map
-    height = 2 * map_h + gap_in + 1.0 + 0.7
+    gap_in = 1.1  # titles (up to two lines) above and axis labels below a map
+    top_in, bottom_in = 1.2, 0.9  # the two-line title; axis labels and the marks' key
+    height = 2 * map_h + gap_in + top_in + bottom_in
     fig = Figure(figsize=(12.5, height), dpi=_DPI)
     FigureCanvasAgg(fig)
     axes = fig.subplots(
@@ -101,8 +189,8 @@ def _figure(trace: TraceMaps) -> tuple[Figure, np.ndarray]:
         gridspec_kw={
             "left": 0.07,
             "right": 0.86,
-            "bottom": 0.7 / height,
-            "top": 1.0 - 1.0 / height,
+            "bottom": bottom_in / height,
+            "top": 1.0 - top_in / height,
             "wspace": 0.42,
             "hspace": gap_in / map_h,
         },
@@ -110,39 +198,12 @@ def _figure(trace: TraceMaps) -> tuple[Figure, np.ndarray]:
     return fig, axes
 
 
-def _robust_range(values: np.ndarray) -> tuple[float, float] | None:
-    finite = values[np.isfinite(values)]
-    if finite.size == 0:
-        return None
-    lo, hi = np.percentile(finite, [1.0, 99.0])
-    if hi <= lo:
-        pad = max(abs(float(lo)) * 1e-3, 1e-30)
-        return float(lo) - pad, float(hi) + pad
-    return float(lo), float(hi)
-
-
-def field_unit(half_range_t: float) -> tuple[str, float]:
-    """Unit label and scale for a field map: mT from a 1 mT half-range, else µT."""
-    return ("mT", 1e3) if half_range_t >= 1e-3 else ("µT", 1e6)
-
-
-def _diverging_limits(values: np.ndarray, centre: float | None) -> tuple[float, float]:
-    """(centre, half range) of a symmetric colour scale covering the 1st–99th percentile.
-
-    The centre is ``centre`` or, when None, the median of the finite values.
-    """
-    finite = values[np.isfinite(values)]
-    if finite.size == 0:
-        return (0.0 if centre is None else centre), 1e-9
-    mid = float(np.median(finite)) if centre is None else centre
-    lo, hi = np.percentile(finite, [1.0, 99.0])
-    return mid, max(abs(float(hi) - mid), abs(mid - float(lo)), 1e-12)
-
-
-def _colorbar(ax: Axes, image: AxesImage, label: str) -> None:
+def _colorbar(
+    ax: Axes, image: AxesImage, label: str, extend: Literal["neither", "min"] = "neither"
+) -> None:
     """A colour bar exactly as tall as the drawn map, just right of it."""
     cax = ax.inset_axes((1.03, 0.0, 0.04, 1.0))
-    ax.figure.colorbar(image, cax=cax, label=label)
+    ax.figure.colorbar(image, cax=cax, label=label, extend=extend)
 
 
 def _label_axes(ax: Axes, title: str) -> None:
@@ -154,24 +215,42 @@ def _label_axes(ax: Axes, title: str) -> None:
 def _field_panel(
     ax: Axes, trace: TraceMaps, values_t: np.ndarray, *, name: str, centre: float | None
 ) -> None:
-    """A field map on a diverging scale, in µT or mT as its spread asks."""
-    mid, half = _diverging_limits(values_t, centre)
-    unit, scale = field_unit(half)
+    """A field map on a diverging scale, in µT or mT as its spread asks; where the field is
+    weak beside its median, as ΔB = B − median (:func:`field_scale`), said in the colour
+    bar's label and the title."""
+    scale = field_scale(values_t, centre)
+    mid, half = scale.centre_t, scale.half_range_t
+    unit, factor = field_unit(half)
+    shown, low = (values_t - mid, -half) if scale.relative else (values_t, mid - half)
     image = ax.imshow(
-        values_t * scale,
+        shown * factor,
         origin="lower",
         extent=_extent_um(trace),
         aspect=_aspect(trace),
         cmap=_with_bad("RdBu_r"),
-        vmin=(mid - half) * scale,
-        vmax=(mid + half) * scale,
+        vmin=low * factor,
+        vmax=(low + 2 * half) * factor,
         interpolation="nearest",
     )
-    _colorbar(ax, image, f"{name} ({unit})")
-    title = (
-        name if centre is not None else f"{name}, centred on the median {mid * scale:.4g} {unit}"
-    )
-    _label_axes(ax, title)
+    median = _reference_text(mid, half)
+    if scale.relative:
+        _colorbar(ax, image, f"ΔB = {name} − {median} ({unit})")
+        _label_axes(ax, f"{name}: ΔB from the median {median}")
+    elif centre is not None:
+        _colorbar(ax, image, f"{name} ({unit})")
+        _label_axes(ax, name)
+    else:
+        _colorbar(ax, image, f"{name} ({unit})")
+        _label_axes(ax, f"{name}, centred on the median {median}")
+
+
+def _reference_text(centre_t: float, half_range_t: float) -> str:
+    """The scale's centre in its own unit, to a hundredth of the half-range (so that
+    "ΔB = B − 3.002 mT" names the reference as finely as the scale resolves)."""
+    unit, factor = field_unit(centre_t)
+    step = half_range_t * factor / 100.0
+    decimals = min(max(0, -math.floor(math.log10(step))), 6) if step > 0 else 0
+    return f"{centre_t * factor:.{decimals}f} {unit}"
 
 
 def _below_resolution(ax: Axes, trace: TraceMaps) -> None:
@@ -193,8 +272,8 @@ def _below_resolution(ax: Axes, trace: TraceMaps) -> None:
     label = BELOW_RESOLUTION_LABEL
     if bound.size:
         median = float(np.median(bound))
-        unit, scale = field_unit(median)
-        label = f"below resolution (|B∥| < bound, median {median * scale:.3g} {unit})"
+        unit, factor = field_unit(median)
+        label = f"below resolution (|B∥| < bound, median {median * factor:.3g} {unit})"
     ax.legend(
         handles=[Patch(facecolor=_BELOW_RESOLUTION_COLOUR, label=label)],
         loc="lower left",
@@ -207,7 +286,7 @@ def _scalar_panel(
     ax: Axes, trace: TraceMaps, values: np.ndarray, *, title: str, label: str, cmap: str
 ) -> None:
     """A positive quantity on a sequential scale from its 1st to 99th percentile."""
-    limits = _robust_range(values)
+    limits = robust_range(values)
     vmin, vmax = limits if limits is not None else (0.0, 1.0)
     image = ax.imshow(
         values,
@@ -223,8 +302,35 @@ def _scalar_panel(
     _label_axes(ax, title)
 
 
+def _pl_panel(ax: Axes, trace: TraceMaps) -> None:
+    """PL rate on a sequential scale from the lines that have fluorescence
+    (:func:`pl_scale`); dark lines are drawn at its bottom and the title counts them."""
+    values = np.asarray(trace.maps["pl_rate_cps"]) / 1e3
+    scale = pl_scale(values, trace.committed)
+    vmin, vmax = (scale.lo, scale.hi) if scale is not None else (0.0, 1.0)
+    image = ax.imshow(
+        values,
+        origin="lower",
+        extent=_extent_um(trace),
+        aspect=_aspect(trace),
+        cmap=_with_bad("magma"),
+        vmin=vmin,
+        vmax=vmax,
+        interpolation="nearest",
+    )
+    dark = 0 if scale is None else scale.dark_lines
+    _colorbar(ax, image, "PL (kcounts/s)", extend="min" if dark else "neither")
+    title = "Photoluminescence rate (off resonance)"
+    if dark:
+        lines = "line" if dark == 1 else "lines"
+        title += f"\nscale from the lines with fluorescence; {dark} dark {lines} below it"
+    _label_axes(ax, title)
+
+
 def _status_panel(ax: Axes, trace: TraceMaps) -> None:
-    """Fit status codes in categorical colours, with a legend of the codes present."""
+    """Fit status codes in categorical colours, with a legend of the codes present; the
+    shares are of the committed pixels, as in the report (:func:`status_fractions`,
+    :func:`percent_text`)."""
     codes = sorted(_STATUS_COLOURS)
     cmap = ListedColormap([_STATUS_COLOURS[c] for c in codes])
     bounds = [*(c - 0.5 for c in codes), codes[-1] + 0.5]
@@ -239,13 +345,23 @@ def _status_panel(ax: Axes, trace: TraceMaps) -> None:
         norm=norm,
         interpolation="nearest",
     )
-    total = status.size
-    handles = []
-    for code in codes:
-        count = int(np.count_nonzero(status == code))
-        if count:
-            label = f"{_STATUS_LABELS[code]} ({100.0 * count / total:.1f} %)"
-            handles.append(Patch(facecolor=_STATUS_COLOURS[code], label=label))
+    fractions = status_fractions(status[trace.committed])
+    handles = [
+        Patch(
+            facecolor=_STATUS_COLOURS[int(member)],
+            label=f"{_STATUS_LABELS[int(member)]} ({percent_text(fractions[member.name.lower()])})",
+        )
+        for member in FitStatus
+        if fractions[member.name.lower()] > 0
+    ]
+    unwritten = trace.shape[0] - trace.n_lines_committed
+    if unwritten:
+        lines = "line" if unwritten == 1 else "lines"
+        handles.append(
+            Patch(
+                facecolor=_STATUS_COLOURS[STATUS_FILL], label=f"not written ({unwritten} {lines})"
+            )
+        )
     ax.legend(
         handles=handles,
         loc="upper left",
@@ -258,20 +374,86 @@ def _status_panel(ax: Axes, trace: TraceMaps) -> None:
     _label_axes(ax, "Fit status")
 
 
-def quicklook_figure(trace: TraceMaps, scan_id: str) -> Figure:
-    """Four panels: B_NV (diverging, median-centred; pixels below resolution in a neutral
-    colour), PL rate, contrast, fit status."""
+def _trace_marks(trace: TraceMaps, marks: Sequence[AlertMark]) -> dict[int, AlertMark]:
+    """Per row of ``trace``, the most urgent mark on its line (rows with none left out)."""
+    row_of = {int(index): row for row, index in enumerate(trace.line_index)}
+    out: dict[int, AlertMark] = {}
+    for mark in marks:
+        row = row_of.get(mark.line_index)
+        if row is None or not mark.on(trace.direction):
+            continue
+        if row not in out or mark.rank > out[row].rank:
+            out[row] = mark
+    return out
+
+
+def _draw_marks(axes: Sequence[Axes], trace: TraceMaps, rows: dict[int, AlertMark]) -> None:
+    """A ◀ at the right edge of each map, level with each marked line."""
+    for ax in axes:
+        edge = blended_transform_factory(ax.transAxes, ax.transData)
+        for severity in SEVERITY_ORDER:
+            ys = [trace.y_m[row] * 1e6 for row, m in rows.items() if m.severity == severity]
+            if ys:
+                ax.plot(
+                    np.ones(len(ys)),
+                    ys,
+                    linestyle="none",
+                    marker="<",
+                    markersize=7,
+                    markerfacecolor=_SEVERITY_COLOURS[severity],
+                    markeredgecolor="black",
+                    markeredgewidth=0.5,
+                    transform=edge,
+                    clip_on=False,
+                    zorder=5,
+                )
+
+
+def _marks_key(fig: Figure, rows: dict[int, AlertMark]) -> None:
+    """The markers' key below the maps: what ◀ means and the lines marked."""
+    if not rows:
+        return
+    lines = sorted({m.line_index for m in rows.values()})
+    shown = ", ".join(str(i) for i in lines[:12]) + (" …" if len(lines) > 12 else "")
+    rules = ", ".join(sorted({m.rule for m in rows.values()}))
+    handles = [
+        Line2D(
+            [],
+            [],
+            linestyle="none",
+            marker="<",
+            markersize=7,
+            markerfacecolor=_SEVERITY_COLOURS[severity],
+            markeredgecolor="black",
+            markeredgewidth=0.5,
+            label=severity,
+        )
+        for severity in SEVERITY_ORDER
+        if any(m.severity == severity for m in rows.values())
+    ]
+    fig.legend(
+        handles=handles,
+        loc="lower left",
+        bbox_to_anchor=(0.07, 0.0),
+        ncols=len(handles) + 1,
+        fontsize=8,
+        frameon=False,
+        title=f"◀ at a map's right edge: an alert raised at line {shown} ({rules})",
+        title_fontsize=8,
+        alignment="left",
+    )
+
+
+def quicklook_figure(
+    trace: TraceMaps, heading: FigureHeading, marks: Sequence[AlertMark] = ()
+) -> Figure:
+    """Four panels: B_NV (diverging, median-centred, ΔB where weak; pixels below
+    resolution in a neutral colour), PL rate (scaled by the lines with fluorescence),
+    contrast, fit status; the lines where an alert was raised marked at the maps' edge."""
     fig, axes = _figure(trace)
     _field_panel(axes[0, 0], trace, trace.maps["field_nv_t"], name="B along NV", centre=None)
     _below_resolution(axes[0, 0], trace)
-    _scalar_panel(
-        axes[0, 1],
-        trace,
-        trace.maps["pl_rate_cps"] / 1e3,
-        title="Photoluminescence rate (off resonance)",
-        label="PL (kcounts/s)",
-        cmap="magma",
-    )
+    _pl_panel(axes[0, 1], trace)
     _scalar_panel(
         axes[1, 0],
         trace,
@@ -281,27 +463,31 @@ def quicklook_figure(trace: TraceMaps, scan_id: str) -> Figure:
         cmap="viridis",
     )
     _status_panel(axes[1, 1], trace)
-    fig.suptitle(
-        f"{scan_id} — {trace.direction} trace, {trace.n_lines_committed} of {trace.shape[0]} "
-        f"lines × {trace.shape[1]} pixels",
-        fontsize=12,
-    )
+    rows = _trace_marks(trace, marks)
+    _draw_marks(list(axes.ravel()), trace, rows)
+    _marks_key(fig, rows)
+    fig.suptitle(heading.lines(trace), fontsize=11)
     return fig
 
 
 def vector_figure(
-    trace: TraceMaps, vector: VectorField, scan_id: str, standoff_m: float | None
+    trace: TraceMaps, vector: VectorField, heading: FigureHeading, standoff_m: float | None
 ) -> Figure:
-    """Bx, By, Bz (zero-centred) and, with a standoff, m_z; filled pixels shaded grey."""
-    panels = 4 if vector.m_z_a is not None and standoff_m is not None else 3
+    """Bx, By, Bz (zero-centred) and m_z with a standoff, or in its place a panel saying
+    no standoff is configured; filled pixels shaded grey."""
     fig, grid = _figure(trace)
     axes = grid.ravel()
     for ax, values, name in zip(axes, vector.b_xyz_t, ("Bx", "By", "Bz"), strict=False):
         _field_panel(ax, trace, values, name=name, centre=0.0)
     if vector.m_z_a is not None and standoff_m is not None:
         _sheet_panel(axes[3], trace, vector.m_z_a, standoff_m)
+        shaded = axes
+    else:
+        axes[3].set_axis_off()
+        axes[3].text(0.5, 0.5, NO_STANDOFF_TEXT, ha="center", va="center", fontsize=10, wrap=True)
+        shaded = axes[:3]
     overlay = np.where(vector.filled, 1.0, np.nan)
-    for ax in axes[:panels]:
+    for ax in shaded:
         ax.imshow(
             overlay,
             origin="lower",
@@ -311,12 +497,13 @@ def vector_figure(
             alpha=0.6,
             interpolation="nearest",
         )
-    for ax in axes[panels:]:
-        ax.set_visible(False)
     filled = 100.0 * float(np.mean(vector.filled))
     fig.suptitle(
-        f"{scan_id} — {trace.direction} trace: field vector reconstructed from B along NV\n"
-        f"(uniform parts not recoverable; {filled:.1f} % of pixels filled in, shaded grey)",
+        heading.lines(
+            trace,
+            f"field vector reconstructed from B along NV (uniform parts not recoverable; "
+            f"{filled:.1f} % of pixels filled in, shaded grey)",
+        ),
         fontsize=11,
     )
     return fig
@@ -324,7 +511,7 @@ def vector_figure(
 
 def _sheet_panel(ax: Axes, trace: TraceMaps, m_z_a: np.ndarray, standoff_m: float) -> None:
     """Sheet moment density on a zero-centred diverging scale, mA."""
-    _, half = _diverging_limits(m_z_a, 0.0)
+    half = field_scale(m_z_a, 0.0).half_range_t
     image = ax.imshow(
         m_z_a * 1e3,
         origin="lower",

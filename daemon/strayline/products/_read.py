@@ -7,7 +7,9 @@ never reaches a product.
 
 from __future__ import annotations
 
+from collections.abc import Collection
 from dataclasses import dataclass
+from datetime import datetime
 from pathlib import Path
 from typing import Any
 
@@ -51,9 +53,35 @@ class StoreSnapshot:
     def scan_id(self) -> str:
         return str(self.attrs["scan_id"])
 
+    @property
+    def profile(self) -> str | None:
+        """The sample-type profile the scan was written with (None: the base config)."""
+        config = self.attrs.get("config")
+        profile = config.get("_profile") if isinstance(config, dict) else None
+        return profile if isinstance(profile, str) else None
 
-def read_snapshot(store_path: Path) -> StoreSnapshot:
+    @property
+    def lines_planned(self) -> int | None:
+        """Lines the scan plans, as its first line file said (None if not recorded)."""
+        planned = self.attrs.get("n_lines_planned")
+        return planned if isinstance(planned, int) and planned > 0 else None
+
+    @property
+    def started(self) -> datetime | None:
+        """When the store was created (aware), None if not recorded or not readable."""
+        text = self.attrs.get("created_time")
+        try:
+            moment = datetime.fromisoformat(text) if isinstance(text, str) else None
+        except ValueError:
+            return None
+        return moment if moment is not None and moment.tzinfo is not None else None
+
+
+def read_snapshot(store_path: Path, maps: Collection[str] = MAP_NAMES) -> StoreSnapshot:
     """Read the committed part of every trace of a store.
+
+    ``maps`` names the maps to read (every one by default; a picture that needs a few
+    reads only those).
 
     Raises
     ------
@@ -67,13 +95,12 @@ def read_snapshot(store_path: Path) -> StoreSnapshot:
         lines = committed[direction]
         if not lines:
             continue
-        maps = {name: reader.read_array(name, direction) for name in MAP_NAMES}
         trace = assemble_trace(
             direction,
             reader.read_array("x", direction).astype(np.float64),
             reader.read_array("y", direction).astype(np.float64),
             np.asarray(lines),
-            maps,
+            {name: reader.read_array(name, direction) for name in maps},
         )
         if trace is not None:
             traces[direction] = trace

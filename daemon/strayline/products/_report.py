@@ -24,6 +24,7 @@ __all__ = [
     "REPORT_FORMAT_VERSION",
     "alert_summary",
     "distribution",
+    "percent_text",
     "report_markdown",
     "status_fractions",
     "trace_summary",
@@ -78,6 +79,17 @@ def status_fractions(status: np.ndarray) -> dict[str, float]:
         member.name.lower(): (float(np.count_nonzero(codes == member)) / total if total else 0.0)
         for member in FitStatus
     }
+
+
+def percent_text(fraction: float) -> str:
+    """A fraction as a percentage with one decimal, for every place a share of pixels is
+    shown (report, quick-look legend): a share above 0 that would round to "0.0 %" reads
+    "< 0.1 %", one below 1 that would round to "100.0 %" reads "> 99.9 %"."""
+    if 0.0 < fraction < 0.0005:
+        return "< 0.1 %"
+    if 0.9995 <= fraction < 1.0:
+        return "> 99.9 %"
+    return f"{100.0 * fraction:.1f} %"
 
 
 def trace_summary(trace: TraceMaps) -> dict[str, Any]:
@@ -174,7 +186,7 @@ def report_markdown(report: Mapping[str, Any]) -> str:
             f"## {direction.capitalize()} trace",
             "",
             f"- {trace['lines_committed']} lines committed, {trace['pixels_committed']} pixels; "
-            f"fits OK {100 * trace['fit_ok_fraction']:.1f} %",
+            f"fits OK {percent_text(trace['fit_ok_fraction'])}",
         ]
         missing = report.get("missing_lines", {}).get(direction)
         if missing and missing["count"]:
@@ -192,12 +204,14 @@ def report_markdown(report: Mapping[str, Any]) -> str:
             bound = trace.get("field_nv_bound_t")
             median = "" if bound is None else f", median bound {_bound_value(bound['median'])}"
             lines.append(
-                f"- below resolution (merged dips) {100 * fractions['merged']:.1f} %: "
+                f"- below resolution (merged dips) {percent_text(fractions['merged'])}: "
                 f"|B∥| < bound ({100 * FIELD_BOUND_LEVEL:.0f} %, one-sided){median}"
             )
         failed = {k: v for k, v in fractions.items() if k not in ("ok", "merged") and v > 0}
         if failed:
-            listing = ", ".join(f"{k.replace('_', ' ')} {100 * v:.1f} %" for k, v in failed.items())
+            listing = ", ".join(
+                f"{k.replace('_', ' ')} {percent_text(v)}" for k, v in failed.items()
+            )
             lines.append(f"- not OK: {listing}")
         vector = trace.get("vector")
         if vector is not None:

@@ -4,7 +4,8 @@
 :mod:`strayline.products._read`) and writes, into one folder per scan
 (``<output_root>/<scan_id>.products/`` by default, see :func:`products_dir`):
 
-- ``quicklook_<direction>.png`` — field along the NV axis, PL rate, contrast, fit status;
+- ``quicklook_<direction>.png`` — field along the NV axis, PL rate, contrast, fit status,
+  the lines where an alert was raised marked at the maps' edge;
 - ``vector_<direction>.png`` — reconstructed Bx, By, Bz (and m_z), filled pixels grey;
 - ``vector_field.zarr`` — zarr 3: one group per direction with ``bx_t``, ``by_t``,
   ``bz_t``, ``filled``, ``m_z_a`` (with a standoff) and coordinates ``x``, ``y`` (m), dims
@@ -16,6 +17,7 @@ one writer at a time (the daemon holds its ledger lock while the scan runs, and 
 backward trace or a changed line may still arrive after the forward trace completes), and
 its recovery treats anything it did not commit as suspect. Products are derived and
 remade at will (after a refit, with a calibrated standoff), so they live beside the store:
+the daemon's live picture of a running scan (:mod:`strayline.products.live`) goes there too;
 the CLI can remake them while the daemon writes, and deleting them loses nothing.
 
 Every file is replaced atomically (temporary name, rename); the vector zarr is built in a
@@ -42,10 +44,11 @@ import zarr
 
 import strayline
 from strayline._atomic import write_text_atomic
-from strayline.alerts import read_alert_log
+from strayline.alerts import AlertEvent, read_alert_log
 from strayline.errors import StoreError
 from strayline.lines import DIRECTIONS
 from strayline.products._maps import TraceMaps, VectorField, reconstruct_vector
+from strayline.products._marks import alert_marks
 from strayline.products._read import StoreSnapshot, nv_axis_from_store, read_snapshot
 from strayline.products._report import (
     REPORT_FORMAT,
@@ -286,7 +289,18 @@ def _make(
     made: datetime,
 ) -> ProductsReport:
     if images:  # matplotlib only when drawing: it adds ~0.5 s to the daemon's start-up
-        from strayline.products._figures import quicklook_figure, save_png, vector_figure
+        from strayline.products._figures import (
+            FigureHeading,
+            quicklook_figure,
+            save_png,
+            vector_figure,
+        )
+
+        heading = FigureHeading(
+            snapshot.scan_id, snapshot.profile, snapshot.lines_planned, snapshot.started, made
+        )
+    events, alerts = _scan_alerts(alert_log, snapshot.scan_id)
+    marks = alert_marks(events, snapshot.scan_id)
     files: list[ProductFile] = []
     skipped: list[SkippedProduct] = []
     vectors: dict[str, VectorField] = {}
@@ -299,7 +313,7 @@ def _make(
         summaries[direction] = summary
         if images:
             path = out_dir / f"quicklook_{direction}.png"
-            save_png(quicklook_figure(trace, snapshot.scan_id), path)
+            save_png(quicklook_figure(trace, heading, marks), path)
             files.append(
                 ProductFile(
                     "quicklook_image",
@@ -314,7 +328,7 @@ def _make(
         vectors[direction] = vector
         if images:
             path = out_dir / f"vector_{direction}.png"
-            save_png(vector_figure(trace, vector, snapshot.scan_id, standoff_m), path)
+            save_png(vector_figure(trace, vector, heading, standoff_m), path)
             what = "Bx, By, Bz" + (" and m_z" if vector.m_z_a is not None else "")
             files.append(ProductFile("vector_image", path, f"{direction} trace: {what}"))
     if not images:
@@ -338,7 +352,7 @@ def _make(
         summaries=summaries,
         axis=axis,
         standoff_m=standoff_m,
-        alert_log=alert_log,
+        alerts=alerts,
         made=made,
         out_dir=out_dir,
         files=files,
@@ -426,21 +440,13 @@ def _report_dict(
     summaries: dict[str, dict[str, Any]],
     axis: tuple[float, float],
     standoff_m: float | None,
-    alert_log: Path | None,
+    alerts: dict[str, Any],
     made: datetime,
     out_dir: Path,
     files: Iterable[ProductFile],
     skipped: Iterable[SkippedProduct],
 ) -> dict[str, Any]:
     attrs = snapshot.attrs
-    if alert_log is None:
-        alerts: dict[str, Any] = alert_summary([]) | {"problem": "no alert log given"}
-    else:
-        try:
-            events = read_alert_log(alert_log, scan_id=snapshot.scan_id)
-            alerts = alert_summary(events) | {"problem": None, "log": str(alert_log)}
-        except (OSError, ValueError) as error:
-            alerts = alert_summary([]) | {"problem": str(error), "log": str(alert_log)}
     return {
         "report_format": REPORT_FORMAT,
         "report_format_version": REPORT_FORMAT_VERSION,
@@ -474,6 +480,18 @@ def _report_dict(
         ],
         "skipped": [{"product": s.product, "reason": s.reason} for s in skipped],
     }
+
+
+def _scan_alerts(alert_log: Path | None, scan_id: str) -> tuple[list[AlertEvent], dict[str, Any]]:
+    """The scan's alert events from the log (for the images' marks) and the report's
+    alerts block (their summary, or why the log was not read)."""
+    if alert_log is None:
+        return [], alert_summary([]) | {"problem": "no alert log given"}
+    try:
+        events = read_alert_log(alert_log, scan_id=scan_id)
+    except (OSError, ValueError) as error:
+        return [], alert_summary([]) | {"problem": str(error), "log": str(alert_log)}
+    return events, alert_summary(events) | {"problem": None, "log": str(alert_log)}
 
 
 def _finite(value: Any) -> Any:
