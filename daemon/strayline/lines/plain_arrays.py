@@ -410,6 +410,7 @@ def write_plain_line(line: ScanLine, folder: Path, *, y_m: list[float], kind: st
     """Write a line as a plain-array file in ``folder`` (atomically), and the sidecar first
     if the folder has none; ``y_m`` gives every planned line's slow-axis position."""
     folder = Path(folder)
+    folder.mkdir(parents=True, exist_ok=True)
     if find_sidecar(folder) is None:
         text = json.dumps({**sidecar_for(line), "y_m": [float(y) for y in y_m]}, indent=1)
         write_text_atomic(folder / SIDECAR_NAMES[0], text + "\n")
