@@ -85,10 +85,12 @@ def test_any_broken_sidecar_is_refused_naming_the_sidecar(changes: dict[str, obj
             data.pop(key, None)
         else:
             data[key] = value
+    problem = None
     try:
         parse_sidecar(json.dumps(data).encode(), Path("scan.json"))
     except LineFileError as error:
-        assert str(error).startswith("scan.json: ")
+        problem = str(error)
+    assert problem is None or problem.startswith("scan.json: ")
 
 
 def test_a_start_stop_sweep_and_a_pitch_give_the_grid() -> None:
@@ -228,5 +230,5 @@ def test_a_file_name_without_a_line_index_is_refused(tmp_path: Path) -> None:
     """The line index and direction come from the name: another name is refused."""
     path = tmp_path / "spectra.npz"
     np.savez(path, counts=np.ones((2, 2)))
-    with pytest.raises(LineFileError, match="file name must be line_<index>_fwd.npz"):
+    with pytest.raises(LineFileError, match=r"file name must be line_<index>_fwd\.npz"):
         read_plain_line(path)
