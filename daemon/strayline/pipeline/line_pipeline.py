@@ -849,11 +849,11 @@ class LinePipeline:
             self.deliver(held_scan_cleared(path, self._now()))
 
     def _quarantine(self, path: Path, error: LineFileError) -> LineOutcome:
-        if self.reader_for(path).growing:  # its writer may still append: never move it
-            return self._hold(path, error)
         if not self._move_bad_files:  # a refit: the line is no file of ours to move
             self._log.error("line_refused", file=str(path), problem=str(error))
             return LineOutcome(path, "unreadable", problem=str(error))
+        if self.reader_for(path).growing:  # its writer may still append: never move it
+            return self._hold(path, error)
         self._counters.quarantined += 1
         try:
             record = quarantine_file(
