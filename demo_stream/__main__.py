@@ -20,7 +20,7 @@ from demo_stream.presets import PRESETS
 from demo_stream.scenes import SCENES, make_scene
 from demo_stream.tip import NV_100_PHI_RAD, NV_100_THETA_RAD, TipModel
 from demo_stream.truth import truth_paths
-from demo_stream.writer import DemoConfig, frequency_grid_hz, run_scan
+from demo_stream.writer import LAYOUTS, DemoConfig, frequency_grid_hz, run_scan
 
 __all__ = ["build_parser", "config_from_args", "main"]
 
@@ -180,6 +180,14 @@ def build_parser() -> argparse.ArgumentParser:
         "--fault", type=_fault, action="append", default=[], help="fault to inject (repeatable)"
     )
     r.add_argument("--oversample", type=int, default=2, help="magnetisation sampling factor")
+    r.add_argument(
+        "--layout",
+        choices=LAYOUTS,
+        default="line-files",
+        help="how the lines are written: one HDF5 file per line (contract v1), one HDF5 file "
+        "per scan that grows a row per line (SWMR), or per-line .npz files with a scan.json "
+        "sidecar (the daemon's readers line-file, growing-file, plain-arrays)",
+    )
     r.add_argument("--out", type=Path, default=Path("demo_out"), help="watched output folder")
     r.add_argument(
         "--truth", type=Path, default=Path("demo_truth"), help="ground-truth folder (not watched)"
@@ -270,7 +278,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         parser.error(str(exc))
     started = time.monotonic()
     try:
-        record = run_scan(config, args.out, args.truth, pace_s=args.pace_s)
+        record = run_scan(config, args.out, args.truth, pace_s=args.pace_s, layout=args.layout)
     except ValueError as exc:
         parser.error(str(exc))
     except KeyboardInterrupt:

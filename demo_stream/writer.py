@@ -12,6 +12,15 @@ they were acquired, i.e. decreasing x**; ``x_m`` always states each row's positi
 reader must place rows by ``x_m``, not by index. The truth maps are all in column order
 (increasing x).
 
+Layouts
+-------
+``layout`` chooses how the lines are written (:data:`LAYOUTS`): ``"line-files"``, one
+contract-v1 HDF5 file per trace (the default); ``"growing-file"``, one HDF5 file per scan,
+``<scan_id>.h5``, held open in SWMR mode and grown a row per trace; ``"plain-arrays"``, a
+``line_NNNNN_fwd.npz`` per trace and a ``scan.json`` sidecar. The same scan (same seed and
+clock) gives the same lines in every layout; the file-level faults (a corrupt file, a slow
+in-place write) exist in the line-files layout only.
+
 Pace and time
 -------------
 ``pace_s`` is the time per scan line (both traces of it with trace/retrace): the file of
@@ -47,9 +56,27 @@ from demo_stream.truth import (
     truth_paths,
     write_json_atomic,
 )
-from strayline.lines import ScanLine, line_file_bytes, line_file_name, write_line_file
+from strayline.lines import (
+    GrowingFileWriter,
+    ScanHeader,
+    ScanLine,
+    line_file_bytes,
+    line_file_name,
+    write_line_file,
+    write_plain_line,
+)
 
-__all__ = ["DemoConfig", "OnLine", "config_to_dict", "frequency_grid_hz", "run_scan"]
+__all__ = [
+    "LAYOUTS",
+    "DemoConfig",
+    "OnLine",
+    "config_to_dict",
+    "frequency_grid_hz",
+    "run_scan",
+]
+
+#: The layouts the demo instrument writes (see the module's notes).
+LAYOUTS = ("line-files", "growing-file", "plain-arrays")
 
 #: Called after each line's files are written: ``on_line(line_index, paths)``.
 OnLine = Callable[[int, tuple[Path, ...]], None]
@@ -217,6 +244,10 @@ def _file_fault(faults: Sequence[Fault], line_index: int, n_lines: int) -> Fault
     return found
 
 
+def _utc_now() -> datetime:
+    return datetime.now(UTC)
+
+
 def _write_bytes_atomic(path: Path, data: bytes) -> None:
     tmp = path.with_name(f".{path.name}.partial")
     with tmp.open("wb") as fh:
@@ -256,6 +287,8 @@ def run_scan(
     on_line: OnLine | None = None,
     sleep: Callable[[float], None] = time.sleep,
     clock: Callable[[], float] = time.monotonic,
+    layout: str = "line-files",
+    wall_clock: Callable[[], datetime] = _utc_now,
 ) -> TruthRecord:
     """Run a demo scan: write its line files at pace and its ground truth.
 
@@ -275,6 +308,11 @@ def run_scan(
         ``on_line(line_index, paths)`` after each line's files are written.
     sleep, clock : callable
         Time functions (injectable so tests need not wait).
+    layout : str
+        One of :data:`LAYOUTS`.
+    wall_clock : callable returning an aware datetime
+        The time written as each line's start and end (injectable, so that one scan
+        written twice carries the same times).
 
     Returns
     -------
@@ -284,6 +322,15 @@ def run_scan(
     """
     if not (math.isfinite(pace_s) and pace_s >= 0):
         raise ValueError(f"run_scan: pace_s must be a finite number >= 0; found {pace_s}")
+    if layout not in LAYOUTS:
+        raise ValueError(f"run_scan: layout must be one of {', '.join(LAYOUTS)}; found {layout!r}")
+    if layout != "line-files" and any(
+        f.kind in ("corrupt_file", "slow_in_place_write") for f in config.faults
+    ):
+        raise ValueError(
+            f"run_scan: file faults (corrupt_file, slow_in_place_write) need the line-files "
+            f"layout; found layout {layout!r}"
+        )
     out_root = Path(out_dir).resolve()
     truth_root = Path(truth_dir).resolve()
     if truth_root == out_root or out_root in truth_root.parents:
@@ -333,6 +380,8 @@ def run_scan(
     interval_s = pace_s / len(directions)
     deadline = clock()
     complete = False
+    growing: GrowingFileWriter | None = None
+    y_m = [float(y) for y in renderer.y_m]
     try:
         for k in range(config.n_lines):
             pause = _stall_s(config.faults, k, pace_s, config.n_lines)
@@ -343,7 +392,7 @@ def run_scan(
             file_fault = _file_fault(config.faults, k, config.n_lines)
             written: list[Path] = []
             for d, direction in enumerate(directions):
-                start = datetime.now(UTC)
+                start = wall_clock()
                 backward = direction == "backward"
                 counts, truth = renderer.render_trace(k, backward, rng)
                 fill_trace(maps, d, k, truth)
@@ -360,7 +409,7 @@ def run_scan(
                     n_lines_planned=config.n_lines,
                     direction=direction,  # type: ignore[arg-type]  # from config.directions
                     start_time=start,
-                    end_time=datetime.now(UTC),
+                    end_time=wall_clock(),
                     dwell_s=config.tip.dwell_s,
                     nv_theta_rad=config.tip.nv_theta_rad,
                     nv_phi_rad=config.tip.nv_phi_rad,
@@ -371,7 +420,17 @@ def run_scan(
                     temperature_k=config.tip.temperature_k,
                     profile=config.profile,
                 )
-                if file_fault is None:
+                if layout == "growing-file":
+                    if growing is None:
+                        path = scan_dir / f"{config.scan_id}.h5"
+                        growing = GrowingFileWriter(path, ScanHeader.of(line), swmr=True)
+                    path = growing.path
+                    growing.append(line)
+                    how = "appended"
+                elif layout == "plain-arrays":
+                    path = write_plain_line(line, scan_dir, y_m=y_m)
+                    how = "atomic"
+                elif file_fault is None:
                     write_line_file(line, path)
                     how = "atomic"
                 elif file_fault.kind == "corrupt_file":
@@ -386,6 +445,8 @@ def run_scan(
                 on_line(k, tuple(written))
         complete = True
     finally:
+        if growing is not None:
+            growing.close()
         result = record(complete)
         save_truth(result, truth_root)
     return result

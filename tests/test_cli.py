@@ -126,13 +126,14 @@ def test_the_parser_knows_exactly_the_commands() -> None:
 
 def test_check_config_accepts_the_shipped_default(capsys: pytest.CaptureFixture[str]) -> None:
     """config/default.yaml checks out (its /var/lib paths need not exist) and its
-    profiles are listed."""
+    profiles are listed, then the readers."""
     default = REPO / "config" / "default.yaml"
     assert main(["check-config", str(default)]) == 0
-    out = capsys.readouterr().out
-    assert out.startswith(f"{default}: ok (digest ")
+    out = capsys.readouterr().out.splitlines()
+    assert out[0].startswith(f"{default}: ok (digest ")
     profiles = sorted(p.stem for p in (REPO / "config" / "profiles").glob("*.yaml"))
-    assert out.rstrip().endswith(f"profiles: {', '.join(profiles)})")
+    assert out[0].endswith(f"profiles: {', '.join(profiles)})")
+    assert out[-1] == "every scan folder: line-file reads *.h5"
 
 
 def test_check_config_takes_the_config_option_or_the_environment(
@@ -399,7 +400,7 @@ def test_a_copy_of_the_default_config_in_a_clean_folder_works_as_the_readme_says
     assert main(["check-config", str(copy)]) == 0
     captured = capsys.readouterr()
     shipped = sorted(p.stem for p in (REPO / "config" / "profiles").glob("*.yaml"))
-    assert captured.out.rstrip().endswith(f"profiles: {', '.join(shipped)})")
+    assert captured.out.splitlines()[0].endswith(f"profiles: {', '.join(shipped)})")
     assert captured.err == (
         f"strayline: warning: no sample-type profile in {tmp_path / 'profiles'} (profiles_dir "
         "is taken relative to the config file's folder); using the profiles shipped with "

@@ -155,7 +155,7 @@ def test_an_unreadable_file_inside_a_batch_is_left_for_later(
     """A file that exists but cannot be read (an OSError other than its absence) gets an
     "unreadable" outcome naming the problem and stays where it is; the rest are written.
     ``process`` (one file) raises it instead, as before."""
-    import strayline.pipeline.line_pipeline as module
+    import strayline.lines.line_file_reader as module
 
     folder = _copy_scan(scan_files, tmp_path)
     files = _files(folder)

@@ -370,8 +370,31 @@ def _cmd_refit(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _reader_lines(config) -> list[str]:  # type: ignore[no-untyped-def]
+    """The installed readers with the files each serves, then which scan folders each
+    reads (``check-config``)."""
+    from strayline.lines import READER_GROUP, installed_readers
+
+    installed = installed_readers()
+    choice = config.reader_choice
+    width = max(len(name) for name in installed.names)
+    lines = [f"readers (entry-point group {READER_GROUP}):"]
+    for name in installed.names:
+        reader = installed.readers[name]
+        patterns = " ".join(choice.patterns_of(reader))
+        lines.append(f"  {name:<{width}}  {patterns}  {reader.summary} [{installed.origins[name]}]")
+    for glob, reader in choice.rules:
+        patterns = " ".join(choice.patterns_of(reader))
+        lines.append(f"scan folders matching {glob!r}: {reader.name} reads {patterns}")
+    default = choice.default
+    which = "other scan folders" if choice.rules else "every scan folder"
+    lines.append(f"{which}: {default.name} reads {' '.join(choice.patterns_of(default))}")
+    return lines
+
+
 def _cmd_check_config(args: argparse.Namespace) -> int:
     from strayline.config import config_digest, load_config
+    from strayline.lines import installed_readers
 
     file = args.file if args.file is not None else _need_config(args)
     config = load_config(file)
@@ -379,6 +402,10 @@ def _cmd_check_config(args: argparse.Namespace) -> int:
     folder = config.profiles_folder
     profiles = ", ".join(available) or f"none in {folder}"
     print(f"{file}: ok (digest {config_digest(config)[:12]}; profiles: {profiles})")
+    for text in _reader_lines(config):
+        print(text)
+    for problem in installed_readers().problems:
+        print(f"strayline: warning: {problem}", file=sys.stderr)
     if folder != config.profiles_dir:
         print(
             f"strayline: warning: no sample-type profile in {config.profiles_dir} "

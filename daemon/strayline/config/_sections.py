@@ -38,6 +38,8 @@ __all__ = [
     "PathsSection",
     "ProductsSection",
     "ProfileRule",
+    "ReaderRule",
+    "ReadersSection",
     "ResolvedPath",
     "Section",
     "ServiceSection",
@@ -345,3 +347,18 @@ class ProfileRule(Section):
 
     folder_glob: Annotated[str, Field(min_length=1)]
     profile: Annotated[str, Field(min_length=1)]
+
+
+class ReaderRule(Section):
+    """Read the scan folders whose name matches ``folder_glob`` (fnmatch) with ``reader``."""
+
+    folder_glob: Annotated[str, Field(min_length=1)]
+    reader: Annotated[str, Field(min_length=1)]
+
+
+class ReadersSection(Section):
+    """Which reader reads each scan folder's files (see :mod:`strayline.lines.readers`);
+    the names are checked against the installed readers when the config is built."""
+
+    default: Annotated[str, Field(min_length=1)] = "line-file"
+    rules: list[ReaderRule] = Field(default_factory=list)

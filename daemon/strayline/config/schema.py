@@ -52,6 +52,7 @@ from strayline.config._sections import (
     PathsSection,
     ProductsSection,
     ProfileRule,
+    ReadersSection,
     ResolvedPath,
     Section,
     ServiceSection,
@@ -59,6 +60,7 @@ from strayline.config._sections import (
     WatchSection,
 )
 from strayline.errors import ConfigError
+from strayline.lines import LINE_FILE_READER, ReaderChoice, installed_readers
 from strayline.rules import RulesConfig, load_rules
 
 __all__ = [
@@ -96,6 +98,7 @@ class Config(Section):
 
     paths: PathsSection
     watch: WatchSection = Field(default_factory=WatchSection)
+    readers: ReadersSection = Field(default_factory=ReadersSection)
     limits: LimitsSection = Field(default_factory=LimitsSection)
     fit: FitSection = Field(default_factory=FitSection)
     field: FieldSection = Field(default_factory=FieldSection)
@@ -115,6 +118,7 @@ class Config(Section):
     _base: Config | None = PrivateAttr(default=None)
     _profile_cache: dict[str, Config] = PrivateAttr(default_factory=dict)
     _rule_set: RulesConfig | None = PrivateAttr(default=None)
+    _reader_choice: ReaderChoice | None = PrivateAttr(default=None)
 
     @property
     def source(self) -> Path | None:
@@ -128,6 +132,18 @@ class Config(Section):
         if self._rule_set is None:
             self._rule_set = load_rules(self)
         return self._rule_set
+
+    @property
+    def reader_choice(self) -> ReaderChoice:
+        """The reader of each scan folder (``readers``, names checked against the installed
+        readers when this config was built; ``watch.pattern`` is the file-name pattern of
+        the contract-v1 reader)."""
+        if self._reader_choice is None:
+            choice, problems = _reader_choice(self)
+            if choice is None:
+                raise ConfigError(self._source, problems[0][0], problems[0][1])
+            self._reader_choice = choice
+        return self._reader_choice
 
     @property
     def profile(self) -> str | None:
@@ -201,7 +217,33 @@ def _build(
         config._rule_set = load_rules(config)
     except ConfigError as error:
         return None, [(error.key_path, error.problem)]
+    config._reader_choice, problems = _reader_choice(config)
+    if problems:
+        return None, problems
     return config, []
+
+
+def _reader_choice(config: Config) -> tuple[ReaderChoice | None, list[tuple[str, str]]]:
+    """The reader of each scan folder, or the keys that name no installed reader."""
+    installed = installed_readers()
+    section = config.readers
+    named = [("readers.default", section.default)] + [
+        (f"readers.rules[{i}].reader", rule.reader) for i, rule in enumerate(section.rules)
+    ]
+    problems = [
+        (
+            key,
+            f"unknown reader {name!r}{suggest(name, installed.names)} (expected one of the "
+            f"installed readers: {', '.join(installed.names)})",
+        )
+        for key, name in named
+        if name not in installed.readers
+    ]
+    if problems:
+        return None, problems
+    rules = tuple((rule.folder_glob, installed.readers[rule.reader]) for rule in section.rules)
+    patterns = {LINE_FILE_READER.name: (config.watch.pattern,)}
+    return ReaderChoice(rules, installed.readers[section.default], patterns), []
 
 
 def config_from_mapping(

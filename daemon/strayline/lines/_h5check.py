@@ -204,10 +204,14 @@ class FileFields:
     def field(self, name: str) -> str:
         return f"dataset '{self.prefix}{name}'"
 
-    def dataset(self, name: str, *, required: bool = True) -> h5py.Dataset | None:
+    def dataset(
+        self, name: str, *, required: bool = True, whole_read: bool = True
+    ) -> h5py.Dataset | None:
         """A numeric dataset stored in this file (no links, no external or virtual data).
 
         Only metadata is touched; the values are read later by :meth:`values`.
+        ``whole_read``: the dataset will be read whole, so its chunks are bounded by the
+        read limit (a caller reading it a row at a time bounds the rows itself).
         """
         field = self.field(name)
         link = self.group.get(name, getlink=True)
@@ -225,7 +229,8 @@ class FileFields:
             self.fail(field, "stored inside this file", "a virtual or external dataset")
         if obj.dtype.kind not in "iuf":
             self.fail(field, "of integer or floating-point dtype", describe_dtype(obj.dtype))
-        self._check_read_size(obj, field)
+        if whole_read:
+            self._check_read_size(obj, field)
         return obj
 
     def _check_read_size(self, dataset: h5py.Dataset, field: str) -> None:

@@ -4,6 +4,10 @@ The file goes to ``<scan folder>/_quarantine/`` with a JSON sidecar that says ex
 was wrong (file, field, expected, found, when). Names never collide: a second file of the
 same name gets a numbered suffix, so nothing is overwritten. :func:`bad_file_event` is the
 alert that tells the operator about it.
+
+A file its writer still appends to (a growing scan file) is never moved: its scan is held
+instead, :func:`held_scan_event` raising an alert that names the field, and
+:func:`held_scan_cleared` clearing it once the file reads cleanly again.
 """
 
 from __future__ import annotations
@@ -21,9 +25,12 @@ from strayline.lines.scan_line import line_key_from_name
 
 __all__ = [
     "BAD_FILE_RULE",
+    "HELD_SCAN_RULE",
     "QUARANTINE_DIR",
     "QuarantineRecord",
     "bad_file_event",
+    "held_scan_cleared",
+    "held_scan_event",
     "quarantine_file",
 ]
 
@@ -31,6 +38,42 @@ QUARANTINE_DIR = "_quarantine"
 
 #: Rule name of the alert raised for a quarantined file.
 BAD_FILE_RULE = "bad_file"
+
+#: Rule name of the alert raised while a growing file holds its scan.
+HELD_SCAN_RULE = "scan_held"
+
+
+def held_scan_event(path: Path, error: LineFileError, now: datetime) -> AlertEvent:
+    """The warning raised when a growing scan file cannot be read on (its scan is held).
+
+    The scan is named by its folder (one growing file per scan folder); the file stays
+    where it is, its writer may still be appending to it.
+    """
+    return AlertEvent(
+        time=now.astimezone(UTC).isoformat(timespec="milliseconds"),
+        scan_id=path.parent.name,
+        rule=HELD_SCAN_RULE,
+        severity="warning",
+        state="raised",
+        message=f"scan held: {error}",
+        advice=(
+            f"{path} is left in place and read again whenever it changes; the lines before "
+            "the fault are in the map, the rest wait. Check the acquisition software's writer"
+        ),
+    )
+
+
+def held_scan_cleared(path: Path, now: datetime) -> AlertEvent:
+    """The clear of :func:`held_scan_event`: the growing file reads cleanly again."""
+    return AlertEvent(
+        time=now.astimezone(UTC).isoformat(timespec="milliseconds"),
+        scan_id=path.parent.name,
+        rule=HELD_SCAN_RULE,
+        severity="warning",
+        state="cleared",
+        message=f"scan no longer held: {path.name} reads cleanly again",
+        advice="",
+    )
 
 
 def bad_file_event(path: Path, error: LineFileError, moved_to: str, now: datetime) -> AlertEvent:

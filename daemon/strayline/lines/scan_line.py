@@ -224,8 +224,9 @@ def line_file_name(line_index: int, direction: str) -> str:
 
 
 #: The canonical line-file name (:func:`line_file_name`), e.g.
-#: ``line_00042_fwd.h5``; the direction tag is optional here.
-_LINE_NAME = re.compile(r"line_(?P<index>\d{1,9})(?:_(?P<tag>fwd|bwd))?\.h5")
+#: ``line_00042_fwd.h5``; the direction tag is optional here, and the plain-array files
+#: (``.npz``, ``.npy``) are named the same way.
+_LINE_NAME = re.compile(r"line_(?P<index>\d{1,9})(?:_(?P<tag>fwd|bwd))?\.(?:h5|npz|npy)")
 _TAG_DIRECTION = {tag: direction for direction, tag in _DIRECTION_TAG.items()}
 
 
@@ -233,7 +234,7 @@ def line_key_from_name(name: str) -> tuple[int | None, str | None]:
     """The line index and direction a file name reveals, (None, None) if it reveals none.
 
     ``line_00042_fwd.h5`` → ``(42, "forward")``; ``line_00042.h5`` → ``(42, None)``;
-    ``scan.h5`` → ``(None, None)``.
+    ``line_00042_bwd.npz`` → ``(42, "backward")``; ``scan.h5`` → ``(None, None)``.
     """
     match = _LINE_NAME.fullmatch(name)
     if match is None:

@@ -80,6 +80,7 @@ class ProcessSummary:
 
 
 def summarise(outcomes: list[LineOutcome]) -> ProcessSummary:
+    """Add up outcomes (a growing file gives one per line, counted as a file each)."""
     kinds = [o.kind for o in outcomes]
     return ProcessSummary(
         files=len(outcomes),
@@ -123,7 +124,7 @@ def scan_tasks(config: Config, folder: Path) -> list[tuple[Path, list[Path]]]:
         If ``folder`` cannot be listed.
     """
     folder = Path(folder).absolute()
-    listing = list_tree(folder, LineNames(folder, config.watch.pattern))
+    listing = list_tree(folder, LineNames(folder, readers=config.reader_choice))
     if listing.error is not None and not listing.files:
         raise FileNotFoundError(f"{folder}: {listing.error}")
     tasks: dict[Path, list[Path]] = {}

@@ -20,12 +20,20 @@ profile cannot be used runs with the base config and says so in a warning alert.
 
 A scan context is registered only once it is complete: if opening a scan fails half-way
 the store is closed again (releasing its writer's lock) and the next line starts afresh.
+
+Each file is read by the reader its scan folder is given (``readers``,
+:mod:`strayline.lines.readers`). A file that grows a line at a time (a growing scan file)
+gives the lines its writer completed since it was last read: the reader is told which
+lines the scan's store has (:meth:`LinePipeline._handed_over`, from the ledger, even after a
+restart) and skips their rows; its lines go through the stages in groups like files. Such a
+file is never quarantined: when it breaks its layout its scan is held with an alert, cleared
+once it reads cleanly again.
 """
 
 from __future__ import annotations
 
 import time
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from functools import partial
@@ -46,7 +54,16 @@ from strayline.config import Config, config_digest, select_profile
 from strayline.errors import ConfigError, LineFileError, StoreError
 from strayline.field import LineField, field_from_fit
 from strayline.fit import LineFit, failed_fits, fit_line
-from strayline.lines import LineLimits, ScanLine, bad_file_event, quarantine_file, read_line_file
+from strayline.lines import (
+    HELD_SCAN_RULE,
+    LineLimits,
+    LineReader,
+    ScanLine,
+    bad_file_event,
+    held_scan_cleared,
+    held_scan_event,
+    quarantine_file,
+)
 from strayline.pipeline._background import BackgroundWorker
 from strayline.pipeline._live import LiveRefresh
 from strayline.pipeline._reseed import seed_tracker
@@ -63,7 +80,13 @@ from strayline.pipeline._setup import (
 )
 from strayline.products import make_products, products_dir
 from strayline.rules import DecisionLog, MetricsTracker, RuleDecision, RuleEngine
-from strayline.store import ScanStore
+from strayline.store import (
+    LedgerEntry,
+    ScanStore,
+    open_store_reader,
+    store_metadata_present,
+    store_path,
+)
 
 __all__ = ["LineOutcome", "LinePipeline", "PipelineStatistics"]
 
@@ -77,7 +100,15 @@ def _no_live(scan: ScanContext, n_lines: int) -> None:
 _PRODUCTS_WAIT_S = 30.0
 
 
-OutcomeKind = Literal["written", "duplicate", "quarantined", "vanished", "unreadable"]
+OutcomeKind = Literal[
+    "written", "duplicate", "quarantined", "vanished", "unreadable", "held", "no_new_lines"
+]
+
+#: Lines of a growing file taken through the stages at once (its catch-up is read, fitted
+#: and committed in such groups, the file closed in between).
+GROWING_BATCH = 32
+
+Key = tuple[int, str]
 
 
 @dataclass(frozen=True)
@@ -87,10 +118,14 @@ class LineOutcome:
     Attributes
     ----------
     path : Path
-    kind : {"written", "duplicate", "quarantined", "vanished", "unreadable"}
+    kind : {"written", "duplicate", "quarantined", "vanished", "unreadable", "held", \
+"no_new_lines"}
         ``unreadable``: the file could not be read (an OSError other than its absence,
         ``problem`` says which); it is left where it is, to be tried again
         (:meth:`LinePipeline.process_many` only; :meth:`LinePipeline.process` raises).
+        ``held``: a growing file broke its layout; it stays where it is and its scan is
+        held with an alert. ``no_new_lines``: a growing file had no completed line the
+        store lacks.
     scan_id, direction : str or None
     line_index : int or None
     read_s, fit_s, write_s, rules_s : float
@@ -220,6 +255,7 @@ class LinePipeline:
         )
         self._output_root = config.paths.output_root
         self._root = Path(root if root is not None else config.paths.watch_root).resolve()
+        self._readers = config.reader_choice
         self._output_root.mkdir(parents=True, exist_ok=True)  # OSError: the output is unusable
         self._state_path = (
             rule_state if rule_state is not None else config.paths.state_dir / "rules_state.json"
@@ -270,7 +306,8 @@ class LinePipeline:
             A fault of strayline's (the caller sets the file aside, :meth:`set_aside`).
         """
         path = Path(path)
-        return self._run([(path, partial(self._read, path))], strict=True)[0]
+        outcomes = self._run_files([path], strict=True)
+        return outcomes[-1] if outcomes else LineOutcome(path, "no_new_lines")
 
     def process_many(self, paths: Sequence[Path]) -> list[LineOutcome]:
         """Run files that are ready together through every stage, in order: the
@@ -283,7 +320,8 @@ class LinePipeline:
         Returns
         -------
         list of LineOutcome
-            One per file, in order.
+            One per file, in order; a growing file gets one per line it gave (or one
+            ``held`` or ``no_new_lines`` outcome, after those of its lines).
 
         Raises
         ------
@@ -292,8 +330,7 @@ class LinePipeline:
             committed (given again, their files come back as duplicates); the files of the
             failed group and those after it are left in place.
         """
-        items = [(Path(p), partial(self._read, Path(p))) for p in paths]
-        return self._run(items, strict=False)
+        return self._run_files([Path(p) for p in paths], strict=False)
 
     def process_lines(self, lines: Sequence[tuple[Path, ScanLine]]) -> list[LineOutcome]:
         """Run lines read elsewhere (a store's raw spectra, for a refit) through every
@@ -309,9 +346,98 @@ class LinePipeline:
         items = [(Path(path), partial(_given, line)) for path, line in lines]
         return self._run(items, strict=False)
 
-    def _read(self, path: Path) -> ScanLine:
+    def reader_for(self, path: Path) -> LineReader:
+        """The reader of a file: the one its scan folder is given (``readers``)."""
+        return self._readers.for_folder(Path(path).parent.name)
+
+    def _run_files(self, paths: Sequence[Path], *, strict: bool) -> list[LineOutcome]:
+        """Files through every stage: runs of one-line files as one :meth:`_run`, each
+        growing file in groups of its lines (:meth:`_run_growing`)."""
+        outcomes: list[LineOutcome] = []
+        items: list[tuple[Path, Callable[[], ScanLine]]] = []
+        for path in paths:
+            reader = self.reader_for(path)
+            if not reader.growing:
+                items.append((path, partial(self._read, reader, path)))
+                continue
+            if items:
+                outcomes += self._run(items, strict=strict)
+                items = []
+            outcomes += self._run_growing(reader, path, strict=strict)
+        if items:
+            outcomes += self._run(items, strict=strict)
+        return outcomes
+
+    def _read(self, reader: LineReader, path: Path) -> ScanLine:
+        """The one line of a one-line file."""
         self._check_inside(path)
-        return read_line_file(path, limits=self._limits)
+        lines = list(reader.read(path, limits=self._limits, handed_over=self._handed_over))
+        if len(lines) != 1:
+            raise LineFileError(
+                path,
+                "file",
+                f"one line (the reader {reader.name} reads one per file)",
+                f"{len(lines)} lines",
+            )
+        return lines[0]
+
+    def _run_growing(self, reader: LineReader, path: Path, *, strict: bool) -> list[LineOutcome]:
+        """A growing file's new lines through every stage, :data:`GROWING_BATCH` at a time
+        (each group committed before the next is read); a broken file holds its scan."""
+        outcomes: list[LineOutcome] = []
+        try:
+            self._check_inside(path)
+            lines = reader.read(path, limits=self._limits, handed_over=self._handed_over)
+            while True:
+                group, stop = _take(lines, GROWING_BATCH)
+                if group:
+                    items = [(path, partial(_given, line)) for line in group]
+                    outcomes += self._run(items, strict=strict)
+                if stop is not None:
+                    raise stop
+                if len(group) < GROWING_BATCH:
+                    break
+        except FileNotFoundError:
+            self._log.warning("line_vanished", file=str(path))
+            return [*outcomes, LineOutcome(path, "vanished")]
+        except LineFileError as error:
+            return [*outcomes, self._hold(path, error)]
+        except StoreError:
+            raise
+        except OSError as error:  # caught mid-write, say: read again later
+            if strict:
+                raise
+            return [*outcomes, LineOutcome(path, "unreadable", problem=str(error))]
+        except Exception as error:
+            if strict:
+                raise
+            return [*outcomes, self.set_aside(path, error)]
+        self._release(path)
+        if not outcomes:
+            self._log.debug("growing_file_unchanged", file=str(path))
+            outcomes.append(LineOutcome(path, "no_new_lines"))
+        return outcomes
+
+    def _handed_over(self, scan_id: str) -> frozenset[Key]:
+        """The lines of a scan its store has, committed and evaluated (a growing file's
+        reader skips their rows): from the open store, else read from the store's ledger
+        on disk (after a restart), else none. Lines of the store's last group commit that
+        the rule engine may not have judged (a crash between the two) are left out, so
+        they are read again and judged (:meth:`_unevaluated`)."""
+        scan = self._scans.get(scan_id)
+        if scan is not None:
+            committed = scan.store.committed()
+            group, commits = scan.store.last_group()
+        else:
+            where = store_path(self._output_root, scan_id)
+            if not store_metadata_present(where):
+                return frozenset()
+            try:
+                ledger = open_store_reader(where).ledger
+            except StoreError:
+                return frozenset()  # read every line: the store decides when it opens
+            committed, group, commits = ledger.committed, ledger.last_group, ledger.commit_count
+        return frozenset(committed) - self._unevaluated_keys(scan_id, committed, group, commits)
 
     def _run(
         self, items: Sequence[tuple[Path, Callable[[], ScanLine]]], *, strict: bool
@@ -558,17 +684,28 @@ class LinePipeline:
         and the rule state's save. Such a line is evaluated when its file comes again (the
         catch-up at start lists it). The rule state keeps the last few scans only; of a
         scan it no longer knows, only lines of the store's first group can be such."""
-        group, commits = scan.store.last_group()
-        key = (line.line_index, line.direction)
-        if key not in group or line.sha256 is None:
+        if line.sha256 is None:
             return False
-        index, direction, sha256 = self._engine.last_evaluated(line.scan_id)
+        group, commits = scan.store.last_group()
+        keys = self._unevaluated_keys(line.scan_id, scan.store.committed(), group, commits)
+        return (line.line_index, line.direction) in keys
+
+    def _unevaluated_keys(
+        self,
+        scan_id: str,
+        committed: Mapping[Key, LedgerEntry],
+        group: tuple[Key, ...],
+        commits: int,
+    ) -> frozenset[Key]:
+        """The lines of a store's last group commit the rule engine may not have judged
+        (see :meth:`_unevaluated`)."""
+        index, direction, sha256 = self._engine.last_evaluated(scan_id)
         if index is None or direction is None:  # a scan the rule state does not know
-            return commits == len(group)
+            return frozenset(group) if commits == len(group) else frozenset()
         last = (index, direction)
-        if last not in group or scan.store.committed()[last].sha256 != sha256:
-            return True
-        return group.index(key) > group.index(last)
+        if last not in group or committed[last].sha256 != sha256:
+            return frozenset(group)
+        return frozenset(group[group.index(last) + 1 :])
 
     def give_up(self, path: Path, reason: str) -> LineOutcome:
         """Quarantine a file that never became readable (the watcher gave up on it)."""
@@ -719,10 +856,33 @@ class LinePipeline:
         c.last_line_index = line.line_index
         c.last_line_s = time.time()
 
+    def _hold(self, path: Path, error: LineFileError) -> LineOutcome:
+        """A growing file that breaks its layout: left in place, its scan held with an
+        alert (raised once per problem; read again whenever the file changes)."""
+        event = held_scan_event(path, error, self._now())
+        known = any(
+            e.rule == HELD_SCAN_RULE and e.scan_id == event.scan_id and e.message == event.message
+            for e in self._active.active()
+        )
+        self._log.warning("scan_held", file=str(path), problem=str(error), alerted=not known)
+        if known:
+            return LineOutcome(path, "held", scan_id=event.scan_id)
+        self.deliver(event)
+        return LineOutcome(path, "held", scan_id=event.scan_id, events=(event,))
+
+    def _release(self, path: Path) -> None:
+        """Clear the hold of a growing file that read cleanly."""
+        scan_id = path.parent.name
+        if any(e.rule == HELD_SCAN_RULE and e.scan_id == scan_id for e in self._active.active()):
+            self._log.info("scan_released", file=str(path))
+            self.deliver(held_scan_cleared(path, self._now()))
+
     def _quarantine(self, path: Path, error: LineFileError) -> LineOutcome:
         if not self._move_bad_files:  # a refit: the line is no file of ours to move
             self._log.error("line_refused", file=str(path), problem=str(error))
             return LineOutcome(path, "unreadable", problem=str(error))
+        if self.reader_for(path).growing:  # its writer may still append: never move it
+            return self._hold(path, error)
         self._counters.quarantined += 1
         try:
             record = quarantine_file(
@@ -921,3 +1081,17 @@ class LinePipeline:
 def _given(line: ScanLine) -> ScanLine:
     """The reader of a line that was read already."""
     return line
+
+
+def _take(lines: Iterator[ScanLine], n: int) -> tuple[list[ScanLine], Exception | None]:
+    """Up to ``n`` lines, and the exception that ended them early (the lines read before
+    it are kept)."""
+    taken: list[ScanLine] = []
+    try:
+        for line in lines:
+            taken.append(line)
+            if len(taken) == n:
+                break
+    except Exception as error:
+        return taken, error
+    return taken, None

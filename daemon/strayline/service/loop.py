@@ -51,7 +51,12 @@ from strayline.errors import ConfigError, StoreError
 from strayline.fit import prepare_kernels
 from strayline.heartbeat import HEARTBEAT_INTERVAL_S, Heartbeat, write_heartbeat
 from strayline.logs import configure_logging, reopen_log_files
-from strayline.pipeline import LinePipeline, PipelineStatistics, fit_model_from_config
+from strayline.pipeline import (
+    LineOutcome,
+    LinePipeline,
+    PipelineStatistics,
+    fit_model_from_config,
+)
 from strayline.service._events import (
     ServiceAlert,
     disk_low_cleared,
@@ -97,6 +102,13 @@ def watch_options_from_config(config: Config) -> WatchOptions:
         give_up_s=w.give_up_s,
         reconcile_interval_s=w.reconcile_interval_s,
         pattern=w.pattern,
+    )
+
+
+def _new_watcher(config: Config) -> LineWatcher:
+    """The watcher of ``config``'s watch root, each scan folder's files as its reader says."""
+    return LineWatcher(
+        config.paths.watch_root, watch_options_from_config(config), readers=config.reader_choice
     )
 
 
@@ -172,7 +184,7 @@ class Service:
             self._begin_outage(f"building the pipeline failed: {exc}")
         else:
             self._adopt_raised(self.pipeline)
-        self.watcher = LineWatcher(config.paths.watch_root, watch_options_from_config(config))
+        self.watcher = _new_watcher(config)
 
     # -- signals ------------------------------------------------------------------------
 
@@ -334,14 +346,20 @@ class Service:
             return False
         except Exception as exc:  # our own bug outside any one file: set them aside, carry on
             outcomes = [self.pipeline.set_aside(ready.path, exc) for ready in batch]
-        for ready, outcome in zip(batch, outcomes, strict=True):
-            if outcome.kind == "unreadable":  # try again later
-                self._note_unreadable(ready, outcome.problem)
-                continue
-            self._unreadable.read(ready.path)
-            if outcome.scan_id is not None:
-                self._last_scan_id = outcome.scan_id
-            self._note_events(outcome.events)
+        by_path: dict[Path, list[LineOutcome]] = {}
+        for outcome in outcomes:  # a growing file gives one per line it had
+            by_path.setdefault(outcome.path, []).append(outcome)
+        for ready in batch:
+            mine = by_path.pop(ready.path, [])
+            unreadable = [o for o in mine if o.kind == "unreadable"]
+            if unreadable:  # try again later
+                self._note_unreadable(ready, unreadable[0].problem)
+            else:
+                self._unreadable.read(ready.path)
+            for outcome in mine:
+                if outcome.scan_id is not None:
+                    self._last_scan_id = outcome.scan_id
+                self._note_events(outcome.events)
         return True
 
     def _note_events(self, events: tuple[AlertEvent, ...]) -> None:
@@ -591,7 +609,7 @@ class Service:
     def _restart_watcher(self, config: Config) -> None:
         """A new watcher (new options or a catch-up), started at once."""
         self.watcher.stop()
-        self.watcher = LineWatcher(config.paths.watch_root, watch_options_from_config(config))
+        self.watcher = _new_watcher(config)
         self.watcher.start()
 
     # -- alerts of the service itself ---------------------------------------------------
@@ -712,7 +730,11 @@ class Service:
             for event in self._alerts.active():
                 moved.note(event)
             self._alerts = moved
-        if (old.paths.watch_root, old.watch) != (new.paths.watch_root, new.watch):
+        if (old.paths.watch_root, old.watch, old.readers) != (
+            new.paths.watch_root,
+            new.watch,
+            new.readers,
+        ):
             self._restart_watcher(new)
         self._close_pipeline()
         self._sink.close()

@@ -13,6 +13,11 @@ the same path (the file was rewritten) makes it a candidate again.
 A file that has gone quiet but does not open is given up at once, without waiting
 ``give_up_s``, as soon as a later line of the same scan folder is ready: the instrument
 has moved on, so the file will not be finished (a truncated or damaged copy).
+
+A *growing* file (one file per scan, a row appended per line, whose reader takes only the
+rows its writer marked complete) need not go quiet: it is probed ``settle_s`` after it
+changed even while it goes on changing, reported ready whenever the probe passes, and never
+given up as "still changing" (only after its probe failed for ``give_up_s``).
 """
 
 from __future__ import annotations
@@ -67,6 +72,7 @@ class _Pending:
     last_seen_s: float
     last_error: str | None = None
     next_probe_s: float = -math.inf
+    growing: bool = False
 
 
 class Candidates:
@@ -98,14 +104,17 @@ class Candidates:
         """The candidates not yet reported."""
         return list(self._pending)
 
-    def observe(self, path: Path, size_bytes: int, mtime_ns: int, now_s: float) -> None:
-        """Record that ``path`` was seen with this size and mtime at ``now_s``."""
+    def observe(
+        self, path: Path, size_bytes: int, mtime_ns: int, now_s: float, *, growing: bool = False
+    ) -> None:
+        """Record that ``path`` was seen with this size and mtime at ``now_s`` (``growing``:
+        a file that grows a row per line)."""
         signature = (size_bytes, mtime_ns)
         entry = self._pending.get(path)
         if entry is None:
             if self._reported.get(path) == signature:
                 return
-            self._pending[path] = _Pending(signature, now_s, now_s, now_s)
+            self._pending[path] = _Pending(signature, now_s, now_s, now_s, growing=growing)
             return
         if entry.signature != signature:
             entry.signature = signature
@@ -129,13 +138,22 @@ class Candidates:
         for folder in [f for f in self._latest_ready if f not in folders]:
             del self._latest_ready[folder]
 
+    def is_growing(self, path: Path) -> bool:
+        """Whether a pending candidate is a growing file."""
+        entry = self._pending.get(path)
+        return entry is not None and entry.growing
+
+    def _settled(self, entry: _Pending) -> bool:
+        """Quiet for the settle time (a growing file: changed at least that long ago)."""
+        since_s = entry.first_seen_s if entry.growing else entry.stable_since_s
+        return entry.last_seen_s - since_s >= self._settle_s
+
     def due_for_probe(self, now_s: float) -> list[tuple[Path, Signature]]:
         """Candidates that have been quiet for the settle time and may be probed now."""
         return [
             (path, entry.signature)
             for path, entry in self._pending.items()
-            if entry.last_seen_s - entry.stable_since_s >= self._settle_s
-            and now_s >= entry.next_probe_s
+            if self._settled(entry) and now_s >= entry.next_probe_s
         ]
 
     def record_probe(
@@ -173,6 +191,8 @@ class Candidates:
                 )
             elif now_s - entry.first_seen_s < self._give_up_s:
                 continue
+            elif entry.growing and entry.last_error is None:
+                continue  # still growing: it is reported whenever its probe passes
             elif entry.last_error is not None:
                 reason = f"does not open cleanly after {self._give_up_s:g} s: {entry.last_error}"
             else:
@@ -186,7 +206,7 @@ class Candidates:
     def _overtaken_by(self, path: Path, entry: _Pending) -> str | None:
         """The name of a later ready line of the same folder, for a quiet file that failed
         its probe; None otherwise."""
-        if entry.last_error is None or entry.last_seen_s - entry.stable_since_s < self._settle_s:
+        if entry.growing or entry.last_error is None or not self._settled(entry):
             return None
         latest = self._latest_ready.get(path.parent)
         index, _ = line_key_from_name(path.name)
@@ -199,8 +219,9 @@ class Candidates:
         times: list[float] = []
         for entry in self._pending.values():
             times.append(entry.first_seen_s + self._give_up_s)
-            if entry.last_seen_s - entry.stable_since_s < self._settle_s:
-                times.append(entry.stable_since_s + self._settle_s)
+            if not self._settled(entry):
+                since_s = entry.first_seen_s if entry.growing else entry.stable_since_s
+                times.append(since_s + self._settle_s)
             else:
                 times.append(entry.next_probe_s)
         return min(times) if times else None

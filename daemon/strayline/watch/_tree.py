@@ -1,7 +1,8 @@
 """Which paths under the watch root are scan-line files, and a listing of them.
 
 Private helpers of :mod:`strayline.watch`: the name rules (pure string checks, cheap
-enough for watchdog's event thread) and the one function that walks the tree.
+enough for watchdog's event thread: the reader of each scan folder and the file names it
+serves) and the one function that walks the tree.
 """
 
 from __future__ import annotations
@@ -10,19 +11,12 @@ import os
 from dataclasses import dataclass
 from pathlib import Path, PurePosixPath
 
-from strayline.lines import is_temporary_name
+from strayline.lines import LINE_FILE_READER, LineReader, ReaderChoice, is_temporary_name
 
 __all__ = ["IGNORED_FOLDERS", "LineNames", "TreeListing", "list_tree"]
 
 IGNORED_FOLDERS = frozenset({"_quarantine", "_truth"})
 """Folder names whose contents are never lines to process (anywhere below the root)."""
-
-
-def _strip_recursive_prefix(pattern: str) -> str:
-    """Drop leading ``**/`` segments: a line may sit at any depth anyway."""
-    while pattern.startswith("**/"):
-        pattern = pattern[3:]
-    return pattern
 
 
 class LineNames:
@@ -36,11 +30,19 @@ class LineNames:
         Glob matched against the trailing components of the path relative to the root,
         e.g. ``"*.h5"`` (the file name) or ``"scan_*/line_*.h5"`` (folder and name). A
         leading ``**/`` is accepted and ignored, so watchdog-style patterns work too.
+        The pattern of the contract-v1 reader when ``readers`` is not given.
+    readers : ReaderChoice, optional
+        The reader of each scan folder, whose patterns then decide (default: the
+        contract-v1 reader everywhere, with ``pattern``).
     """
 
-    def __init__(self, root: Path, pattern: str) -> None:
+    def __init__(
+        self, root: Path, pattern: str = "*.h5", *, readers: ReaderChoice | None = None
+    ) -> None:
         self._root = root
-        self._pattern = _strip_recursive_prefix(pattern)
+        self.readers = (
+            readers if readers is not None else ReaderChoice.single(LINE_FILE_READER, [pattern])
+        )
 
     def _relative_parts(self, path: Path) -> tuple[str, ...] | None:
         try:
@@ -51,12 +53,28 @@ class LineNames:
             return None
         return parts
 
-    def is_line(self, path: Path) -> bool:
-        """True for a file path that may hold a completed scan line."""
+    def reader_of(self, path: Path) -> LineReader | None:
+        """The reader of a file path that may hold scan lines, else None."""
         parts = self._relative_parts(path)
         if not parts or is_temporary_name(parts[-1]):
-            return False
-        return PurePosixPath(*parts).match(self._pattern)
+            return None
+        return self.readers.serving(PurePosixPath(*parts))
+
+    def is_line(self, path: Path) -> bool:
+        """True for a file path that may hold completed scan lines."""
+        return self.reader_of(path) is not None
+
+    def is_growing(self, path: Path) -> bool:
+        """True for a file that grows line by line (its reader says so)."""
+        reader = self.reader_of(path)
+        return reader is not None and reader.growing
+
+    def check(self, path: Path) -> str | None:
+        """The probe of a file: its reader's cheap check (None: ready to read)."""
+        reader = self.reader_of(path)
+        if reader is None:
+            return f"{path.name}: no reader serves this name in its folder"
+        return reader.check(path)
 
     def is_watched_folder(self, path: Path) -> bool:
         """True for a folder at or below the root that is not an ignored folder."""

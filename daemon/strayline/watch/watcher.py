@@ -34,7 +34,6 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Literal, Protocol
 
-import h5py
 from watchdog.events import (
     DirCreatedEvent,
     DirMovedEvent,
@@ -48,6 +47,7 @@ from watchdog.events import (
 )
 from watchdog.observers import Observer
 
+from strayline.lines import ReaderChoice, check_line_file
 from strayline.watch._candidates import Candidates, ReadyFile, Signature
 from strayline.watch._tree import LineNames, list_tree
 
@@ -190,23 +190,10 @@ class _ObserverLike(Protocol):
 
 
 def default_probe(path: Path) -> str | None:
-    """Check cheaply that a line file opens as HDF5 and carries the root ``format`` attribute.
-
-    The file is opened read-only without HDF5 file locking (so a writer that reopens the
-    file is never locked out by the check) and closed before returning.
-
-    Returns
-    -------
-    str or None
-        None when the file opens and has the attribute; otherwise what was wrong.
-    """
-    try:
-        with h5py.File(path, "r", locking=False) as handle:
-            if "format" not in handle.attrs:
-                return f"{path.name}: root attribute 'format' is missing"
-    except OSError as exc:
-        return f"{path.name}: does not open as HDF5 ({exc})"
-    return None
+    """The contract-v1 reader's check: the file opens as HDF5 (read-only, without file
+    locking, closed at once) and carries the root ``format`` attribute
+    (:func:`strayline.lines.check_line_file`)."""
+    return check_line_file(path)
 
 
 def _signature_now(path: Path) -> Signature | None:
@@ -241,10 +228,13 @@ class LineWatcher:
     clock : callable returning float, optional
         Monotonic time in seconds; drives settle, give-up, polling and reconciliation.
     probe : callable, optional
-        ``probe(path) -> str | None``; see :func:`default_probe`.
+        ``probe(path) -> str | None`` (default: the check of the file's reader).
     observer_factory : callable returning an observer, optional
         Builds the event observer in native mode (default: watchdog's platform
         observer). Tests pass a stand-in; ignored in polling mode.
+    readers : ReaderChoice, optional
+        The reader of each scan folder: which files are line files, which grow, and how
+        each is probed (default: the contract-v1 reader with ``options.pattern``).
 
     Notes
     -----
@@ -259,14 +249,15 @@ class LineWatcher:
         options: WatchOptions,
         *,
         clock: Callable[[], float] = time.monotonic,
-        probe: Probe = default_probe,
+        probe: Probe | None = None,
         observer_factory: Callable[[], _ObserverLike] | None = None,
+        readers: ReaderChoice | None = None,
     ) -> None:
         self._root = Path(watch_root).absolute()
         self._options = options
         self._clock = clock
-        self._probe = probe
-        self._names = LineNames(self._root, options.pattern)
+        self._names = LineNames(self._root, options.pattern, readers=readers)
+        self._probe = probe if probe is not None else self._names.check
         self._uses_events = options.mode == "native"
         self._observer_factory: Callable[[], _ObserverLike] = observer_factory or Observer
         self._recorder = _EventRecorder(self._record_event)
@@ -405,10 +396,12 @@ class LineWatcher:
                 for path in gone:
                     self._candidates.vanish(path)
                 for path, (size_bytes, mtime_ns) in seen.items():
-                    self._candidates.observe(path, size_bytes, mtime_ns, now_s)
+                    growing = self._names.is_growing(path)
+                    self._candidates.observe(path, size_bytes, mtime_ns, now_s, growing=growing)
                 due = self._candidates.due_for_probe(now_s)
 
-            # Re-stat after each probe: a writer may have changed the file meanwhile.
+            # Re-stat after each probe: a writer may have changed the file meanwhile (a
+            # growing file changes all the time: its reader takes only committed rows).
             results = [
                 (path, signature, self._run_probe(path), _signature_now(path))
                 for path, signature in due
@@ -416,7 +409,9 @@ class LineWatcher:
 
             with self._lock:
                 for path, signature, error, after in results:
-                    if after != signature:
+                    if after != signature and not (
+                        after is not None and self._candidates.is_growing(path)
+                    ):
                         if after is None:
                             self._candidates.vanish(path)
                         else:
