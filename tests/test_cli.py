@@ -330,9 +330,10 @@ def test_alerts_for_one_scan_are_readable_lines(
     assert main(["alerts", "--config", str(config), "--scan", "scan-a"]) == 0
     out = capsys.readouterr().out.splitlines()
     assert out == [format_alert(events[0]), format_alert(events[2])]
-    assert out[0] == (
-        "2026-03-01T22:03:00.000+00:00 WARNING  RAISED  scan-a line 3 (forward) px 3–8 "
-        "[fluorescence_lost] fluorescence_lost seen at line 3 — check the optics"
+    assert main(["alerts", "--config", str(config), "--scan", "scan-a", "--utc"]) == 0
+    assert capsys.readouterr().out.splitlines()[0] == (
+        "2026-03-01T22:03:00+00:00 WARN scan-a line 3 px 3–8 fluorescence_lost: "
+        "fluorescence_lost seen at line 3 (z −12.0)"
     )
 
 

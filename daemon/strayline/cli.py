@@ -184,7 +184,12 @@ def build_parser() -> argparse.ArgumentParser:
         choices=("info", "warning", "critical"),
         help="only alerts of this severity and more urgent ones",
     )
-    alerts.add_argument("--json", action="store_true", help="print the JSON lines as stored")
+    alerts.add_argument(
+        "--utc", action="store_true", help="times in UTC (default: this machine's time zone)"
+    )
+    alerts.add_argument(
+        "--json", action="store_true", help="print the JSON lines as stored (every detail)"
+    )
     alerts.add_argument("-n", "--lines", type=int, default=20, help="how many (default 20)")
 
     why = sub.add_parser(
@@ -421,6 +426,8 @@ def _cmd_status(args: argparse.Namespace) -> int:
 
 
 def _cmd_alerts(args: argparse.Namespace) -> int:
+    from datetime import UTC
+
     from strayline.alerts import follow_alerts
 
     config = _load(args)
@@ -433,6 +440,7 @@ def _cmd_alerts(args: argparse.Namespace) -> int:
         as_json=args.json,
         follow=args.follow,
         last=args.lines,
+        tz=UTC if args.utc else None,
     )
 
 
