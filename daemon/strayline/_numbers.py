@@ -61,12 +61,15 @@ def finite_or_none(value: float | None) -> float | None:
 
 
 def plain_number(value: float, significant: int = 3) -> str:
-    """``value`` to about ``significant`` figures without an exponent: ``201``, ``0.0421``,
-    ``1000`` (999.5), ``12300``; a typeset minus."""
+    """``value`` to about ``significant`` figures without an exponent or trailing zeros:
+    ``201``, ``0.0421``, ``6`` (6.0), ``1000`` (999.5), ``12300``; a typeset minus."""
     if value == 0 or not math.isfinite(value):
         return f"{value:.0f}"
     decimals = max(significant - 1 - math.floor(math.log10(abs(value))), 0)
-    return f"{value:.{decimals}f}".replace("-", MINUS)
+    text = f"{value:.{decimals}f}"
+    if decimals:
+        text = text.rstrip("0").rstrip(".")
+    return text.replace("-", MINUS)
 
 
 def signed_text(value: float, digits: int = 1) -> str:
