@@ -29,6 +29,7 @@ COMMANDS = (
     "refit",
     "status",
     "alerts",
+    "summary",
     "why",
     "check-config",
     "demo",
@@ -114,8 +115,8 @@ def test_an_unknown_command_is_a_usage_error(capsys: pytest.CaptureFixture[str])
 
 
 def test_the_parser_knows_exactly_the_commands() -> None:
-    """The parser's commands are run, process, refit, status, alerts, why, check-config,
-    demo and products."""
+    """The parser's commands are run, process, refit, status, alerts, summary, why,
+    check-config, demo and products."""
     parser = build_parser()
     sub = next(a for a in parser._actions if a.dest == "command")
     assert tuple(sub.choices) == COMMANDS  # type: ignore[arg-type]
