@@ -26,6 +26,7 @@ from strayline.summary import (
     ScanImage,
     image_caption,
     image_href,
+    images_shown,
     read_night,
     render_html,
     render_markdown,
@@ -148,8 +149,9 @@ def test_every_image_and_link_of_the_page_is_a_file_beside_it(
     assert links.h2 == [RUNNING, DONE]  # most recent line first
     assert "no quick-look image yet" in text
     assert text.count("no quick-look image yet") == 1
-    originals = sorted(p.name for p in (night / "output" / f"{DONE}.products").glob("*.png"))
-    assert sorted(Path(unquote(src)).name for src in links.images) == originals
+    originals = [p.name for p in (night / "output" / f"{DONE}.products").glob("*.png")]
+    assert "quicklook_forward.png" in originals
+    assert [Path(unquote(src)).name for src in links.images] == images_shown(originals)
 
 
 def test_the_markdown_has_the_same_scans_and_images_as_the_page(
@@ -282,12 +284,28 @@ def test_an_image_that_vanished_is_left_out_and_said(tmp_path: Path) -> None:
 
 
 def test_page_model_helpers() -> None:
-    """Captions from product names; hrefs are relative, safe and percent-encoded; a
+    """Captions from product names; which images show (a trace's live picture until its
+    quick-look exists); hrefs are relative, safe and percent-encoded; a
     scan's rate is (lines − 1) per hour of its duration, none for one line; an empty
     window says so."""
     assert image_caption("quicklook_backward.png") == "quick-look, backward trace"
     assert image_caption("vector_forward.png") == "vector field, forward trace"
     assert image_caption("odd_name.png") == "odd name"
+    assert image_caption("live_forward.png") == "live picture, forward trace"
+    # a running scan shows its live picture; once its quick-look is made, that instead
+    folder = ["vector_forward.png", "live_backward.png", "live_forward.png", "x.png"]
+    assert images_shown(folder) == [
+        "live_backward.png",
+        "live_forward.png",
+        "vector_forward.png",
+        "x.png",
+    ]
+    assert images_shown([*folder, "quicklook_forward.png"]) == [
+        "quicklook_forward.png",
+        "live_backward.png",
+        "vector_forward.png",
+        "x.png",
+    ]
     href = image_href("summary-x", 3, "a b/../c", "q l.png")
     assert href == "summary-x_files/03-a_b_.._c/q_l.png"
     assert not Path(unquote(href)).is_absolute()

@@ -11,6 +11,7 @@ from strayline.summary.page import (
     ScanSummary,
     image_caption,
     image_href,
+    images_shown,
     scan_summary,
     summary_stem,
 )
@@ -22,6 +23,7 @@ __all__ = [
     "SummaryFiles",
     "image_caption",
     "image_href",
+    "images_shown",
     "read_night",
     "render_html",
     "render_markdown",

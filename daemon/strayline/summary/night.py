@@ -34,14 +34,12 @@ from strayline.summary.page import (
     ScanSummary,
     image_caption,
     image_href,
+    images_shown,
     scan_summary,
     summary_stem,
 )
 
 __all__ = ["SummaryFiles", "read_night", "write_summary"]
-
-#: Images first by kind, then by name.
-_IMAGE_ORDER = ("quicklook", "live", "vector")
 
 
 @dataclass(frozen=True)
@@ -53,22 +51,17 @@ class SummaryFiles:
     images: tuple[Path, ...]
 
 
-def _image_key(path: Path) -> tuple[int, str]:
-    kind = path.stem.partition("_")[0]
-    return (_IMAGE_ORDER.index(kind) if kind in _IMAGE_ORDER else len(_IMAGE_ORDER), path.name)
-
-
 def _images(folders: Sequence[Path], stem: str, index: int, scan_id: str) -> list[ScanImage]:
-    """The PNGs of the first products folder that exists (none: no image yet)."""
+    """The PNGs of the first products folder that exists (none: no image yet), those
+    :func:`images_shown` keeps."""
     for folder in folders:
         if folder.is_dir():
-            pngs = sorted(
-                (p for p in folder.glob("*.png") if not p.name.startswith(".") and p.is_file()),
-                key=_image_key,
-            )
+            names = [
+                p.name for p in folder.glob("*.png") if not p.name.startswith(".") and p.is_file()
+            ]
             return [
-                ScanImage(image_caption(p.name), p, image_href(stem, index, scan_id, p.name))
-                for p in pngs
+                ScanImage(image_caption(n), folder / n, image_href(stem, index, scan_id, n))
+                for n in images_shown(names)
             ]
     return []
 

@@ -26,12 +26,15 @@ __all__ = [
     "ScanSummary",
     "image_caption",
     "image_href",
+    "images_shown",
     "scan_summary",
     "summary_stem",
 ]
 
 _UNSAFE = re.compile(r"[^A-Za-z0-9._-]+")
-_KINDS = {"quicklook": "quick-look", "vector": "vector field", "live": "live quick-look"}
+_KINDS = {"quicklook": "quick-look", "vector": "vector field", "live": "live picture"}
+#: Images first by kind, then by name.
+_IMAGE_ORDER = ("quicklook", "live", "vector")
 
 
 @dataclass(frozen=True)
@@ -177,6 +180,23 @@ def image_caption(name: str) -> str:
     if kind in _KINDS and direction in DIRECTIONS:
         return f"{_KINDS[kind]}, {direction} trace"
     return stem.replace("_", " ")
+
+
+def images_shown(names: Iterable[str]) -> list[str]:
+    """The images of a products folder to show, in order: quick-looks, live pictures,
+    vector fields, others, each by name; a trace's live picture is left out once its
+    scan-end quick-look exists (the same maps, final)."""
+    names = list(names)
+    final = {Path(n).stem.removeprefix("quicklook_") for n in names if n.startswith("quicklook_")}
+
+    def key(name: str) -> tuple[int, str]:
+        kind = Path(name).stem.partition("_")[0]
+        return (_IMAGE_ORDER.index(kind) if kind in _IMAGE_ORDER else len(_IMAGE_ORDER), name)
+
+    shown = [
+        n for n in names if not (n.startswith("live_") and Path(n).stem[len("live_") :] in final)
+    ]
+    return sorted(shown, key=key)
 
 
 def image_href(stem: str, index: int, scan_id: str, name: str) -> str:
