@@ -29,6 +29,7 @@ COMMANDS = (
     "refit",
     "status",
     "alerts",
+    "summary",
     "why",
     "check-config",
     "demo",
@@ -114,8 +115,8 @@ def test_an_unknown_command_is_a_usage_error(capsys: pytest.CaptureFixture[str])
 
 
 def test_the_parser_knows_exactly_the_commands() -> None:
-    """The parser's commands are run, process, refit, status, alerts, why, check-config,
-    demo and products."""
+    """The parser's commands are run, process, refit, status, alerts, summary, why,
+    check-config, demo and products."""
     parser = build_parser()
     sub = next(a for a in parser._actions if a.dest == "command")
     assert tuple(sub.choices) == COMMANDS  # type: ignore[arg-type]
@@ -331,9 +332,10 @@ def test_alerts_for_one_scan_are_readable_lines(
     assert main(["alerts", "--config", str(config), "--scan", "scan-a"]) == 0
     out = capsys.readouterr().out.splitlines()
     assert out == [format_alert(events[0]), format_alert(events[2])]
-    assert out[0] == (
-        "2026-03-01T22:03:00.000+00:00 WARNING  RAISED  scan-a line 3 (forward) px 3–8 "
-        "[fluorescence_lost] fluorescence_lost seen at line 3 — check the optics"
+    assert main(["alerts", "--config", str(config), "--scan", "scan-a", "--utc"]) == 0
+    assert capsys.readouterr().out.splitlines()[0] == (
+        "2026-03-01T22:03:00+00:00 WARN scan-a line 3 px 3–8 fluorescence_lost: "
+        "fluorescence_lost seen at line 3 (z −12.0)"
     )
 
 

@@ -143,8 +143,7 @@ def test_status_shows_the_scans_latest_alerts(scan_files: Path, tmp_path: Path) 
     (status,) = scan_statuses(config.paths.output_root, config.paths.alert_log)
     events = read_alert_log(config.paths.alert_log, scan_id=SCAN)
     assert status.last_alerts == tuple(format_alert(e) for e in events)[-3:]
-    assert "[bad_file]" in status.last_alerts[-1]
-    assert "line 5 (forward)" in status.last_alerts[-1]
+    assert " status-scan line 5 bad_file: line file quarantined: " in status.last_alerts[-1]
     shown = format_scan_status(status).splitlines()
     assert shown[-1] == "  " + status.last_alerts[-1]
     # as JSON, the same alerts are the alert log's records, not text to parse again

@@ -13,10 +13,14 @@ __all__ = [
     "HZ_PER_MHZ",
     "MAD_TO_SIGMA",
     "MIB",
+    "MINUS",
     "duration_text",
     "finite_or_none",
     "median",
     "median_and_spread",
+    "percent_text",
+    "plain_number",
+    "signed_text",
 ]
 
 #: 1 / Φ⁻¹(3/4): the median absolute deviation of a normal sample times this is its σ
@@ -26,6 +30,8 @@ MAD_TO_SIGMA = 1.482602218505602
 MIB = 1024 * 1024
 #: Hz in one MHz (config keys in MHz are converted at the edge).
 HZ_PER_MHZ = 1e6
+#: The minus sign in text for people (U+2212), as typeset; ASCII '-' stays in data.
+MINUS = "\u2212"
 
 
 def median(a: np.ndarray | list[float]) -> float:
@@ -54,9 +60,39 @@ def finite_or_none(value: float | None) -> float | None:
     return None if value is None or not math.isfinite(value) else float(value)
 
 
+def plain_number(value: float, significant: int = 3) -> str:
+    """``value`` to about ``significant`` figures without an exponent or trailing zeros:
+    ``201``, ``0.0421``, ``6`` (6.0), ``1000`` (999.5), ``12300``; a typeset minus."""
+    if value == 0 or not math.isfinite(value):
+        return f"{value:.0f}"
+    decimals = max(significant - 1 - math.floor(math.log10(abs(value))), 0)
+    text = f"{value:.{decimals}f}"
+    if decimals:
+        text = text.rstrip("0").rstrip(".")
+    return text.replace("-", MINUS)
+
+
+def signed_text(value: float, digits: int = 1) -> str:
+    """``value`` with its sign always shown and a typeset minus: ``+4.25``, ``−0.3``
+    (``digits`` after the point; a value that rounds to zero reads ``+0``)."""
+    rounded = round(value, digits)
+    text = f"{rounded if rounded != 0 else 0.0:+.{digits}f}"
+    return text.replace("-", MINUS)
+
+
+def percent_text(fraction: float, *, signed: bool = False, digits: int = 0) -> str:
+    """A fraction as a percentage for people: ``42 %``; ``signed``: ``−30 %``, ``+5 %``."""
+    value = 100.0 * fraction
+    if signed:
+        return f"{signed_text(value, digits)} %"
+    return f"{round(value, digits) + 0.0:.{digits}f}".replace("-", MINUS) + " %"
+
+
 def duration_text(seconds: float) -> str:
-    """A duration for people: ``42 s``, ``3 min``, ``2 h 5 min`` or ``3 d 4 h``."""
+    """A duration for people: ``0.5 s``, ``42 s``, ``3 min``, ``2 h 5 min`` or ``3 d 4 h``."""
     seconds = max(seconds, 0.0)
+    if seconds < 9.5:  # two significant figures: lines every 0.5 s are not "every 0 s"
+        return f"{seconds:.2g} s" if seconds >= 0.01 else "0 s"
     if seconds < 90:
         return f"{seconds:.0f} s"
     minutes = seconds / 60

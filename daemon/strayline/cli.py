@@ -1,4 +1,5 @@
-"""Command line: ``strayline run | process | status | alerts | check-config | demo | products``.
+"""Command line: ``strayline run | process | status | alerts | why | summary | check-config |
+demo | products``.
 
 Exit codes: 0 ok, 2 usage, 78 (EX_CONFIG) for a bad configuration, 1 for anything else
 that stopped a command.
@@ -184,8 +185,37 @@ def build_parser() -> argparse.ArgumentParser:
         choices=("info", "warning", "critical"),
         help="only alerts of this severity and more urgent ones",
     )
-    alerts.add_argument("--json", action="store_true", help="print the JSON lines as stored")
+    alerts.add_argument(
+        "--utc", action="store_true", help="times in UTC (default: this machine's time zone)"
+    )
+    alerts.add_argument(
+        "--json", action="store_true", help="print the JSON lines as stored (every detail)"
+    )
     alerts.add_argument("-n", "--lines", type=int, default=20, help="how many (default 20)")
+
+    summary = sub.add_parser(
+        "summary",
+        help="write one HTML page (and Markdown) over the scans of the last hours: images, "
+        "lines, fit yield, alerts, duration, rate",
+    )
+    _config_arg(summary)
+    summary.add_argument(
+        "--since",
+        metavar="TIME",
+        default="12h",
+        help="scans with a line or an alert since this long ago (12h, 30m, 2d) or this ISO "
+        "8601 time (default 12h)",
+    )
+    summary.add_argument(
+        "--out",
+        type=Path,
+        default=None,
+        metavar="DIR",
+        help="folder for the page, its Markdown and its images (default: <output_root>/summaries)",
+    )
+    summary.add_argument(
+        "--utc", action="store_true", help="times in UTC (default: this machine's time zone)"
+    )
 
     why = sub.add_parser(
         "why", help="why each rule did or did not raise on one line of a scan (its decisions)"
@@ -448,6 +478,8 @@ def _cmd_status(args: argparse.Namespace) -> int:
 
 
 def _cmd_alerts(args: argparse.Namespace) -> int:
+    from datetime import UTC
+
     from strayline.alerts import follow_alerts
 
     config = _load(args)
@@ -460,7 +492,36 @@ def _cmd_alerts(args: argparse.Namespace) -> int:
         as_json=args.json,
         follow=args.follow,
         last=args.lines,
+        tz=UTC if args.utc else None,
     )
+
+
+def _cmd_summary(args: argparse.Namespace) -> int:
+    from datetime import UTC, datetime
+
+    from strayline.alerts import parse_since
+    from strayline.summary import read_night, write_summary
+
+    config = _load(args)
+    now = datetime.now(UTC)
+    try:
+        since = parse_since(args.since, now)
+    except ValueError as error:
+        print(f"strayline summary: {error}", file=sys.stderr)
+        return EXIT_USAGE
+    out = args.out if args.out is not None else config.paths.output_root / "summaries"
+    night = read_night(config, since=since, until=now, config_path=_need_config(args))
+    try:
+        files = write_summary(night, out, tz=UTC if args.utc else None)
+    except OSError as error:
+        print(f"strayline summary: cannot write into {out}: {error}", file=sys.stderr)
+        return 1
+    active = sum(len(s.active) for s in night.scans)
+    print(
+        f"{len(night.scans)} scan(s), {active} alert(s) still active: {files.html} "
+        f"(Markdown: {files.markdown.name})"
+    )
+    return EXIT_OK
 
 
 def _cmd_why(args: argparse.Namespace) -> int:
@@ -549,6 +610,7 @@ _COMMANDS = {
     "status": _cmd_status,
     "alerts": _cmd_alerts,
     "why": _cmd_why,
+    "summary": _cmd_summary,
     "demo": _cmd_demo,
     "products": _cmd_products,
 }

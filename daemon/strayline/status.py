@@ -54,6 +54,8 @@ class ScanStatus:
         written, waiting to settle, or one that will never open), by name.
     quarantined : int
         Files of the scan's folder set aside in its quarantine.
+    first_commit : datetime or None
+        When the scan's first line was committed (the start of its duration).
     """
 
     scan_id: str
@@ -69,13 +71,14 @@ class ScanStatus:
     held: tuple[str, ...] = ()
     quarantined: int = 0
     last_events: tuple[AlertEvent, ...] = ()
+    first_commit: datetime | None = None
 
     def as_json_dict(self) -> dict[str, Any]:
         """Plain JSON-ready values (times as ISO 8601 strings, the store as a string; the
         last alerts as the alert log's records, not as text)."""
         data = asdict(self)
         data["store"] = str(self.store)
-        for key in ("eta", "last_commit"):
+        for key in ("eta", "last_commit", "first_commit"):
             value = data[key]
             data[key] = value.isoformat() if value is not None else None
         data["last_alerts"] = [json.loads(event.to_json()) for event in self.last_events]
@@ -148,6 +151,7 @@ def scan_status(store_path: Path, alerts: Sequence[AlertEvent] | None = None) ->
         held=held,
         quarantined=quarantined,
         last_events=events,
+        first_commit=min((e.processed_time for e in state.committed.values()), default=None),
     )
 
 

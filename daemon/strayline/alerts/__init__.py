@@ -7,7 +7,9 @@ by one :class:`AlertSink`, and read back by :func:`read_alert_log` (``strayline 
 
 from strayline.alerts.event import AlertEvent
 from strayline.alerts.log import (
+    ALERT_LINE_MAX,
     SEVERITY_ORDER,
+    active_now,
     follow_alerts,
     format_alert,
     parse_since,
@@ -25,6 +27,7 @@ from strayline.alerts.sink import (
 
 __all__ = [
     "ACTIVE_ALERTS_FILE",
+    "ALERT_LINE_MAX",
     "HOOK_PLACEHOLDERS",
     "SEVERITY_ORDER",
     "ActiveAlerts",
@@ -32,6 +35,7 @@ __all__ = [
     "AlertNotLogged",
     "AlertSink",
     "SinkStatistics",
+    "active_now",
     "deliver_remembered",
     "fill_hook_arguments",
     "follow_alerts",

@@ -2,18 +2,21 @@
 
 from __future__ import annotations
 
+import math
 import re
 import sys
 import threading
 import time
-from datetime import UTC, datetime, timedelta
+from datetime import UTC, datetime, timedelta, tzinfo
 from os import PathLike
 from pathlib import Path
 from typing import TextIO
 
+from strayline._numbers import signed_text
 from strayline.alerts.event import AlertEvent
 
 __all__ = [
+    "ALERT_LINE_MAX",
     "SEVERITY_ORDER",
     "active_now",
     "follow_alerts",
@@ -25,6 +28,11 @@ __all__ = [
 
 #: Alert severities, least urgent first (``alerts --severity`` keeps this one and above).
 SEVERITY_ORDER = ("info", "warning", "critical")
+#: The most characters of one readable alert line (:func:`format_alert`).
+ALERT_LINE_MAX = 160
+_SCAN_ID_MAX = 32  # a longer scan id is cut in the readable line (never in the JSON)
+_Z_SHOWN_MAX = 999.5  # |z| shown as a number up to 999
+_SEVERITY_MARK = {"info": "INFO", "warning": "WARN", "critical": "CRIT"}
 
 _SPAN = re.compile(r"(\d+(?:\.\d+)?)\s*([smhd])")
 _SPAN_WHOLE = re.compile(r"\s*(?:\d+(?:\.\d+)?\s*[smhd]\s*)+")
@@ -122,22 +130,46 @@ def _identity(path: Path) -> tuple[int, int] | None:
     return st.st_dev, st.st_ino
 
 
-def format_alert(event: AlertEvent) -> str:
-    """One readable line: time, severity, state, scan/line/pixels, rule, message; safe to
-    print to a terminal (:func:`printable`: a scan id may come from a folder name)."""
-    where = event.scan_id
+def _clip(text: str, room: int) -> str:
+    """``text`` cut to ``room`` characters, the cut marked with an ellipsis."""
+    if len(text) <= room:
+        return text
+    return text[: max(room - 1, 0)].rstrip() + "…" if room > 0 else ""
+
+
+def format_alert(event: AlertEvent, *, tz: tzinfo | None = None) -> str:
+    """One line for a terminal, at most :data:`ALERT_LINE_MAX` characters::
+
+        2026-03-02T00:14:05+01:00 CRIT film-7 line 27 px 32–63 resonance_jump: tip crash
+        suspected: PL −30 % since line 26 (z −12.4)
+
+    (one line; wrapped here): the time in ``tz`` (default: this machine's zone) as ISO
+    8601 with its offset, the severity (``cleared`` after it when the event clears an
+    alert; a raise has no word of its own), where (scan, line, ``bwd`` for
+    the backward trace, pixel range) once, the rule, what was seen, and the robust z
+    against the baseline when the event has one. A message too long for the line is cut
+    with "…" (``alerts --json`` has all of it, and the advice). Safe to print to a
+    terminal (:func:`printable`: a scan id may come from a folder name).
+    """
+    when = event.datetime.astimezone(tz).isoformat(timespec="seconds")
+    mark = _SEVERITY_MARK.get(event.severity, event.severity.upper()[:4])
+    state = "" if event.state == "raised" else " cleared"
+    where = [_clip(printable(event.scan_id), _SCAN_ID_MAX)]
     if event.line_index is not None:
-        where += f" line {event.line_index}"
-        if event.direction:
-            where += f" ({event.direction})"
+        where.append(f"line {event.line_index}" + (" bwd" if event.direction == "backward" else ""))
     if event.pixel_range is not None:
-        where += f" px {event.pixel_range[0]}–{event.pixel_range[1] - 1}"
-    mark = "RAISED " if event.state == "raised" else "cleared"
-    text = f"{event.time} {event.severity.upper():8} {mark} {where} [{event.rule}] "
-    text += event.message
-    if event.state == "raised" and event.advice:
-        text += f" — {event.advice}"
-    return printable(text)
+        first, last = event.pixel_range[0], event.pixel_range[1] - 1
+        where.append(f"px {first}" if last <= first else f"px {first}–{last}")
+    head = f"{when} {mark}{state} {' '.join(where)} {printable(event.rule)}: "
+    tail = ""
+    z = event.confidence_z
+    if z is not None and math.isfinite(z):
+        if abs(z) < _Z_SHOWN_MAX:
+            tail = f" (z {signed_text(z, 1 if abs(z) < 100 else 0)})"
+        else:  # far beyond any threshold; the exact figure is in --json
+            tail = f" (z {'> +' if z > 0 else '< −'}999)"
+    room = ALERT_LINE_MAX - len(head) - len(tail)
+    return head + _clip(printable(event.message.strip()), room) + tail
 
 
 def follow_alerts(
@@ -150,6 +182,7 @@ def follow_alerts(
     as_json: bool = False,
     follow: bool = False,
     last: int = 20,
+    tz: tzinfo | None = None,
     poll_s: float = 0.5,
     out: TextIO | None = None,
     stop: threading.Event | None = None,
@@ -160,7 +193,8 @@ def follow_alerts(
     ``since`` is an ISO 8601 time (a time without zone is taken as UTC) or a span back
     from now (:func:`parse_since`); ``severity`` keeps that severity and the more urgent
     ones (:data:`SEVERITY_ORDER`); ``active`` keeps only the alerts raised and not cleared
-    since (:func:`active_now`). ``stop`` ends following (tests); Ctrl-C ends it too. A
+    since (:func:`active_now`); ``tz`` is the zone of the readable times (default: this
+    machine's). ``stop`` ends following (tests); Ctrl-C ends it too. A
     bad ``since`` or ``severity`` prints the problem and returns 2; a ``scan_id`` the log
     has no alert of says so, lists the scans it has, and returns 1 (unless following).
     """
@@ -185,7 +219,7 @@ def follow_alerts(
     wanted = set(SEVERITY_ORDER[SEVERITY_ORDER.index(severity or "info") :])
 
     def show(event: AlertEvent) -> None:
-        stream.write((event.to_json() if as_json else format_alert(event)) + "\n")
+        stream.write((event.to_json() if as_json else format_alert(event, tz=tz)) + "\n")
 
     p = Path(path)
     bad: list[str] = []

@@ -88,6 +88,15 @@ def _check_hook_argument(value: str) -> str:
     return value
 
 
+def _check_metrics_file(value: Path) -> Path:
+    if value.suffix != ".prom":
+        raise ValueError(
+            f"expected a file name ending in .prom (the node exporter's textfile collector "
+            f"reads only *.prom files); found {value.name!r}"
+        )
+    return value
+
+
 ResolvedPath = Annotated[
     Path, Strict(False), BeforeValidator(_refuse_empty_path), AfterValidator(_resolve_path)
 ]
@@ -335,6 +344,7 @@ class ServiceSection(Section):
     watchdog: bool = True
     status_interval_s: Seconds = 60.0
     min_free_disk_mib: Annotated[float, Field(ge=0)] = 1024.0
+    metrics_file: Annotated[ResolvedPath, AfterValidator(_check_metrics_file)] | None = None
 
     @property
     def min_free_disk_bytes(self) -> int:

@@ -2,6 +2,7 @@
 report; written beside the store and remade any time (``strayline products``). While a
 scan runs, its live picture (:class:`LivePicture`) goes to the same folder."""
 
+from strayline.products._report import status_fractions
 from strayline.products.live import LIVE_PREFIX, LivePicture, live_image_name
 from strayline.products.make import (
     REPORT_JSON,
@@ -28,4 +29,5 @@ __all__ = [
     "make_products",
     "products_dir",
     "remake_products",
+    "status_fractions",
 ]

@@ -15,13 +15,13 @@ from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from typing import Any
 
+from strayline._numbers import HZ_PER_MHZ, MINUS, percent_text, plain_number, signed_text
 from strayline.physics import DD_DT_HZ_PER_K
 from strayline.rules._jump import resonance_jump_detector
 from strayline.rules._observation import (
     BaselineView,
     Detector,
     Observation,
-    pixel_text,
     robust_z,
 )
 from strayline.rules.metrics import LineMetrics
@@ -48,9 +48,9 @@ def _fluorescence_lost(spec: FluorescenceLostSpec) -> LineDetect:
         if st is None or not math.isfinite(m.pl_median_per_s) or st[0] <= 0:
             return None
         med, spread = st
-        level, rng, first = m.pl_median_per_s, None, -1
+        level, rng = m.pl_median_per_s, None
         if m.pl_step < 0 and m.pl_step_range is not None and m.pl_step_level_per_s < level:
-            level, rng, first = m.pl_step_level_per_s, m.pl_step_range, m.pl_step_first_pixel
+            level, rng = m.pl_step_level_per_s, m.pl_step_range
         ratio = level / med
         return Observation(
             raise_cond=ratio < below,
@@ -61,13 +61,10 @@ def _fluorescence_lost(spec: FluorescenceLostSpec) -> LineDetect:
             baseline_spread=spread,
             confidence_z=robust_z(level, med, spread, 1e-3 * med),
             pixel_range=rng,
-            message=(
-                f"PL fell to {ratio:.0%} of the running median ({med:.3g} counts/s) "
-                f"{pixel_text(first, rng, m.n_pixels)}"
-            ),
+            # the range it fell over is the event's (none: the whole line)
+            message=f"PL fell to {percent_text(ratio)} of the running median ({_kcps(med)})",
             clear_message=(
-                f"PL is back to {m.pl_median_per_s / med:.0%} of the running median "
-                f"({med:.3g} counts/s)"
+                f"PL is back to {percent_text(m.pl_median_per_s / med)} of the running median"
             ),
             detail={
                 "pl_fraction": ratio,
@@ -142,10 +139,10 @@ def _contrast_collapsed(spec: ContrastCollapsedSpec) -> Detector:
             baseline_spread=c_st[1],
             confidence_z=z,
             message=(
-                f"ODMR contrast (line mean) fell to {c_ratio:.0%} of the running median "
-                f"({c_st[0]:.1%}) while PL stayed at {pl_ratio:.0%}"
+                f"contrast fell to {percent_text(c_ratio)} of the running median "
+                f"({percent_text(c_st[0], digits=1)}); PL at {percent_text(pl_ratio)}"
             ),
-            clear_message=f"ODMR contrast is back to {c_ratio:.0%} of the running median",
+            clear_message=f"contrast is back to {percent_text(c_ratio)} of the running median",
             run_lines=memory.lines if low else None,
             detail={
                 "contrast_fraction": c_ratio,
@@ -168,7 +165,7 @@ def _fit_failures_rising(spec: FitFailuresRisingSpec) -> Detector:
         if st is None or not math.isfinite(m.fit_failure_fraction):
             return None
         v, (med, spread) = m.fit_failure_fraction, st
-        n = max(m.n_pixels, 1)
+        n = max(m.n_pixels, 2)  # a one-pixel line: p0 = 1/2, not 0 (no division by zero)
         p0 = min(max(med, 1.0 / n), 1.0 - 1.0 / n)
         z_binomial = (v - med) / math.sqrt(p0 * (1.0 - p0) / n)
         high = v >= spec.failure_fraction_above and v - med >= spec.rise_fraction_above
@@ -186,8 +183,12 @@ def _fit_failures_rising(spec: FitFailuresRisingSpec) -> Detector:
             baseline_value=med,
             baseline_spread=spread,
             confidence_z=robust_z(v, med, spread, 0.01),
-            message=f"{v:.0%} of the line's fits failed (running median {med:.0%})",
-            clear_message=f"fit failures are back to {v:.0%} (running median {med:.0%})",
+            message=(
+                f"{percent_text(v)} of the line's fits failed (running median {percent_text(med)})"
+            ),
+            clear_message=(
+                f"fit failures are back to {percent_text(v)} (running median {percent_text(med)})"
+            ),
             detail={
                 "failure_fraction": v,
                 "raise_above": spec.failure_fraction_above,
@@ -228,14 +229,12 @@ def _zfs_drift(spec: ZfsDriftSpec) -> LineDetect:
             baseline_spread=anchor_spread,
             confidence_z=robust_z(v, ref, anchor_spread, 1e3),
             message=(
-                f"the mean of the two resonances (10th percentile over the line) moved by "
-                f"{delta / 1e6:+.2f} MHz since the scan's first lines (≈ {kelvin:+.1f} K if "
-                "it is temperature, at −74.2 kHz/K; strain and the transverse field move it "
-                "too)"
+                f"resonance mean {signed_text(delta / HZ_PER_MHZ, 2)} MHz since the first "
+                f"lines (≈ {signed_text(kelvin, 1 if abs(kelvin) < 10 else 0)} K if thermal)"
             ),
             clear_message=(
-                f"the mean of the two resonances (10th percentile over the line) is back "
-                f"within {abs(delta) / 1e6:.2f} MHz of the scan's first lines"
+                f"resonance mean is back within {abs(delta) / HZ_PER_MHZ:.2f} MHz of the "
+                "first lines"
             ),
             detail={"drift_hz": delta, "raise_above_hz": raise_hz, "clear_below_hz": clear_hz},
         )
@@ -281,6 +280,10 @@ def _threshold(spec: ThresholdSpec) -> LineDetect:
         lo = below is not None and x < below
         ok_hi = clear_above is None or x < clear_above
         ok_lo = clear_below is None or x > clear_below
+        limit = f" (above {_number(above)})" if hi and above is not None else ""
+        if lo and below is not None:
+            limit = f" (below {_number(below)})"
+        seen = _threshold_text(spec, x, v, med)
         return Observation(
             raise_cond=hi or lo,
             clear_cond=ok_hi and ok_lo,
@@ -289,11 +292,8 @@ def _threshold(spec: ThresholdSpec) -> LineDetect:
             baseline_value=med,
             baseline_spread=spread,
             confidence_z=z,
-            message=f"{spec.metric} = {x:.4g} {unit}".rstrip()
-            + (f" (above {above:g})" if hi else f" (below {below:g})" if lo else ""),
-            clear_message=f"{spec.metric} = {x:.4g} {unit} is back within limits".replace(
-                "  ", " "
-            ),
+            message=seen + ("" if ref == "baseline_z" else limit),
+            clear_message=seen,  # "cleared" says it is back within limits
             detail={"value": x, "above": above, "below": below},
         )
 
@@ -314,3 +314,35 @@ def build_detector(spec: RuleSpec) -> Detector | None:
     """The line detector for ``spec`` (None for tick-only kinds such as stalls)."""
     builder = _BUILDERS.get(spec.kind)
     return None if builder is None else builder(spec)
+
+
+def _kcps(rate_per_s: float) -> str:
+    """A PL rate for people: ``201 kcounts/s``."""
+    return f"{plain_number(rate_per_s / 1e3)} kcounts/s"
+
+
+def _number(x: float, *, signed: bool = False) -> str:
+    """A threshold rule's number: three figures, a typeset minus, never "-0"."""
+    x = x + 0.0  # -0.0 → 0.0
+    return (f"{x:+.3g}" if signed else f"{x:.3g}").replace("-", MINUS)
+
+
+def _threshold_text(spec: ThresholdSpec, x: float, v: float, med: float | None) -> str:
+    """What a threshold rule saw, in the one unit of its reference: ``… = 12.3 nm``,
+    ``… = 0.42 × median``, ``… = median +3.1 nm``, or (``baseline_z``, whose z is the
+    event's confidence) ``… = 35.1 nm, median 12.3``."""
+    unit = f" {spec.unit}" if spec.unit else ""
+
+    def amount(value: float, *, signed: bool = False) -> str:
+        if spec.unit == "fraction":
+            return percent_text(value, signed=signed)
+        return f"{_number(value, signed=signed)}{unit}"
+
+    ref = spec.reference
+    if ref == "baseline_ratio":
+        return f"{spec.metric} = {_number(x)} × median"
+    if ref == "baseline_delta":
+        return f"{spec.metric} = median {amount(x, signed=True)}"
+    if ref == "baseline_z" and med is not None:
+        return f"{spec.metric} = {amount(v)}, median {_number(med)}"
+    return f"{spec.metric} = {amount(x)}"

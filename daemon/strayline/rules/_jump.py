@@ -13,11 +13,11 @@ from collections.abc import Mapping
 from dataclasses import dataclass, field, replace
 from typing import Any
 
+from strayline._numbers import HZ_PER_MHZ, percent_text, signed_text
 from strayline.rules._observation import (
     BaselineView,
     Detector,
     Observation,
-    pixel_text,
     robust_z,
 )
 from strayline.rules.metrics import LineMetrics
@@ -32,6 +32,7 @@ _CHANNELS = (
     ("center_mean", "Hz", "mean of the two resonances"),
     ("field", "ln ratio", "field roughness"),
 )
+_UNITS = {c: u for c, u, _ in _CHANNELS}
 
 
 _THRESHOLD_FIELD = {
@@ -237,6 +238,7 @@ def _excursion(
         "confirmed": True,
     }
     pending["verdict"] = _jump_verdict(spec, pending, m.line_index)
+    pending["basis"] = _basis(spec, pending, m.line_index)
     pending["severity"] = _severity(spec, pending, m.line_index)
     return pending
 
@@ -310,31 +312,57 @@ def _hold(spec: ResonanceJumpSpec, pending: Mapping[str, Any], m: LineMetrics) -
     return "reverted"
 
 
+def _step_text(channel: str, value: float) -> str:
+    """One channel's step in words, in one unit: ``PL −30 %``, ``resonance mean +4.25 MHz``,
+    ``field roughness +35 %``."""
+    if channel == "pl":
+        return f"PL {percent_text(value, signed=True)}"
+    if channel == "center_mean":
+        return f"resonance mean {signed_text(value / HZ_PER_MHZ, 2)} MHz"
+    return f"field roughness {percent_text(math.expm1(value), signed=True)}"
+
+
+def _lines_text(first: int, last: int) -> str:
+    return f"line {first}" if last <= first else f"lines {first}–{last}"
+
+
+def _basis(spec: ResonanceJumpSpec, pending: Mapping[str, Any], reverted_at: int | None) -> str:
+    """The channel a verdict rests on, whose step the event reports (its value, z and
+    pixels): PL for a tip crash, the common mode for a contact, the roughness for a
+    stand-off change, the largest step for a touch."""
+    chans = pending["channels"]
+    if pending.get("departed_at") is not None or reverted_at is not None:
+        return str(pending["primary"])
+    pl = chans.get("pl")
+    if pl is not None and pl["value"] <= -spec.pl_drop_fraction_for_crash:
+        return "pl"
+    if "center_mean" in chans:
+        return "center_mean"
+    return "field" if "field" in chans else str(pending["primary"])
+
+
 def _jump_verdict(
     spec: ResonanceJumpSpec, pending: Mapping[str, Any], reverted_at: int | None
 ) -> str:
-    chans = pending["channels"]
+    """What a step is taken for and the step that says so (:func:`_basis`), in one unit:
+    ``tip crash suspected: PL −30 % since line 26``; a touch gives the lines that were off
+    their level and by how much: ``sample touched: PL −30 % on line 26 only``."""
     line = pending["line"]
+    basis = _basis(spec, pending, reverted_at)
+    value = float(pending["channels"][basis]["value"])
     departed = pending.get("departed_at")
-    if departed is not None:
-        return (
-            f"sample touched (transient): left its level at line {departed} (below the "
-            f"thresholds there) and came back at line {line}"
-        )
+    if departed is not None:  # ``line`` stepped back to where line ``departed`` left
+        off, lines = _step_text(basis, -value), _lines_text(departed, line - 1)
+        return f"sample touched: {off} on {lines} only"
     if reverted_at is not None:
-        return f"sample touched (transient): the step at line {line} reverted at line {reverted_at}"
-    pl = chans.get("pl")
+        off, lines = _step_text(basis, value), _lines_text(line, reverted_at - 1)
+        return f"sample touched: {off} on {lines} only"
+    pl = pending["channels"].get("pl")
     if pl is not None and pl["value"] <= -spec.pl_drop_fraction_for_crash:
-        return f"tip crash suspected: PL fell by {-pl['value']:.0%} with the step"
-    if "center_mean" in chans:
-        shift = chans["center_mean"]["value"]
-        return (
-            f"contact suspected: the mean of the two resonances shifted by "
-            f"{shift / 1e6:+.2f} MHz (strain or heating)"
-        )
-    field = chans.get("field", {"value": 0.0})
-    change = math.expm1(field["value"])
-    return f"stand-off change suspected: field roughness changed by {change:+.0%}"
+        what = "tip crash"
+    else:
+        what = "contact" if basis == "center_mean" else "stand-off change"
+    return f"{what} suspected: {_step_text(basis, value)} since line {line}"
 
 
 def _severity(
@@ -368,6 +396,7 @@ def _new_pending(
     }
     verdict = _jump_verdict(spec, pending, None)
     pending["verdict"] = verdict
+    pending["basis"] = _basis(spec, pending, None)
     memory.pending = pending
     obs = _jump_obs(pending, m, raise_cond=True, clear_cond=False, clear_now=False, text=verdict)
     return replace(obs, run_lines=1) if fresh else obs
@@ -460,6 +489,7 @@ def _touch_pair(
         "confirmed": True,
     }
     pending["verdict"] = _jump_verdict(spec, pending, m.line_index)
+    pending["basis"] = _basis(spec, pending, m.line_index)
     pending["severity"] = _severity(spec, pending, m.line_index)
     return pending
 
@@ -509,6 +539,7 @@ def _confirm(
         pending["departed_at"] = departed
         reverted_at = pending["line"]
     pending["verdict"] = _jump_verdict(spec, pending, reverted_at)
+    pending["basis"] = _basis(spec, pending, reverted_at)
     pending["severity"] = _severity(spec, pending, reverted_at)
     pending["reverted_at"] = reverted_at
     return _jump_obs(
@@ -524,14 +555,11 @@ def _after_raise(
     only with ``clear_when_quiet``)."""
     clear = now = True
     if _reverts(raised, m):
-        msg = (
-            f"the step from line {raised['line']} reverted at line {m.line_index}: "
-            "transient, consistent with the sample being touched"
-        )
+        msg = f"the step from line {raised['line']} reverted at line {m.line_index} (a touch)"
     elif raised.get("reverted_at") is not None and not flagged:
         msg = f"no new step since line {raised['reverted_at']}"
     else:
-        msg = f"no new step for the last lines; the shift from line {raised['line']} has persisted"
+        msg = f"the shift from line {raised['line']} persists, no new step"
         clear, now = not flagged and clear_when_quiet, False
     return _jump_obs(
         raised, m, raise_cond=False, clear_cond=clear, clear_now=now, text=msg, clear_message=msg
@@ -580,14 +608,11 @@ def _jump_obs(
     text: str,
     clear_message: str = "",
 ) -> Observation:
-    prim = event["channels"][event["primary"]]
-    unit = {c: u for c, u, _ in _CHANNELS}[event["primary"]]
-    what = {c: w for c, _, w in _CHANNELS}[event["primary"]]
+    # the channel the verdict names (a state saved before it was kept: the largest step)
+    basis = event.get("basis") or event["primary"]
+    prim = event["channels"][basis]
+    unit = _UNITS[basis]
     rng = (int(prim["range"][0]), int(prim["range"][1]))
-    message = (
-        f"{text}; {what} stepped by {prim['value']:+.3g} {unit} at line {event['line']} "
-        f"{pixel_text(int(prim['first']), rng, m.n_pixels)}"
-    )
     return Observation(
         raise_cond=raise_cond,
         clear_cond=clear_cond,
@@ -599,6 +624,6 @@ def _jump_obs(
         baseline_spread=float(prim["spread"]),
         confidence_z=float(prim["z"]),
         pixel_range=rng,
-        message=message,
+        message=text,
         clear_message=clear_message,
     )

@@ -19,7 +19,6 @@ __all__ = [
     "DetectorMemory",
     "NoMemory",
     "Observation",
-    "pixel_text",
     "robust_z",
 ]
 
@@ -44,6 +43,11 @@ class Observation:
     observation when it is not the rule's own (a touch that has already reverted is a
     warning under a critical rule). ``detail``: the statistics the detector compared, with
     their thresholds (plain JSON), for the line's decision record.
+
+    ``message`` says what was seen, each quantity once in one unit (a fraction as a
+    percentage), short enough for a terminal line beside the time, scan and rule; it
+    does not repeat the line or the pixel range, which the event carries (and the
+    readable alert line shows once).
     """
 
     raise_cond: bool
@@ -115,10 +119,3 @@ class Detector:
 def robust_z(value: float, median: float, spread: float, floor: float) -> float:
     """(value − median) / spread, the spread at least ``floor``."""
     return (value - median) / max(spread, floor, 1e-300)
-
-
-def pixel_text(first_pixel: int, rng: tuple[int, int] | None, n_pixels: int) -> str:
-    """Where on the line, in words: the whole line, or from a pixel on (a range)."""
-    if rng is None or rng[1] - rng[0] >= n_pixels:
-        return "over the whole line"
-    return f"from pixel {first_pixel} on (pixels {rng[0]}–{rng[1] - 1})"

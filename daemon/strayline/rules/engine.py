@@ -33,7 +33,7 @@ import structlog
 from pydantic import ValidationError
 
 from strayline._atomic import write_text_atomic
-from strayline._numbers import finite_or_none
+from strayline._numbers import duration_text, finite_or_none
 from strayline.alerts import AlertEvent
 from strayline.errors import StoreError
 from strayline.rules._detectors import Observation, build_detector
@@ -493,9 +493,10 @@ class RuleEngine:
                     message="",
                     confidence_z=None,
                 )
+                # the event's line is the last one that came
                 message = (
-                    f"no new line for {waited:.0f} s (lines usually every {interval:.0f} s; "
-                    f"last was line {scan.last_line_index} at {_iso(scan.last_arrival_s)})"
+                    f"no new line for {duration_text(waited)} (lines usually every "
+                    f"{duration_text(interval)})"
                 )
                 ev = self._event(
                     self._latest,

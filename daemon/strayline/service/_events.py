@@ -7,6 +7,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Literal
 
+from strayline._numbers import duration_text
 from strayline.alerts import AlertEvent
 
 __all__ = [
@@ -35,12 +36,14 @@ def output_unavailable_raised(output_root: Path, reason: str) -> ServiceAlert:
         "output_unavailable",
         "raised",
         message=(
-            f"cannot write results below {output_root}: {reason}; "
-            "live maps and fault alerts are paused, line files are kept and retried"
+            f"cannot write results: {reason}"
+            if str(output_root) in reason  # the reason names the folder already
+            else f"cannot write below {output_root}: {reason}"
         ),
         advice=(
-            "check that the output folder exists, is writable and its disk is "
-            "mounted and not full; processing resumes by itself"
+            "live maps and fault alerts are paused, line files are kept and retried; "
+            "check that the output folder exists, is writable and its disk is mounted "
+            "and not full; processing resumes by itself"
         ),
     )
 
@@ -49,10 +52,7 @@ def output_unavailable_cleared(output_root: Path, down_s: float) -> ServiceAlert
     return ServiceAlert(
         "output_unavailable",
         "cleared",
-        message=(
-            f"results are written below {output_root} again after "
-            f"{down_s:.0f} s; the watch root is listed again to catch up"
-        ),
+        message=(f"writing below {output_root} again after {duration_text(down_s)}; catching up"),
         advice="",
     )
 
@@ -64,13 +64,13 @@ def disk_low_raised(
         "disk_space_low",
         "raised",
         message=(
-            f"free space for {output_root} is {free_mib:.0f} MiB, "
-            f"below service.min_free_disk_mib = {floor_mib:.0f} MiB; raw spectra are "
-            "no longer stored (field maps still are)"
+            f"free space for {output_root} is {free_mib:.0f} MiB, below "
+            f"service.min_free_disk_mib = {floor_mib:.0f} MiB"
         ),
         advice=(
-            "free space on that disk or move finished scans away; raw spectra are "
-            f"stored again above {clear_mib:.0f} MiB free"
+            "raw spectra are no longer stored (field maps still are); free space on that "
+            f"disk or move finished scans away; raw spectra are stored again above "
+            f"{clear_mib:.0f} MiB free"
         ),
         seen=(free_mib, floor_mib, "MiB"),
     )
@@ -81,8 +81,8 @@ def disk_low_cleared(output_root: Path, free_mib: float, floor_mib: float) -> Se
         "disk_space_low",
         "cleared",
         message=(
-            f"free space for {output_root} is {free_mib:.0f} MiB "
-            "again; raw spectra are stored as configured"
+            f"free space for {output_root} is {free_mib:.0f} MiB again; raw spectra are "
+            "stored as configured"
         ),
         advice="",
         seen=(free_mib, floor_mib, "MiB"),

@@ -51,6 +51,13 @@ from strayline.errors import ConfigError, StoreError
 from strayline.fit import prepare_kernels
 from strayline.heartbeat import HEARTBEAT_INTERVAL_S, Heartbeat, write_heartbeat
 from strayline.logs import configure_logging, reopen_log_files
+from strayline.metrics_file import (
+    MetricsSnapshot,
+    ScanStatusCache,
+    alerts_by_severity,
+    scan_metrics,
+    write_metrics_file,
+)
 from strayline.pipeline import (
     LineOutcome,
     LinePipeline,
@@ -165,6 +172,12 @@ class Service:
         self._started = datetime.now(UTC)
         self._next_beat_s = 0.0
         self._beat_failing = False
+        # The metrics file's memory: scans handled and alerts active (a closed pipeline,
+        # a reload or the last file of a stop still know them).
+        self._scans = ScanStatusCache(config.paths.output_root)
+        self._progress: dict[str, tuple[int, int]] = {}
+        self._active_seen: tuple[AlertEvent, ...] = ()
+        self._metrics_failing = False
         self._outage: Outage | None = None
         self._last_alert: AlertEvent | None = None
         self._last_scan_id: str | None = None
@@ -396,6 +409,37 @@ class Service:
             self._beat_failing = True
         else:
             self._beat_failing = False
+        if self.config.service.metrics_file is not None:
+            self._write_metrics(self.config.service.metrics_file, beat)
+
+    def _write_metrics(self, path: Path, beat: Heartbeat) -> None:
+        """Rewrite the metrics file beside the heartbeat (``service.metrics_file``): the
+        scans this daemon has handled (kept across reloads), the active alerts; a failure
+        is logged once per outage of it."""
+        if self.pipeline is not None:
+            self._progress.update(self.pipeline.scan_progress())
+            self._active_seen = self.pipeline.active_alerts()
+        if self._scans.output_root != self.config.paths.output_root:
+            self._scans = ScanStatusCache(self.config.paths.output_root)
+        try:
+            snapshot = MetricsSnapshot(
+                up=beat.state == "running",
+                seen=beat.seen,
+                lines_written=beat.lines_written,
+                files_waiting=beat.waiting,
+                alerts_active=alerts_by_severity(self._active_seen),
+                scans=tuple(
+                    scan_metrics(status, beat.seen)
+                    for status in self._scans.statuses(self._progress)
+                ),
+            )
+            write_metrics_file(path, snapshot)
+        except (OSError, StoreError, ValueError, KeyError) as exc:
+            if not self._metrics_failing:
+                self._log.warning("metrics_file_not_written", file=str(path), error=str(exc))
+            self._metrics_failing = True
+        else:
+            self._metrics_failing = False
 
     # -- unreadable files ---------------------------------------------------------------
 
@@ -601,6 +645,8 @@ class Service:
         if pipeline is None:
             return
         self._counted = pipeline.statistics()  # the next pipeline counts on from here
+        self._progress.update(pipeline.scan_progress())  # for the metrics file
+        self._active_seen = pipeline.active_alerts()
         try:
             pipeline.close()
         except OSError as exc:  # the output is failing; what is committed is on disk
