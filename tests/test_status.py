@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import shutil
+from dataclasses import replace
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
 from typing import Any
@@ -310,5 +311,28 @@ def test_status_dates_the_last_line_and_says_when_the_eta_has_passed(
     late = format_scan_status(status, now=T0 + timedelta(hours=1))
     assert ", last line 58 min ago" in late.splitlines()[0]
     assert late.splitlines()[1] == (
+        "  no line for 58 min (lines came every 30 s): the scan stalled or stopped"
+    )
+    paceless = replace(status, line_period_s=None)
+    assert format_scan_status(paceless, now=T0 + timedelta(hours=1)).splitlines()[1] == (
         "  the ETA passed 56 min ago with 4 line(s) to go: the scan stalled or stopped"
     )
+
+
+def test_a_stalled_scan_shows_within_two_of_its_line_periods(
+    scan_files: Path, tmp_path: Path
+) -> None:
+    """Lines every 30 s: two periods after the last one nothing is said yet; a moment
+    later the status says the scan stalled, long before its ETA (common practice: a
+    line overdue by twice the scan's own pace is a stall)."""
+    times = [T0 + timedelta(seconds=30 * k) for k in range(4)]
+    status = scan_status(_store_with_clock(tmp_path, scan_files, times))
+    assert status.line_period_s == pytest.approx(30.0)
+    last = times[-1]
+    assert "stalled" not in format_scan_status(status, now=last + timedelta(seconds=60))
+    text = format_scan_status(status, now=last + timedelta(seconds=61))
+    assert text.splitlines()[1] == (
+        "  no line for 61 s (lines came every 30 s): the scan stalled or stopped"
+    )
+    assert status.eta is not None
+    assert status.eta > last + timedelta(seconds=61)

@@ -11,10 +11,11 @@ import json
 from collections.abc import Sequence
 from dataclasses import asdict, dataclass, replace
 from datetime import UTC, datetime, timedelta
+from itertools import pairwise
 from pathlib import Path
 from typing import Any
 
-from strayline._numbers import duration_text
+from strayline._numbers import duration_text, median
 from strayline.alerts import AlertEvent, format_alert, read_alert_log
 from strayline.fit import failed_fits
 from strayline.lines import DIRECTIONS, QUARANTINE_DIR, line_key_from_name
@@ -56,6 +57,9 @@ class ScanStatus:
         Files of the scan's folder set aside in its quarantine.
     first_commit : datetime or None
         When the scan's first line was committed (the start of its duration).
+    line_period_s : float or None
+        The scan's own pace: the median time between its recent line commits, s (None
+        with fewer than two at distinct times).
     """
 
     scan_id: str
@@ -72,6 +76,7 @@ class ScanStatus:
     quarantined: int = 0
     last_events: tuple[AlertEvent, ...] = ()
     first_commit: datetime | None = None
+    line_period_s: float | None = None
 
     def as_json_dict(self) -> dict[str, Any]:
         """Plain JSON-ready values (times as ISO 8601 strings, the store as a string; the
@@ -120,6 +125,8 @@ def scan_status(store_path: Path, alerts: Sequence[AlertEvent] | None = None) ->
     times = every[start:]
     rate = None
     eta = None
+    steps = [(b - a).total_seconds() for a, b in pairwise(times) if b > a]
+    period_s = median(steps) if steps else None
     if len(times) >= 2 and times[-1] > times[0]:
         span_h = (times[-1] - times[0]).total_seconds() / 3600.0
         rate = (len(times) - 1) / span_h
@@ -152,6 +159,7 @@ def scan_status(store_path: Path, alerts: Sequence[AlertEvent] | None = None) ->
         quarantined=quarantined,
         last_events=events,
         first_commit=min((e.processed_time for e in state.committed.values()), default=None),
+        line_period_s=period_s,
     )
 
 
@@ -210,9 +218,15 @@ def scan_statuses(output_root: Path, alert_log: Path | None = None) -> list[Scan
     return out
 
 
+def _period_text(seconds: float) -> str:
+    """A line period: ``0.5 s`` below ten seconds, else as :func:`duration_text`."""
+    return f"{seconds:.1f} s" if seconds < 10 else duration_text(seconds)
+
+
 def format_scan_status(status: ScanStatus, now: datetime | None = None) -> str:
     """A few readable lines for one scan; ``now`` (default: the clock) dates the last line
-    and tells a scan whose ETA has passed without its lines (stalled, or stopped)."""
+    and tells a scan that stalled or stopped: no line for more than two of its own line
+    periods, or (without a pace) its ETA passed without its lines."""
     now = now if now is not None else datetime.now(UTC)
     fwd, bwd = status.lines_done["forward"], status.lines_done["backward"]
     traces = f"{fwd}/{status.n_lines_planned} lines" + (f" (+{bwd} backward)" if bwd else "")
@@ -236,7 +250,13 @@ def format_scan_status(status: ScanStatus, now: datetime | None = None) -> str:
     )
     parts = [traces, rate, eta, last, failed]
     out = [f"{status.scan_id}: " + ", ".join(part for part in parts if part)]
-    if not complete and status.eta is not None and status.eta < now:
+    silent_s = (now - status.last_commit).total_seconds() if status.last_commit else 0.0
+    if not complete and status.line_period_s and silent_s > 2 * status.line_period_s:
+        out.append(
+            f"  no line for {duration_text(silent_s)} (lines came every "
+            f"{_period_text(status.line_period_s)}): the scan stalled or stopped"
+        )
+    elif not complete and status.eta is not None and status.eta < now:
         out.append(
             f"  the ETA passed {duration_text((now - status.eta).total_seconds())} ago with "
             f"{status.n_lines_planned - fwd} line(s) to go: the scan stalled or stopped"
