@@ -172,8 +172,8 @@ def test_rate_and_eta_from_regular_commits(scan_files: Path, tmp_path: Path) -> 
     assert status.rate_lines_per_h == pytest.approx(120.0)
     assert status.eta == T0 + timedelta(seconds=90 + 120)
     assert status.last_commit == T0 + timedelta(seconds=90)
-    assert format_scan_status(status).startswith(
-        f"{SCAN}: 4/8 lines, 120 lines/h, ETA 2026-03-01 22:03 UTC, "
+    assert format_scan_status(status, tz=UTC).startswith(
+        f"{SCAN}: 4/8 lines, 120 lines/h, ETA 2026-03-01T22:03+00:00, "
     )
 
 
@@ -272,9 +272,9 @@ def test_status_command_readable(
     """`strayline status` prints the readable lines of every scan."""
     config_path = _write_config(tmp_path)
     _store_with_clock(tmp_path, scan_files, [T0, T0 + timedelta(seconds=30)])
-    assert main(["status", "--config", str(config_path)]) == 0
+    assert main(["status", "--utc", "--config", str(config_path)]) == 0
     out = capsys.readouterr().out
-    assert out.startswith(f"{SCAN}: 2/8 lines, 120 lines/h, ETA 2026-03-01 22:03 UTC, ")
+    assert out.startswith(f"{SCAN}: 2/8 lines, 120 lines/h, ETA 2026-03-01T22:03+00:00, ")
 
 
 def test_status_command_without_scans(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:

@@ -167,6 +167,9 @@ def build_parser() -> argparse.ArgumentParser:
     status = sub.add_parser("status", help="per scan: lines done/planned, rate, ETA, alerts")
     _config_arg(status)
     status.add_argument("--json", action="store_true", help="one JSON object per scan")
+    status.add_argument(
+        "--utc", action="store_true", help="times in UTC (default: this machine's time zone)"
+    )
 
     alerts = sub.add_parser("alerts", help="readable tail of the alert log")
     _config_arg(alerts)
@@ -454,6 +457,8 @@ def _cmd_check_config(args: argparse.Namespace) -> int:
 
 
 def _cmd_status(args: argparse.Namespace) -> int:
+    from datetime import UTC
+
     from strayline.heartbeat import describe_heartbeat, pid_alive, read_heartbeat
     from strayline.status import format_scan_status, scan_statuses
 
@@ -473,7 +478,7 @@ def _cmd_status(args: argparse.Namespace) -> int:
         print(f"no scans in {config.paths.output_root}")
     else:
         for status in statuses:
-            print(format_scan_status(status))
+            print(format_scan_status(status, tz=UTC if args.utc else None))
     return EXIT_OK
 
 

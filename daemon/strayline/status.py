@@ -10,7 +10,7 @@ from __future__ import annotations
 import json
 from collections.abc import Sequence
 from dataclasses import asdict, dataclass, replace
-from datetime import UTC, datetime, timedelta
+from datetime import UTC, datetime, timedelta, tzinfo
 from itertools import pairwise
 from pathlib import Path
 from typing import Any
@@ -223,17 +223,20 @@ def _period_text(seconds: float) -> str:
     return f"{seconds:.1f} s" if seconds < 10 else duration_text(seconds)
 
 
-def format_scan_status(status: ScanStatus, now: datetime | None = None) -> str:
+def format_scan_status(
+    status: ScanStatus, now: datetime | None = None, *, tz: tzinfo | None = None
+) -> str:
     """A few readable lines for one scan; ``now`` (default: the clock) dates the last line
     and tells a scan that stalled or stopped: no line for more than two of its own line
-    periods, or (without a pace) its ETA passed without its lines."""
+    periods, or (without a pace) its ETA passed without its lines. Times are given in
+    ``tz`` (default: this machine's zone) with their offset."""
     now = now if now is not None else datetime.now(UTC)
     fwd, bwd = status.lines_done["forward"], status.lines_done["backward"]
     traces = f"{fwd}/{status.n_lines_planned} lines" + (f" (+{bwd} backward)" if bwd else "")
     rate = f"{status.rate_lines_per_h:.0f} lines/h" if status.rate_lines_per_h else "rate n/a"
     complete = fwd >= status.n_lines_planned
     eta = (
-        f"ETA {status.eta:%Y-%m-%d %H:%M} UTC"
+        f"ETA {status.eta.astimezone(tz).isoformat(timespec='minutes')}"
         if status.eta and not complete
         else ("complete" if complete else "ETA n/a")
     )
@@ -266,5 +269,6 @@ def format_scan_status(status: ScanStatus, now: datetime | None = None) -> str:
         out.append(f"  {len(status.held)} line file(s) not in the store yet: {shown}")
     if status.quarantined:
         out.append(f"  {status.quarantined} file(s) in quarantine")
-    out.extend(f"  {line}" for line in status.last_alerts)
+    alerts = [format_alert(e, tz=tz) for e in status.last_events] or status.last_alerts
+    out.extend(f"  {line}" for line in alerts)
     return "\n".join(out)
