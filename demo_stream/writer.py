@@ -370,6 +370,7 @@ def run_scan(
                     y_m=float(renderer.y_m[k]),
                     temperature_k=config.tip.temperature_k,
                     profile=config.profile,
+                    tip_id=config.tip.tip_id,
                 )
                 if file_fault is None:
                     write_line_file(line, path)

@@ -837,6 +837,7 @@ class LinePipeline:
             config_json=store_config(config, profile),
             config_digest=config_digest(config),
             nv_axis_rad=(line.nv_theta_rad, line.nv_phi_rad),
+            tip_id=line.tip_id,
             compression_level=config.store.compression_level,
             chunk_lines=config.store.chunk_lines,
         )
