@@ -284,8 +284,7 @@ def _check_calibration(value: str) -> str:
     parts = value.split("/")
     if len(parts) > 2 or not all(NAME_PATTERN.fullmatch(part) for part in parts):
         raise ValueError(
-            f"expected {LATEST_CALIBRATION!r}, a calibration name or NAME/RECORD, each "
-            f"{NAME_RULE}"
+            f"expected {LATEST_CALIBRATION!r}, a calibration name or NAME/RECORD, each {NAME_RULE}"
         )
     return value
 

@@ -113,6 +113,7 @@ def _moment_transfer(
     pixel: tuple[float, float],
     standoff_m: float,
     k_cut: float,
+    *,
     theta_rad: float,
     phi_rad: float,
 ) -> tuple[np.ndarray, np.ndarray]:
@@ -133,9 +134,7 @@ def _moment_transfer(
     return transfer, k
 
 
-def _settle(
-    standoff_m: float, k_cut_rad_per_m: float | None
-) -> tuple[float, float]:
+def _settle(standoff_m: float, k_cut_rad_per_m: float | None) -> tuple[float, float]:
     d = positive_finite(standoff_m, "standoff_m")
     k_cut = default_k_cut_rad_per_m(d) if k_cut_rad_per_m is None else k_cut_rad_per_m
     return d, positive_finite(k_cut, "k_cut_rad_per_m")
@@ -224,7 +223,9 @@ def sheet_moment_from_projection_a(
     d, k_cut = _settle(standoff_m, k_cut_rad_per_m)
     pads = pad_amounts(b.shape, pad)
     padded = zero_pad(b - border_background(b)[0], pads)
-    transfer, _ = _moment_transfer(padded.shape, pixel, d, k_cut, nv_theta_rad, nv_phi_rad)
+    transfer, _ = _moment_transfer(
+        padded.shape, pixel, d, k_cut, theta_rad=nv_theta_rad, phi_rad=nv_phi_rad
+    )
     return crop(np.fft.ifft2(transfer * np.fft.fft2(padded)).real, pads)
 
 
@@ -376,7 +377,9 @@ def reconstruct_sheet_moment(
     pads = pad_amounts(b.shape, pad)
     background, background_sigma = border_background(b, mask, sigma)
     padded = zero_pad(b - background, pads)
-    transfer, k = _moment_transfer(padded.shape, pixel, d, k_cut, nv_theta_rad, nv_phi_rad)
+    transfer, k = _moment_transfer(
+        padded.shape, pixel, d, k_cut, theta_rad=nv_theta_rad, phi_rad=nv_phi_rad
+    )
     b_k = np.fft.fft2(padded)
     m_z = crop(np.fft.ifft2(transfer * b_k).real, pads)
     kernel = np.fft.ifft2(transfer).real  # h, origin at [0, 0]
@@ -389,11 +392,17 @@ def reconstruct_sheet_moment(
     variance = np.clip(variance, 0.0, None) + (offset_response * background_sigma) ** 2
     sigma_noise = np.sqrt(variance)
     if sigma_d > 0.0:
-        sigma_standoff = np.abs(crop(np.fft.ifft2(transfer * np.sinh(k * sigma_d) * b_k).real, pads))
+        sigma_standoff = np.abs(
+            crop(np.fft.ifft2(transfer * np.sinh(k * sigma_d) * b_k).real, pads)
+        )
     else:
         sigma_standoff = np.zeros_like(m_z)
     forward = projection_from_sheet_moment_t(
-        m_z, nv_theta_rad=nv_theta_rad, nv_phi_rad=nv_phi_rad, pixel_m=pixel, standoff_m=d,
+        m_z,
+        nv_theta_rad=nv_theta_rad,
+        nv_phi_rad=nv_phi_rad,
+        pixel_m=pixel,
+        standoff_m=d,
         pad=pad,
     )
     residual = np.full(b.shape, np.nan)

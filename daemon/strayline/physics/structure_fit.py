@@ -41,11 +41,11 @@ from dataclasses import dataclass, field
 from types import MappingProxyType
 
 import numpy as np
-from scipy.optimize import least_squares
+from scipy.optimize import OptimizeResult, least_squares
 
 from strayline.physics._fourier import positive_finite
-from strayline.physics.hamiltonian import nv_axis
 from strayline.physics.constants import MU0
+from strayline.physics.hamiltonian import nv_axis
 from strayline.physics.strayfield import line_current_field_t
 from strayline.physics.structure_field import (
     STRUCTURE_MODELS,
@@ -176,26 +176,38 @@ def _parameter_names(model: StructureModel) -> tuple[str, ...]:
     return (*names, "offset_t", "nv_theta_rad", "nv_phi_rad")
 
 
-def _evaluate(
-    values: Mapping[str, float],
-    model: StructureModel,
-    strength_name: str,
-    thickness_m: float | None,
-    x: np.ndarray,
-    y: np.ndarray,
-) -> np.ndarray:
-    structure = StraightStructure(
-        model=model,
-        standoff_m=values["standoff_m"],
-        strength_a=values[strength_name],
-        position_m=values["position_m"],
-        angle_rad=values["angle_rad"],
-        width_m=values.get("width_m"),
-        thickness_m=thickness_m,
-    )
-    return values["offset_t"] + structure_field_nv_t(
-        structure, x, y, values["nv_theta_rad"], values["nv_phi_rad"]
-    )
+@dataclass(frozen=True)
+class _Model:
+    """The model being fitted: which structure, its strength's name, a held thickness."""
+
+    model: StructureModel
+    strength_name: str
+    thickness_m: float | None
+
+    def evaluate(self, values: Mapping[str, float], x: np.ndarray, y: np.ndarray) -> np.ndarray:
+        """B_NV = c + u·B of the structure ``values`` describe, at points (x, y)."""
+        structure = StraightStructure(
+            model=self.model,
+            standoff_m=values["standoff_m"],
+            strength_a=values[self.strength_name],
+            position_m=values["position_m"],
+            angle_rad=values["angle_rad"],
+            width_m=values.get("width_m"),
+            thickness_m=self.thickness_m,
+        )
+        return values["offset_t"] + structure_field_nv_t(
+            structure, x, y, values["nv_theta_rad"], values["nv_phi_rad"]
+        )
+
+
+@dataclass(frozen=True, eq=False)
+class _Pixels:
+    """The pixels a fit uses: positions, field, and weight 1/σ² (or 1/σ)."""
+
+    x: np.ndarray
+    y: np.ndarray
+    b: np.ndarray
+    w: np.ndarray
 
 
 # -- starting values ----------------------------------------------------------------------
@@ -232,16 +244,17 @@ def _binned_profile(
 
 
 def _edge_basis(
-    s: np.ndarray, s0: np.ndarray, d: np.ndarray, u_n: float, u_z: float, t: float | None
+    s: np.ndarray, s0: np.ndarray, d: np.ndarray, u: tuple[float, float], t: float | None
 ) -> np.ndarray:
-    """u_n B_n + u_z B_z of a unit-strength edge (1 A) at each (s0, d) pair, on ``s``."""
+    """u_n B_n + u_z B_z of a unit-strength edge (1 A) at each (s0, d) pair, on ``s``;
+    ``u`` = (u_n, u_z)."""
     rel = s[None, None, :] - s0[:, None, None]
     dd = d[None, :, None]
     if t is None:
         b_n, b_z = line_current_field_t(rel, dd, 1.0)
     else:
         b_n, b_z = _slab_edge(rel, dd, t)
-    return u_n * b_n + u_z * b_z
+    return u[0] * b_n + u[1] * b_z
 
 
 def _slab_edge(rel: np.ndarray, d: np.ndarray, t: float) -> tuple[np.ndarray, np.ndarray]:
@@ -254,17 +267,16 @@ def _slab_edge(rel: np.ndarray, d: np.ndarray, t: float) -> tuple[np.ndarray, np
 
 
 def _best_edge(
-    s: np.ndarray,
-    b: np.ndarray,
-    w: np.ndarray,
+    profile: tuple[np.ndarray, np.ndarray, np.ndarray],
     s0_grid: np.ndarray,
     d_grid: np.ndarray,
-    u_n: float,
-    u_z: float,
+    u: tuple[float, float],
     t: float | None,
 ) -> tuple[float, float, float, float]:
-    """(s0, d, strength, offset) of the one edge that best fits a binned profile."""
-    g = _edge_basis(s, s0_grid, d_grid, u_n, u_z, t)  # (n_s0, n_d, n_bins)
+    """(s0, d, strength, offset) of the one edge that best fits a binned profile
+    (centres, means, weights)."""
+    s, b, w = profile
+    g = _edge_basis(s, s0_grid, d_grid, u, t)  # (n_s0, n_d, n_bins)
     sw, sb, sbb = w.sum(), (w * b).sum(), (w * b * b).sum()
     sg = (g * w).sum(axis=-1)
     sgg = (g * g * w).sum(axis=-1)
@@ -282,27 +294,27 @@ def _best_edge(
 
 def _start(
     model: StructureModel,
-    x: np.ndarray,
-    y: np.ndarray,
-    b: np.ndarray,
-    w: np.ndarray,
+    pixels: _Pixels,
     pitch_m: float,
     axis: tuple[float, float],
     thickness_m: float | None,
 ) -> dict[str, float]:
-    """Starting values (SI) from the map itself (module docstring)."""
-    angle = _best_direction(x, y, b, w, pitch_m)
+    """Starting values (SI) from the map itself (module docstring); ``pixels.w`` = 1/σ²."""
+    x, y = pixels.x, pixels.y
+    angle = _best_direction(x, y, pixels.b, pixels.w, pitch_m)
     s = x * np.sin(angle) - y * np.cos(angle)
-    centres, means, weights = _binned_profile(s, b, w, pitch_m)
+    profile = _binned_profile(s, pixels.b, pixels.w, pitch_m)
+    centres = profile[0]
     ux, uy, uz = nv_axis(*axis)
-    u_n = float(ux * np.sin(angle) - uy * np.cos(angle))
+    u = (float(ux * np.sin(angle) - uy * np.cos(angle)), float(uz))
     s0_grid = centres[:: max(1, centres.size // 200)]
     span = float(centres.max() - centres.min()) if centres.size > 1 else pitch_m
     d_grid = np.geomspace(max(0.3 * pitch_m, 1e-9), max(span, 2 * pitch_m), 40)
-    s1, d1, amp1, off1 = _best_edge(centres, means, weights, s0_grid, d_grid, u_n, float(uz), thickness_m)
+    s1, d1, amp1, off1 = _best_edge(profile, s0_grid, d_grid, u, thickness_m)
+    strength_name = STRUCTURE_MODELS[model]
     start = {
         "standoff_m": d1,
-        STRUCTURE_MODELS[model]: amp1,
+        strength_name: amp1,
         "position_m": s1,
         "angle_rad": angle,
         "offset_t": off1,
@@ -310,17 +322,15 @@ def _start(
         "nv_phi_rad": axis[1],
     }
     if model == "stripe":
-        g1 = _edge_basis(centres, np.array([s1]), np.array([d1]), u_n, float(uz), thickness_m)
-        left = means - off1 - amp1 * g1[0, 0]
-        s2, _, _, _ = _best_edge(
-            centres, left, weights, s0_grid, np.array([d1]), u_n, float(uz), thickness_m
-        )
+        g1 = _edge_basis(centres, np.array([s1]), np.array([d1]), u, thickness_m)
+        left = (centres, profile[1] - off1 - amp1 * g1[0, 0], profile[2])
+        s2, _, _, _ = _best_edge(left, s0_grid, np.array([d1]), u, thickness_m)
         if abs(s2 - s1) < pitch_m:  # no second edge to be seen: a stripe wider than the map
             s2 = s1 - span
         start["position_m"] = 0.5 * (s1 + s2)
         start["width_m"] = abs(s1 - s2)
         # The +w/2 edge carries +I_s along t̂: the first edge's sign if it is the right one.
-        start[STRUCTURE_MODELS[model]] = amp1 if s1 > s2 else -amp1
+        start[strength_name] = amp1 if s1 > s2 else -amp1
     return start
 
 
@@ -430,26 +440,27 @@ def fit_structure_map(
     gx, gy = np.meshgrid(x_axis, y_axis)
     pitch = _pitch(x_axis, y_axis)
     axis = (float(nv_theta_rad), float(nv_phi_rad))
+    weight = np.where(use, 1.0 / np.where(use, sigma, 1.0), 0.0)
+
+    def pixels(mask: np.ndarray) -> _Pixels:
+        return _Pixels(gx[mask], gy[mask], b[mask], weight[mask])
+
     start = _start(
-        model, gx[use], gy[use], b[use], 1.0 / sigma[use] ** 2, pitch, axis, thickness_m
+        model, _Pixels(gx[use], gy[use], b[use], weight[use] ** 2), pitch, axis, thickness_m
     )
     if strength_a is not None:
         start[strength_name] = float(strength_a)
-
-    values, chi2, jac, result = _solve(
-        start, fitted, model, strength_name, thickness_m, gx, gy, b, sigma, use
-    )
+    setup = _Model(model, strength_name, thickness_m)
+    values, chi2, jac, result = _solve(setup, start, fitted, pixels(use))
     n_clipped = 0
-    residual = (_evaluate(values, model, strength_name, thickness_m, gx, gy) - b) / sigma
+    residual = (setup.evaluate(values, gx, gy) - b) / sigma
     dof = int(np.count_nonzero(use)) - len(fitted)
     scale = math.sqrt(max(1.0, chi2 / dof)) if dof > 0 else 1.0
     outliers = use & (np.abs(residual) > clip_z * scale)
     if np.any(outliers):
         n_clipped = int(np.count_nonzero(outliers))
         use = use & ~outliers
-        values, chi2, jac, result = _solve(
-            values, fitted, model, strength_name, thickness_m, gx, gy, b, sigma, use
-        )
+        values, chi2, jac, result = _solve(setup, values, fitted, pixels(use))
         dof = int(np.count_nonzero(use)) - len(fitted)
 
     chi2_red = chi2 / dof if dof > 0 else float("nan")
@@ -460,7 +471,7 @@ def fit_structure_map(
     scales = np.array([_SCALE[n] for n in fitted])
     covariance = cov_internal * np.outer(scales, scales)
     _normalise(values, model, strength_name)
-    model_map = _evaluate(values, model, strength_name, thickness_m, gx, gy)
+    model_map = setup.evaluate(values, gx, gy)
     return StructureFit(
         model=model,
         values=MappingProxyType(dict(values)),
@@ -491,19 +502,13 @@ def _pitch(x_axis: np.ndarray, y_axis: np.ndarray) -> float:
 
 
 def _solve(
+    setup: _Model,
     start: Mapping[str, float],
     fitted: tuple[str, ...],
-    model: StructureModel,
-    strength_name: str,
-    thickness_m: float | None,
-    gx: np.ndarray,
-    gy: np.ndarray,
-    b: np.ndarray,
-    sigma: np.ndarray,
-    use: np.ndarray,
-) -> tuple[dict[str, float], float, np.ndarray, object]:
-    """Least squares over ``fitted`` (internal units); the rest held at ``start``."""
-    x, y, data, weight = gx[use], gy[use], b[use], 1.0 / sigma[use]
+    pixels: _Pixels,
+) -> tuple[dict[str, float], float, np.ndarray, OptimizeResult]:
+    """Least squares over ``fitted`` (internal units); the rest held at ``start``;
+    ``pixels.w`` = 1/σ."""
     values = dict(start)
 
     def unpack(p: np.ndarray) -> dict[str, float]:
@@ -513,19 +518,24 @@ def _solve(
         return out
 
     def residuals(p: np.ndarray) -> np.ndarray:
-        return (_evaluate(unpack(p), model, strength_name, thickness_m, x, y) - data) * weight
+        return (setup.evaluate(unpack(p), pixels.x, pixels.y) - pixels.b) * pixels.w
 
     p0 = np.array([values[n] / _SCALE[n] for n in fitted])
     lower = np.array([_BOUNDS.get(n, (-np.inf, np.inf))[0] for n in fitted])
     upper = np.array([_BOUNDS.get(n, (-np.inf, np.inf))[1] for n in fitted])
-    p0 = np.clip(p0, lower, upper)
     result = least_squares(
-        residuals, p0, bounds=(lower, upper), jac="3-point", method="trf", x_scale="jac",
-        xtol=1e-10, ftol=1e-10, gtol=1e-10, max_nfev=200 * (len(fitted) + 1),
+        residuals,
+        np.clip(p0, lower, upper),
+        bounds=(lower, upper),
+        jac="3-point",
+        method="trf",
+        x_scale="jac",
+        xtol=1e-10,
+        ftol=1e-10,
+        gtol=1e-10,
+        max_nfev=200 * (len(fitted) + 1),
     )
-    best = unpack(result.x)
-    chi2 = float(np.sum(result.fun**2))
-    return best, chi2, np.asarray(result.jac), result
+    return unpack(result.x), float(np.sum(result.fun**2)), np.asarray(result.jac), result
 
 
 def _covariance(jac: np.ndarray) -> np.ndarray:

@@ -155,6 +155,11 @@ class WallCutFit:
     dof : int
     sigma_scaled : bool
         σ and thresholds scaled by χ²_red > 1.
+    u_n, u_z : float
+        The NV axis components the fit used.
+    covariance : ndarray, shape (4, 4)
+        Covariance of position, moment, offset and slope (SI; the stand-off's part not
+        included), for the model's band.
     """
 
     kind: CutKind
@@ -169,95 +174,134 @@ class WallCutFit:
     chi2: float
     dof: int
     sigma_scaled: bool
+    u_n: float
+    u_z: float
+    covariance: np.ndarray
+    _sign: float = 1.0  # −1: a down-to-up wall, reported with m_s ≥ 0
 
     @property
     def chi2_red(self) -> float:
         return self.chi2 / self.dof if self.dof > 0 else float("nan")
 
+    def curve_t(self, s_m: ArrayLike) -> tuple[np.ndarray, np.ndarray]:
+        """The best-fit B_NV along the cut and its 1σ band (from ``covariance``), T.
 
-def _model(
-    p: np.ndarray, s: np.ndarray, kind: CutKind, d: float, width: float, u: tuple[float, float]
-) -> np.ndarray:
-    position, moment, offset, slope = p * _SCALE
-    return (
-        offset
-        + slope * (s - position)
-        + wall_profile_field_nv_t(
-            s, kind=kind, standoff_m=d, sheet_moment_a=moment, position_m=position,
-            width_m=width, u_n=u[0], u_z=u[1],
+        Parameters
+        ----------
+        s_m : array_like, shape (n,)
+
+        Returns
+        -------
+        value, sigma : ndarray, shape (n,)
+        """
+        s = np.asarray(s_m, dtype=np.float64)
+        v = self.values
+        moment = v["sheet_moment_a"]
+        p = np.array([v["position_m"], moment, v["offset_t"], v["slope_t_per_m"]]) / _SCALE
+        # A wall was reported with m_s ≥ 0: evaluate with the sign the fit had.
+        p[1] *= self._sign
+        cut = _Cut(s, s, s, self.kind, (self.u_n, self.u_z))
+        d, width = self.standoff_m, v["width_m"]
+        value = cut.model(p, d, width)
+        jac = np.empty((s.size, 4))
+        for i in range(4):
+            step = np.zeros(4)
+            step[i] = 1e-4 * max(1.0, abs(p[i]))
+            jac[:, i] = (cut.model(p + step, d, width) - cut.model(p - step, d, width)) / (
+                2 * step[i] * _SCALE[i]
+            )
+        band = np.sqrt(np.clip(np.einsum("ni,ij,nj->n", jac, self.covariance, jac), 0.0, None))
+        return value, band
+
+
+@dataclass(frozen=True, eq=False)
+class _Cut:
+    """The samples of a cut and what the model holds: kind, NV axis components."""
+
+    s: np.ndarray
+    b: np.ndarray
+    w: np.ndarray  # 1/σ
+    kind: CutKind
+    u: tuple[float, float]
+
+    def model(
+        self, p: np.ndarray, d: float, width: float, s: np.ndarray | None = None
+    ) -> np.ndarray:
+        """B_NV for internal parameters ``p`` (position, moment, offset, slope)."""
+        s = self.s if s is None else s
+        position, moment, offset, slope = p * _SCALE
+        return (
+            offset
+            + slope * (s - position)
+            + wall_profile_field_nv_t(
+                s,
+                kind=self.kind,
+                standoff_m=d,
+                sheet_moment_a=moment,
+                position_m=position,
+                width_m=width,
+                u_n=self.u[0],
+                u_z=self.u[1],
+            )
         )
-    )
 
+    def start(self, d: float) -> np.ndarray:
+        """Sharp model on a grid of positions; offset, slope and moment solved linearly."""
+        s, b, w = self.s, self.b, self.w
+        best, best_rss = None, np.inf
+        for s0 in s:
+            g = wall_profile_field_nv_t(
+                s,
+                kind=self.kind,
+                standoff_m=d,
+                sheet_moment_a=1.0,
+                position_m=float(s0),
+                width_m=0.0,
+                u_n=self.u[0],
+                u_z=self.u[1],
+            )
+            design = np.column_stack([np.ones_like(s), s - s0, g]) * w[:, None]
+            coef, *_ = np.linalg.lstsq(design, b * w, rcond=None)
+            rss = float(np.sum((design @ coef - b * w) ** 2))
+            if rss < best_rss:
+                best_rss, best = rss, np.array([s0, coef[2], coef[0], coef[1]])
+        assert best is not None
+        return best / _SCALE
 
-def _start(
-    s: np.ndarray, b: np.ndarray, w: np.ndarray, kind: CutKind, d: float, u: tuple[float, float]
-) -> np.ndarray:
-    """Sharp model on a grid of positions; offset, slope and moment solved linearly."""
-    best, best_rss = None, np.inf
-    for s0 in s:
-        g = wall_profile_field_nv_t(
-            s, kind=kind, standoff_m=d, sheet_moment_a=1.0, position_m=float(s0),
-            width_m=0.0, u_n=u[0], u_z=u[1],
+    def fit_at(
+        self, p0: np.ndarray, d: float, width: float
+    ) -> tuple[np.ndarray, float, np.ndarray]:
+        """Position, moment, offset and slope at a held d and δ."""
+        result = least_squares(
+            lambda p: (self.model(p, d, width) - self.b) * self.w,
+            p0,
+            jac="3-point",
+            x_scale="jac",
+            xtol=1e-10,
+            ftol=1e-10,
+            gtol=1e-10,
         )
-        design = np.column_stack([np.ones_like(s), s - s0, g]) * w[:, None]
-        coef, *_ = np.linalg.lstsq(design, b * w, rcond=None)
-        rss = float(np.sum((design @ coef - b * w) ** 2))
-        if rss < best_rss:
-            best_rss, best = rss, np.array([s0, coef[2], coef[0], coef[1]])
-    assert best is not None
-    return best / _SCALE
+        return result.x, float(np.sum(result.fun**2)), np.asarray(result.jac)
 
-
-def _fit_at(
-    p0: np.ndarray,
-    s: np.ndarray,
-    b: np.ndarray,
-    w: np.ndarray,
-    kind: CutKind,
-    d: float,
-    width: float,
-    u: tuple[float, float],
-) -> tuple[np.ndarray, float, np.ndarray]:
-    result = least_squares(
-        lambda p: (_model(p, s, kind, d, width, u) - b) * w,
-        p0,
-        jac="3-point",
-        x_scale="jac",
-        xtol=1e-10,
-        ftol=1e-10,
-        gtol=1e-10,
-    )
-    return result.x, float(np.sum(result.fun**2)), np.asarray(result.jac)
-
-
-def _width_fit(
-    p0: np.ndarray,
-    width0: float,
-    s: np.ndarray,
-    b: np.ndarray,
-    w: np.ndarray,
-    kind: CutKind,
-    d: float,
-    u: tuple[float, float],
-) -> tuple[np.ndarray, float, np.ndarray]:
-    """All parameters and δ (in nm, last) free, δ ≥ 0."""
-    x0 = np.append(p0, max(width0 / 1e-9, 1e-3))
-
-    def residual(x: np.ndarray) -> np.ndarray:
-        return (_model(x[:4], s, kind, d, x[4] * 1e-9, u) - b) * w
-
-    upper = _MAX_WIDTH_STANDOFFS * d / 1e-9
-    result = least_squares(
-        residual,
-        np.clip(x0, [-np.inf] * 4 + [0.0], [np.inf] * 4 + [upper]),
-        bounds=([-np.inf] * 4 + [0.0], [np.inf] * 4 + [upper]),
-        jac="3-point",
-        x_scale="jac",
-        xtol=1e-10,
-        ftol=1e-10,
-        gtol=1e-10,
-    )
-    return result.x, float(np.sum(result.fun**2)), np.asarray(result.jac)
+    def width_fit(
+        self, p0: np.ndarray, width0: float, d: float
+    ) -> tuple[np.ndarray, float, np.ndarray]:
+        """All parameters and δ (in nm, last) free, 0 ≤ δ ≤ 8 d."""
+        x0 = np.append(p0, max(width0 / 1e-9, 1e-3))
+        upper = _MAX_WIDTH_STANDOFFS * d / 1e-9
+        lower_bounds = [-np.inf] * 4 + [0.0]
+        upper_bounds = [np.inf] * 4 + [upper]
+        result = least_squares(
+            lambda x: (self.model(x[:4], d, x[4] * 1e-9) - self.b) * self.w,
+            np.clip(x0, lower_bounds, upper_bounds),
+            bounds=(lower_bounds, upper_bounds),
+            jac="3-point",
+            x_scale="jac",
+            xtol=1e-10,
+            ftol=1e-10,
+            gtol=1e-10,
+        )
+        return result.x, float(np.sum(result.fun**2)), np.asarray(result.jac)
 
 
 def _cov(jac: np.ndarray) -> np.ndarray:
@@ -310,28 +354,24 @@ def fit_wall_cut(
     sig_all = np.asarray(sigma_t, dtype=np.float64)
     keep = np.isfinite(s_all) & np.isfinite(b_all) & np.isfinite(sig_all) & (sig_all > 0)
     if np.count_nonzero(keep) < 8:
-        raise ValueError(
-            f"a cut needs at least 8 measured samples; found {np.count_nonzero(keep)}"
-        )
-    s, b, w = s_all[keep], b_all[keep], 1.0 / sig_all[keep]
-    u = (float(u_n), float(u_z))
+        raise ValueError(f"a cut needs at least 8 measured samples; found {np.count_nonzero(keep)}")
+    cut = _Cut(s_all[keep], b_all[keep], 1.0 / sig_all[keep], kind, (float(u_n), float(u_z)))
 
-    p = _start(s, b, w, kind, d, u)
+    p = cut.start(d)
     profile: list[tuple[float, float]] = []
     fits: list[np.ndarray] = []
     for factor in _WIDTH_GRID:
-        p, chi2, _ = _fit_at(p, s, b, w, kind, d, factor * d, u)
+        p, chi2, _ = cut.fit_at(p, d, factor * d)
         profile.append((factor * d, chi2))
         fits.append(p)
     widths = np.array([pt[0] for pt in profile])
     chi2s = np.array([pt[1] for pt in profile])
     i_best = int(np.argmin(chi2s))
     n_free = 5
-    dof = s.size - n_free
-    x, chi2_best, jac = _width_fit(fits[i_best], widths[i_best], s, b, w, kind, d, u)
+    dof = cut.s.size - n_free
+    x, chi2_best, jac = cut.width_fit(fits[i_best], widths[i_best], d)
     if chi2_best > chi2s[i_best]:  # the grid point was better: keep it
         x, chi2_best = np.append(fits[i_best], widths[i_best] / 1e-9), float(chi2s[i_best])
-        _, _, jac = _width_fit(fits[i_best], widths[i_best], s, b, w, kind, d, u)
     width_best = float(x[4]) * 1e-9
     chi2_red = chi2_best / dof if dof > 0 else float("nan")
     scale = max(1.0, chi2_red) if dof > 0 else 1.0
@@ -347,7 +387,7 @@ def fit_wall_cut(
         width_sigma = float(math.sqrt(max(cov[4, 4], 0.0))) * 1e-9
         core = x[:4]
     else:  # δ pinned at its best value: σ of the rest conditional on it
-        core, _, jac4 = _fit_at(x[:4], s, b, w, kind, d, width_best, u)
+        core, _, jac4 = cut.fit_at(x[:4], d, width_best)
         cov = _cov(jac4) * scale
         width_sigma = None
     sig = np.sqrt(np.clip(np.diag(cov)[:4], 0.0, None)) * _SCALE
@@ -355,13 +395,14 @@ def fit_wall_cut(
     values["width_m"] = width_best
     if sigma_d > 0:
         shifted = [
-            _fit_at(core, s, b, w, kind, d + step, width_best, u)[0] * _SCALE
-            for step in (sigma_d, -sigma_d)
+            cut.fit_at(core, d + step, width_best)[0] * _SCALE for step in (sigma_d, -sigma_d)
         ]
         sig = np.hypot(sig, 0.5 * np.abs(shifted[0] - shifted[1]))
     sigmas = dict(zip(_NAMES, sig.tolist(), strict=True))
+    sign = 1.0
     if kind == "wall" and values["sheet_moment_a"] < 0:  # down-to-up: report m_s ≥ 0
         values["sheet_moment_a"] = -values["sheet_moment_a"]
+        sign = -1.0
     return WallCutFit(
         kind=kind,
         standoff_m=d,
@@ -375,6 +416,10 @@ def fit_wall_cut(
         chi2=chi2_best,
         dof=dof,
         sigma_scaled=bool(dof > 0 and chi2_red > 1.0),
+        u_n=cut.u[0],
+        u_z=cut.u[1],
+        covariance=cov[:4, :4] * np.outer(_SCALE, _SCALE),
+        _sign=sign,
     )
 
 

@@ -1,6 +1,21 @@
-"""What is made once a scan is complete: quick-look images, vector field, sheet moment,
-report; written beside the store and remade any time (``strayline products``)."""
+"""What is made once a scan is complete: quick-look images, vector field, sheet moment
+with its error bars, report; written beside the store and remade any time (``strayline
+products``). Tip calibrations on a known structure (``strayline calibrate``) and line cuts
+fitted with a wall model (``strayline cut``)."""
 
+from strayline.products.calibration import (
+    CalibrationFit,
+    CalibrationRecord,
+    CalibrationUse,
+    calibrate_store,
+    calibrations_dir,
+    find_calibration,
+    keep_calibration,
+    read_calibration,
+    use_calibration,
+    write_calibration,
+)
+from strayline.products.cut import CutProduct, cut_store
 from strayline.products.make import (
     REPORT_JSON,
     REPORT_MD,
@@ -17,10 +32,22 @@ __all__ = [
     "REPORT_JSON",
     "REPORT_MD",
     "VECTOR_ZARR",
+    "CalibrationFit",
+    "CalibrationRecord",
+    "CalibrationUse",
+    "CutProduct",
     "ProductFile",
     "ProductsReport",
     "SkippedProduct",
+    "calibrate_store",
+    "calibrations_dir",
+    "cut_store",
+    "find_calibration",
+    "keep_calibration",
     "make_products",
     "products_dir",
+    "read_calibration",
     "remake_products",
+    "use_calibration",
+    "write_calibration",
 ]

@@ -37,6 +37,7 @@ from strayline.errors import CalibrationError, StoreError
 from strayline.lines import NAME_PATTERN, NAME_RULE
 from strayline.physics.structure_field import STRUCTURE_MODELS, StructureModel
 from strayline.physics.structure_fit import PARAMETER_UNITS, StructureFit, fit_structure_map
+from strayline.products._json import finite_json
 from strayline.products._read import StoreSnapshot, nv_axis_from_store, read_snapshot
 
 __all__ = [
@@ -49,7 +50,9 @@ __all__ = [
     "calibrate_store",
     "calibrations_dir",
     "find_calibration",
+    "keep_calibration",
     "read_calibration",
+    "standoff_choice",
     "use_calibration",
     "write_calibration",
 ]
@@ -143,7 +146,7 @@ class CalibrationRecord:
 
     def to_json_dict(self) -> dict[str, Any]:
         """The record as written (JSON-ready; non-finite numbers as null)."""
-        return _finite(
+        return finite_json(
             {
                 "format": RECORD_FORMAT,
                 "format_version": RECORD_FORMAT_VERSION,
@@ -189,18 +192,6 @@ class CalibrationRecord:
         )
 
 
-def _finite(value: Any) -> Any:
-    if isinstance(value, dict):
-        return {k: _finite(v) for k, v in value.items()}
-    if isinstance(value, list | tuple):
-        return [_finite(v) for v in value]
-    if isinstance(value, float | np.floating):
-        return float(value) if math.isfinite(value) else None
-    if isinstance(value, np.integer | np.bool_):
-        return value.item()
-    return value
-
-
 def _utc_now() -> datetime:
     return datetime.now(UTC)
 
@@ -213,7 +204,20 @@ def _check_name(name: str, what: str) -> str:
 
 @dataclass(frozen=True, eq=False)
 class CalibrationFit:
-    """A calibration and the fit it came from (maps for a check figure)."""
+    """A calibration and the fit it came from (maps for a check figure).
+
+    Attributes
+    ----------
+    record : CalibrationRecord
+        Not yet written (see :func:`keep_calibration`).
+    result : StructureFit
+    b_nv_t, sigma_t : ndarray, shape (ny, nx)
+        The map fitted and its 1σ, T.
+    x_m, y_m : ndarray
+        Its axes, m.
+    recorded_state_dir : Path or None
+        The state folder of the daemon that wrote the scan (from the store's config).
+    """
 
     record: CalibrationRecord
     result: StructureFit
@@ -221,6 +225,7 @@ class CalibrationFit:
     sigma_t: np.ndarray
     x_m: np.ndarray
     y_m: np.ndarray
+    recorded_state_dir: Path | None = None
 
 
 def calibrate_store(
@@ -313,8 +318,21 @@ def calibrate_store(
         )
     except ValueError as error:
         raise CalibrationError(f"{snapshot.path.name}: {error}") from None
-    record = _record(snapshot, key, trace_name, result, strength_a, thickness_m, clock())
-    return CalibrationFit(record, result, b, sigma, trace.x_m, trace.y_m)
+    record = _record(
+        snapshot,
+        key,
+        trace_name,
+        result,
+        strength_a=strength_a,
+        thickness_m=thickness_m,
+        made=clock(),
+    )
+    config = snapshot.attrs.get("config")
+    paths = config.get("paths") if isinstance(config, dict) else None
+    state = paths.get("state_dir") if isinstance(paths, dict) else None
+    return CalibrationFit(
+        record, result, b, sigma, trace.x_m, trace.y_m, None if not state else Path(str(state))
+    )
 
 
 def _record(
@@ -322,6 +340,7 @@ def _record(
     key: str,
     direction: str,
     result: StructureFit,
+    *,
     strength_a: float | None,
     thickness_m: float | None,
     made: datetime,
@@ -380,6 +399,49 @@ def write_calibration(state_dir: Path, record: CalibrationRecord) -> Calibration
     except OSError as error:
         raise StoreError(f"{folder}: writing the calibration failed: {error}") from error
     return kept
+
+
+def keep_calibration(
+    made: CalibrationFit, state_dir: Path | None = None, *, figure: bool = True
+) -> tuple[CalibrationRecord, Path | None]:
+    """Write a calibration (:func:`write_calibration`) and, with ``figure``, its check
+    figure beside it (``<record_id>.png``: data, model, normalised residual).
+
+    Parameters
+    ----------
+    made : CalibrationFit
+    state_dir : Path, optional
+        Default: the state folder of the daemon that wrote the scan.
+    figure : bool
+
+    Returns
+    -------
+    record, figure_path
+        The record as written (its path set), and the figure's path (None without one).
+
+    Raises
+    ------
+    CalibrationError
+        No state folder given and none recorded in the store.
+    StoreError
+        Writing failed.
+    """
+    folder = state_dir if state_dir is not None else made.recorded_state_dir
+    if folder is None:
+        raise CalibrationError(
+            f"{Path(made.record.source_store).name}: the store records no state folder; give one"
+        )
+    record = write_calibration(folder, made.record)
+    if not figure or record.path is None:
+        return record, None
+    from strayline.products._fit_figures import calibration_figure, save_figure_png
+
+    png = record.path.with_suffix(".png")
+    try:
+        save_figure_png(calibration_figure(made), png)
+    except OSError as error:
+        raise StoreError(f"{png}: writing the calibration figure failed: {error}") from error
+    return record, png
 
 
 def _replace(record: CalibrationRecord, **changes: Any) -> CalibrationRecord:
@@ -450,9 +512,7 @@ def _records(folder: Path) -> list[Path]:
     return sorted(found, key=order)
 
 
-def find_calibration(
-    state_dir: Path, setting: str, tip_id: str | None = None
-) -> CalibrationRecord:
+def find_calibration(state_dir: Path, setting: str, tip_id: str | None = None) -> CalibrationRecord:
     """The calibration a setting names.
 
     Parameters
@@ -521,3 +581,69 @@ def use_calibration(state_dir: Path, setting: str, tip_id: str | None) -> Calibr
         return CalibrationUse(setting, find_calibration(state_dir, setting, tip_id))
     except CalibrationError as error:
         return CalibrationUse(setting, None, str(error))
+
+
+def standoff_choice(
+    store_config: Mapping[str, Any],
+    tip_id: str | None,
+    *,
+    standoff_m: float | None = None,
+    calibration: str | None = None,
+    state_dir: Path | None = None,
+) -> tuple[float | None, CalibrationUse | None]:
+    """Where a remade product takes the stand-off from: what is given, else the
+    configuration recorded in the store.
+
+    Parameters
+    ----------
+    store_config : Mapping
+        The configuration the store recorded (its ``config`` attribute).
+    tip_id : str or None
+        The scan's tip.
+    standoff_m : float, optional
+        A stand-off given, m.
+    calibration : str, optional
+        A calibration given (as :func:`find_calibration` takes it); it must be found.
+    state_dir : Path, optional
+        Where calibrations are kept; default the recorded ``paths.state_dir``.
+
+    Returns
+    -------
+    standoff_m, use
+        The given stand-off (``use`` None), or the calibration to use (``standoff_m``
+        None), or the recorded ``products.standoff_nm`` / ``products.calibration`` (a
+        recorded calibration that cannot be found comes back with its reason), or
+        (None, None).
+
+    Raises
+    ------
+    ValueError
+        Both a stand-off and a calibration are given.
+    CalibrationError
+        The calibration given cannot be found or read.
+    """
+    if standoff_m is not None and calibration is not None:
+        raise ValueError("give a standoff or a calibration, not both")
+    paths = store_config.get("paths")
+    recorded_state = paths.get("state_dir") if isinstance(paths, Mapping) else None
+    if state_dir is None and recorded_state:
+        state_dir = Path(str(recorded_state))
+    if calibration is not None:
+        if state_dir is None and not calibration.endswith(".json"):
+            raise CalibrationError(
+                f"calibration {calibration!r}: the store records no state folder; give one"
+            )
+        record = find_calibration(state_dir or Path(), calibration, tip_id)
+        return None, CalibrationUse(calibration, record)
+    if standoff_m is not None:
+        return standoff_m, None
+    section = store_config.get("products")
+    section = section if isinstance(section, Mapping) else {}
+    if section.get("standoff_nm") is not None:
+        return float(section["standoff_nm"]) * 1e-9, None
+    if section.get("calibration"):
+        setting = str(section["calibration"])
+        if state_dir is None:
+            return None, CalibrationUse(setting, None, "the store records no state folder")
+        return None, use_calibration(state_dir, setting, tip_id)
+    return None, None

@@ -49,11 +49,10 @@ import zarr
 import strayline
 from strayline._atomic import write_text_atomic
 from strayline.alerts import read_alert_log
-from strayline.errors import CalibrationError, StoreError
+from strayline.errors import StoreError
 from strayline.lines import DIRECTIONS
 from strayline.products._maps import TraceMaps, VectorField, moment_arrays, reconstruct_vector
 from strayline.products._read import StoreSnapshot, nv_axis_from_store, read_snapshot
-from strayline.products.calibration import CalibrationUse, find_calibration, use_calibration
 from strayline.products._report import (
     REPORT_FORMAT,
     REPORT_FORMAT_VERSION,
@@ -63,6 +62,7 @@ from strayline.products._report import (
     trace_summary,
     vector_summary,
 )
+from strayline.products.calibration import CalibrationUse, standoff_choice
 
 __all__ = [
     "REPORT_JSON",
@@ -183,27 +183,13 @@ def remake_products(
     snapshot = read_snapshot(store_path)
     config = _mapping(snapshot.attrs.get("config"))
     section = _mapping(config.get("products"))
-    if standoff_m is not None and calibration is not None:
-        raise ValueError("give a standoff or a calibration, not both")
-    if state_dir is None and _mapping(config.get("paths")).get("state_dir"):
-        state_dir = Path(_mapping(config.get("paths"))["state_dir"])
-    use: CalibrationUse | None = None
-    if calibration is not None:  # asked for here: it must be found
-        if state_dir is None and not calibration.endswith(".json"):
-            raise CalibrationError(
-                f"calibration {calibration!r}: the store records no state folder; give one"
-            )
-        record = find_calibration(state_dir or Path(), calibration, snapshot.reader.tip_id)
-        use = CalibrationUse(calibration, record)
-    elif standoff_m is None and section.get("standoff_nm") is not None:
-        standoff_m = float(section["standoff_nm"]) * 1e-9
-    elif standoff_m is None and section.get("calibration"):
-        setting = str(section["calibration"])
-        use = (
-            CalibrationUse(setting, None, "the store records no state folder to look in")
-            if state_dir is None
-            else use_calibration(state_dir, setting, snapshot.reader.tip_id)
-        )
+    standoff_m, use = standoff_choice(
+        config,
+        snapshot.reader.tip_id,
+        standoff_m=standoff_m,
+        calibration=calibration,
+        state_dir=state_dir,
+    )
     if images is None:
         images = bool(section.get("images", True))
     if out_dir is None:
@@ -361,7 +347,15 @@ def _make(
                     f"{direction} trace: field along the NV axis, PL rate, contrast, fit status",
                 )
             )
-        vector = _vector(trace, axis, axis_ok, standoff_m, skipped, standoff_sigma_m, calibration)
+        vector = _vector(
+            trace,
+            axis,
+            axis_ok,
+            standoff_m,
+            skipped,
+            standoff_sigma_m=standoff_sigma_m,
+            calibration=calibration,
+        )
         summary["vector"] = None if vector is None else vector_summary(vector)
         if vector is None:
             continue
@@ -376,7 +370,15 @@ def _make(
     _remove_stale(out_dir, {f.path.name for f in files})
     if vectors:
         path = out_dir / VECTOR_ZARR
-        _write_vector_zarr(path, snapshot, vectors, axis, standoff_m, standoff_sigma_m, calibration)
+        _write_vector_zarr(
+            path,
+            snapshot,
+            vectors,
+            axis,
+            standoff_m,
+            standoff_sigma_m=standoff_sigma_m,
+            calibration=calibration,
+        )
         files.append(
             ProductFile(
                 "vector_field",
@@ -425,6 +427,7 @@ def _vector(
     axis_ok: bool,
     standoff_m: float | None,
     skipped: list[SkippedProduct],
+    *,
     standoff_sigma_m: float = 0.0,
     calibration: CalibrationUse | None = None,
 ) -> VectorField | None:
@@ -581,6 +584,7 @@ def _write_vector_zarr(
     vectors: dict[str, VectorField],
     axis: tuple[float, float],
     standoff_m: float | None,
+    *,
     standoff_sigma_m: float = 0.0,
     calibration: CalibrationUse | None = None,
 ) -> None:
