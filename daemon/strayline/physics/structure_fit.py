@@ -334,6 +334,21 @@ def _start(
     return start
 
 
+def _hold_strength(
+    start: dict[str, float], model: StructureModel, strength_name: str, strength_a: float
+) -> None:
+    """Put a known strength into the starting values without turning the field over: an
+    edge or wire whose start has the other sign is the same field turned by π; a stripe's
+    sign is its magnetisation (up or down), kept from the map."""
+    if model == "stripe":
+        start[strength_name] = math.copysign(abs(strength_a), start[strength_name])
+        return
+    if start[strength_name] * strength_a < 0:
+        start["angle_rad"] += math.pi
+        start["position_m"] = -start["position_m"]
+    start[strength_name] = strength_a
+
+
 # -- the fit ------------------------------------------------------------------------------
 
 
@@ -449,7 +464,7 @@ def fit_structure_map(
         model, _Pixels(gx[use], gy[use], b[use], weight[use] ** 2), pitch, axis, thickness_m
     )
     if strength_a is not None:
-        start[strength_name] = float(strength_a)
+        _hold_strength(start, model, strength_name, float(strength_a))
     setup = _Model(model, strength_name, thickness_m)
     values, chi2, jac, result = _solve(setup, start, fitted, pixels(use))
     n_clipped = 0

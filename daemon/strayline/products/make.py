@@ -383,8 +383,8 @@ def _make(
             ProductFile(
                 "vector_field",
                 path,
-                "zarr 3: bx_t, by_t, bz_t, filled (and m_z_a) per trace, dims (y, x), "
-                "coordinates in m",
+                "zarr 3: bx_t, by_t, bz_t, filled (and m_z_a with its 1 sigma and round-trip "
+                "residual) per trace, dims (y, x), coordinates in m",
             )
         )
     else:
