@@ -29,7 +29,7 @@ Uncertainty, for pixels with independent errors σ_i (the field σ map): the fil
 convolution with the real kernel h = F⁻¹[H], so var m_z(r_j) = Σ_i h(r_j − r_i)² σ_i²,
 a convolution of the variance map with h² (zero padding keeps it a linear, not a
 circular, convolution over the map). The background's own error σ_c (that of a median of
-N border pixels, √(π/2)·σ/√N) enters through the response a = F⁻¹[H · F(1 on the map)]
+N border pixels, ≈ √(π/2)·σ/√N) enters through the response a = F⁻¹[H · F(1 on the map)]
 to a unit offset, |a| σ_c. The stand-off's 1σ σ_d enters through ∂m_z/∂d at a fixed
 window, evaluated as the half-difference at d ± σ_d, F⁻¹[H sinh(kσ_d) B_NV]. The three
 add in quadrature. The window is held at the nominal d, so that "the truth after the
@@ -164,8 +164,10 @@ def border_background(
     Returns
     -------
     background_t, sigma_t : float
-        Median of the border pixels, and √(π/2)·rms(σ)/√N, the 1σ of the median of N
-        values with Gaussian errors (its asymptotic efficiency, 2/π) [cp].
+        Median of the border pixels, and its 1σ for N values with Gaussian errors σ_i,
+        √(π/2) / (√N · mean(1/σ_i)), from the asymptotic variance 1/(4 N f(0)²) of a
+        median, f the density of the errors at their median (Kendall & Stuart, *The
+        Advanced Theory of Statistics* vol. 1, 10.10) [mem].
     """
     ring = _ring(b_nv_t)
     take = np.ones(ring.shape, dtype=bool)
@@ -177,7 +179,11 @@ def border_background(
     if sigma_nv_t is None:
         return background, 0.0
     sigma_ring = _ring(sigma_nv_t)[take]
-    spread = math.sqrt(math.pi / 2.0) * math.sqrt(float(np.mean(sigma_ring**2)) / sigma_ring.size)
+    positive = sigma_ring[sigma_ring > 0]
+    if positive.size == 0:
+        return background, 0.0
+    # 1/(2 f(0) √N) with f(0) the mean density at the median, 1/(√(2π) σ_i) each.
+    spread = math.sqrt(math.pi / 2.0) / (math.sqrt(positive.size) * float(np.mean(1.0 / positive)))
     return background, spread
 
 

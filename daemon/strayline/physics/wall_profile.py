@@ -269,13 +269,14 @@ class _Cut:
         return best / _SCALE
 
     def fit_at(
-        self, p0: np.ndarray, d: float, width: float
+        self, p0: np.ndarray, d: float, width: float, jac: str = "2-point"
     ) -> tuple[np.ndarray, float, np.ndarray]:
-        """Position, moment, offset and slope at a held d and δ."""
+        """Position, moment, offset and slope at a held d and δ (``jac``: how the
+        Jacobian is differenced; "3-point" where it gives a covariance)."""
         result = least_squares(
             lambda p: (self.model(p, d, width) - self.b) * self.w,
             p0,
-            jac="3-point",
+            jac=jac,
             x_scale="jac",
             xtol=1e-10,
             ftol=1e-10,
@@ -387,7 +388,7 @@ def fit_wall_cut(
         width_sigma = float(math.sqrt(max(cov[4, 4], 0.0))) * 1e-9
         core = x[:4]
     else:  # δ pinned at its best value: σ of the rest conditional on it
-        core, _, jac4 = cut.fit_at(x[:4], d, width_best)
+        core, _, jac4 = cut.fit_at(x[:4], d, width_best, jac="3-point")
         cov = _cov(jac4) * scale
         width_sigma = None
     sig = np.sqrt(np.clip(np.diag(cov)[:4], 0.0, None)) * _SCALE
