@@ -41,6 +41,7 @@ def write_map_store(
         nv_axis_rad=nv_axis_rad,
         tip_id=tip_id,
         compression_level=1,
+        chunk_lines=n_lines,  # one chunk per map: quick to read back
         durable=False,
     ) as store:
         for i in range(n_lines):

@@ -772,8 +772,8 @@ def test_a_profile_may_set_the_standoff_but_not_the_folder(tmp_path: Path) -> No
     assert config.with_profile("thin").products.standoff_m == pytest.approx(42.5e-9)
     with pytest.raises(
         ConfigError,
-        match=r"products\.folder: a profile may set only calibration, enabled, images, standoff_nm in "
-        r"products; this key is daemon-wide",
+        match=r"products\.folder: a profile may set only calibration, enabled, images, "
+        r"standoff_nm in products; this key is daemon-wide",
     ):
         config.with_profile("moved")
 

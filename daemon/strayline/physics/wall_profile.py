@@ -30,6 +30,10 @@ other parameter refitted at each δ): the upper bound (95 %, one-sided) is where
 risen by 2.71 above its minimum; δ counts as resolved when δ = 0 lies more than 3.84
 above (95 %, two-sided), and then its 1σ comes from the curvature of the fit. Both
 thresholds are multiplied by χ²_red when it exceeds 1 (Press et al. [3]_, sec. 15.6).
+Unresolved, the other parameters are those of the sharp wall (δ = 0: fitting δ there
+would bias M_s t upwards, a wider wall needing more moment for the same peak), their σ
+widened by the change between δ = 0 and the upper bound over √12 (a flat prior on the
+widths the data allow) [cp].
 
 References
 ----------
@@ -140,9 +144,11 @@ class WallCutFit:
         The stand-off held, and its 1σ (carried into the other σ), m.
     values : dict of str to float
         ``position_m``, ``sheet_moment_a`` (m_s ≥ 0 as a wall is turned by its sign;
-        signed for an edge), ``offset_t``, ``slope_t_per_m``, ``width_m`` (best δ), SI.
+        signed for an edge), ``offset_t``, ``slope_t_per_m``, ``width_m`` (the δ the
+        values hold for: the best one when resolved, else 0), SI.
     sigmas : dict of str to float
-        1σ of the first four (the stand-off's part included), SI.
+        1σ of the first four (the stand-off's part and, for an unresolved width, the
+        widths allowed, included), SI.
     width_resolved : bool
         δ = 0 is excluded at 95 %; then ``width_sigma_m`` is its 1σ.
     width_sigma_m : float or None
@@ -383,20 +389,25 @@ def fit_wall_cut(
         else _upper_bound(widths, chi2s, width_best, chi2_best, _UPPER_LEVEL * scale)
     )
 
+    width_sigma = None
     if resolved:
         cov = _cov(jac) * scale
         width_sigma = float(math.sqrt(max(cov[4, 4], 0.0))) * 1e-9
-        core = x[:4]
-    else:  # δ pinned at its best value: σ of the rest conditional on it
-        core, _, jac4 = cut.fit_at(x[:4], d, width_best, jac="3-point")
+        core, width_used = x[:4], width_best
+    else:  # the sharp model, σ widened by the widths the data allow (docstring)
+        width_used = 0.0
+        core, _, jac4 = cut.fit_at(fits[0], d, 0.0, jac="3-point")
         cov = _cov(jac4) * scale
-        width_sigma = None
     sig = np.sqrt(np.clip(np.diag(cov)[:4], 0.0, None)) * _SCALE
+    if not resolved:
+        allowed = upper if upper is not None else _MAX_WIDTH_STANDOFFS * d
+        wide = cut.fit_at(core, d, allowed)[0]
+        sig = np.hypot(sig, np.abs(wide - core) * _SCALE / math.sqrt(12.0))
     values = dict(zip(_NAMES, (core * _SCALE).tolist(), strict=True))
-    values["width_m"] = width_best
+    values["width_m"] = width_used
     if sigma_d > 0:
         shifted = [
-            cut.fit_at(core, d + step, width_best)[0] * _SCALE for step in (sigma_d, -sigma_d)
+            cut.fit_at(core, d + step, width_used)[0] * _SCALE for step in (sigma_d, -sigma_d)
         ]
         sig = np.hypot(sig, 0.5 * np.abs(shifted[0] - shifted[1]))
     sigmas = dict(zip(_NAMES, sig.tolist(), strict=True))
