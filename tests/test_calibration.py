@@ -158,7 +158,7 @@ def test_missing_calibrations_are_named_errors(
     use = use_calibration(tmp_path, setting, tip)
     assert use.record is None
     assert use.problem is not None
-    assert message.split(":")[0] in use.problem
+    assert message.split(":", maxsplit=1)[0] in use.problem
 
 
 def test_a_damaged_record_is_a_named_error(tmp_path: Path) -> None:
