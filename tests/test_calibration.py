@@ -146,6 +146,7 @@ def test_records_are_found_by_latest_name_and_id(edge_store: Path, tmp_path: Pat
         ("tip-B", None, "calibration 'tip-B': no record of 'tip-B' in"),
         ("tip-B/20310504T120000Z", None, "calibration 'tip-B/20310504T120000Z': no record"),
         ("latest", "tip-C", "calibration 'latest': no record of 'tip-C'"),
+        ("../elsewhere", None, r"calibration '../elsewhere': expected latest, NAME or NAME/"),
     ],
 )
 def test_missing_calibrations_are_named_errors(

@@ -542,6 +542,12 @@ def find_calibration(state_dir: Path, setting: str, tip_id: str | None = None) -
         name, record_id = tip_id, None
     else:
         name, _, record_id = setting.partition("/")
+    for part in (name, record_id) if record_id else (name,):
+        if not NAME_PATTERN.fullmatch(part):
+            raise CalibrationError(
+                f"calibration {setting!r}: expected latest, NAME or NAME/RECORD, each "
+                f"{NAME_RULE} (or a record file ending .json)"
+            )
     if record_id:
         path = where / name / f"{record_id}.json"
         if not path.is_file():
