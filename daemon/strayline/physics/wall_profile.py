@@ -72,7 +72,7 @@ _WEIGHTS = 1.0 / np.cosh(_NODES) ** 2
 _WEIGHTS = _WEIGHTS * (2.0 / _WEIGHTS.sum())  # ∫ sech² = 2 exactly on the nodes
 _SHARP_FRACTION = 1e-4  # δ below this fraction of d: the sharp form
 _MAX_WIDTH_STANDOFFS = 8.0
-_WIDTH_GRID = np.concatenate([[0.0], np.geomspace(0.02, _MAX_WIDTH_STANDOFFS, 28)])
+_WIDTH_GRID = np.concatenate([[0.0], np.geomspace(0.03, _MAX_WIDTH_STANDOFFS, 16)])
 _UPPER_LEVEL = 2.705543  # χ²₁ quantile at 0.90 two-sided = 95 % one-sided
 _RESOLVED_LEVEL = 3.841459  # χ²₁ quantile at 0.95
 # Internal units: nm, mA, mT, mT/µm.
