@@ -4,10 +4,12 @@ It renders an invented sample (:mod:`demo_stream.scenes`) through an NV tip mode
 (:mod:`demo_stream.tip`), injects faults (:mod:`demo_stream.faults`), writes one
 scan-line file per completed line at instrument pace and the exact ground truth
 (:mod:`demo_stream.writer`, :mod:`demo_stream.truth`). :mod:`demo_stream.family` draws
-whole scans (sample, tip, sweep, slow nuisances, fault) at random from a seed. Command
+whole scans (sample, tip, sweep, slow nuisances, fault) at random from a seed;
+:mod:`demo_stream.calibration` draws calibration scans of a known film edge. Command
 line: ``python -m demo_stream --help``.
 """
 
+from demo_stream.calibration import calibration_scan
 from demo_stream.family import FAMILY_KINDS, FamilyScan, draw_scan
 from demo_stream.faults import FAULT_KINDS, Fault, fault_to_spec, parse_fault
 from demo_stream.presets import PRESETS, SignalPreset
@@ -44,6 +46,7 @@ __all__ = [
     "TruthRecord",
     "WrittenFile",
     "bubble_lattice",
+    "calibration_scan",
     "calibration_stripe",
     "config_to_dict",
     "dot_array",

@@ -122,6 +122,8 @@ class TipModel:
     zfs_drift_hz_per_hour : float
         Linear drift of D, Hz per hour of instrument time (a temperature drift of
         +1 K/h gives about -74 kHz/h near room temperature).
+    tip_id : str or None
+        The tip's name, written into every line file (``tip_id``); None writes none.
     """
 
     standoff_m: float = 60e-9
@@ -141,6 +143,7 @@ class TipModel:
     pl_step_fraction: float = 0.0
     pl_step_at_s: float = 0.0
     zfs_drift_hz_per_hour: float = 0.0
+    tip_id: str | None = None
 
     def __post_init__(self) -> None:
         positive = {

@@ -419,6 +419,7 @@ def run_scan(
                     y_m=float(renderer.y_m[k]),
                     temperature_k=config.tip.temperature_k,
                     profile=config.profile,
+                    tip_id=config.tip.tip_id,
                 )
                 if layout == "growing-file":
                     if growing is None:

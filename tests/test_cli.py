@@ -34,6 +34,8 @@ COMMANDS = (
     "check-config",
     "demo",
     "products",
+    "calibrate",
+    "cut",
 )
 
 
@@ -116,7 +118,7 @@ def test_an_unknown_command_is_a_usage_error(capsys: pytest.CaptureFixture[str])
 
 def test_the_parser_knows_exactly_the_commands() -> None:
     """The parser's commands are run, process, refit, status, alerts, summary, why,
-    check-config, demo and products."""
+    check-config, demo, products, calibrate and cut."""
     parser = build_parser()
     sub = next(a for a in parser._actions if a.dest == "command")
     assert tuple(sub.choices) == COMMANDS  # type: ignore[arg-type]

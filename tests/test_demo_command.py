@@ -44,9 +44,11 @@ def _value(out: str, label: str) -> str:
 def test_a_small_demo_prints_where_everything_is_and_alerts_on_its_fault(
     tmp_path: Path,
 ) -> None:
-    """A small demo (8 lines x 32 px, no pacing) exits 0, prints the live picture, store,
-    log and alert log locations inside its folder and a summary (the live picture drawn by
-    then), and the injected tip crash raises a critical alert at or after the crash line."""
+    """A small demo (8 lines x 32 px, no pacing) exits 0, calibrates its tip first (the
+    stand-off within 3σ of the demo tip's 60 nm), prints the live picture, store, log and
+    alert log locations inside its folder and a summary with the sheet moment from that
+    calibration (the live picture drawn by then), and the injected tip crash raises a
+    critical alert at or after the crash line."""
     folder = tmp_path / "demo"
     result = _run_demo(
         "--lines", "8", "--pixels", "32", "--pace", "0", "--folder", str(folder), cwd=tmp_path
@@ -56,6 +58,12 @@ def test_a_small_demo_prints_where_everything_is_and_alerts_on_its_fault(
     assert out.splitlines()[0] == (
         f"strayline demo: 8 lines x 32 pixels, fault tip_crash@5:16, in {folder}"
     )
+    calibration = _value(out, "calibration")
+    assert calibration.startswith("demo-tip/")
+    d_nm, sigma_nm = (float(v) for v in calibration.split("d = ")[1].split(" nm")[0].split(" ± "))
+    assert abs(d_nm - 60.0) < 3 * sigma_nm
+    assert "truth d = 60.00 nm" in out
+    assert "(calibration demo-tip/" in _value(out, "sheet moment")
     live = Path(_value(out, "live picture").split(" (redrawn every 8 lines")[0])
     assert live == folder / "output" / "demo-labyrinth.products" / "live_forward.png"
     assert live.is_file()

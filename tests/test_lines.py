@@ -105,7 +105,9 @@ def rejected(path: Path, limits: LineLimits = DEFAULT_LIMITS) -> str:
 
 def test_round_trip_keeps_every_field(tmp_path: Path) -> None:
     """A line written and read back has the same metadata, arrays, dtypes and units."""
-    line = make_line(tmp_path, temperature_k=295.5, profile="garnet_thin-film.v2")
+    line = make_line(
+        tmp_path, temperature_k=295.5, profile="garnet_thin-film.v2", tip_id="tip-A7.2"
+    )
     path = write_line_file(line)
     back = read_line_file(path)
     assert path == tmp_path / NAME
@@ -121,6 +123,7 @@ def test_round_trip_keeps_every_field(tmp_path: Path) -> None:
         "y_m",
         "temperature_k",
         "profile",
+        "tip_id",
     ):
         assert getattr(back, name) == getattr(line, name), name
     assert back.start_time == T0
@@ -152,6 +155,7 @@ def test_file_layout_matches_contract(valid_file: Path) -> None:
         assert attrs["end_time"] == "2025-03-14T09:26:55.750000Z"
         assert "temperature_k" not in attrs
         assert "profile" not in attrs
+        assert "tip_id" not in attrs
         units = {name: h5[name].attrs["units"] for name in ("freq_hz", "counts", "x_m", "y_m")}
         assert units == {"freq_hz": "Hz", "counts": "counts", "x_m": "m", "y_m": "m"}
         assert h5["y_m"].shape == ()
@@ -650,6 +654,12 @@ MALFORMED: list[tuple[str, Callable[[h5py.File], None], str]] = [
         _set_attr("profile", "films/garnet"),
         "attribute 'profile' must be 1–128 characters of A–Z a–z 0–9 . _ -, not starting "
         "with '.'; found 'films/garnet'",
+    ),
+    (
+        "tip with a space",
+        _set_attr("tip_id", "tip 7"),
+        "attribute 'tip_id' must be 1–128 characters of A–Z a–z 0–9 . _ -, not starting "
+        "with '.'; found 'tip 7'",
     ),
     (
         "missing units",

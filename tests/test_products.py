@@ -403,7 +403,8 @@ def test_sheet_moment_is_skipped_without_a_standoff(
     assert data["standoff_m"] is None
     reasons = {s["product"]: s["reason"] for s in data["skipped"]}
     assert reasons["sheet moment (forward trace)"] == (
-        "the NV-sample standoff is unknown (set products.standoff_nm or pass --standoff-nm)"
+        "the NV-sample standoff is unknown (set products.standoff_nm or "
+        "products.calibration, or pass --standoff-nm or --calibration)"
     )
     assert [s.product for s in report.skipped] == ["sheet moment (forward trace)", "images"]
 
@@ -1068,8 +1069,8 @@ def test_a_profile_may_set_the_standoff_but_not_the_folder(tmp_path: Path) -> No
     assert config.with_profile("thin").products.standoff_m == pytest.approx(42.5e-9)
     with pytest.raises(
         ConfigError,
-        match=r"products\.folder: a profile may set only enabled, images, standoff_nm in "
-        r"products; this key is daemon-wide",
+        match=r"products\.folder: a profile may set only calibration, enabled, images, "
+        r"standoff_nm in products; this key is daemon-wide",
     ):
         config.with_profile("moved")
 

@@ -335,6 +335,26 @@ def test_the_nv_axis_is_recorded_at_creation_and_added_to_an_older_store(
     assert open_store_reader(path).nv_axis_rad() == (0.5, 1.0)
 
 
+def test_the_tip_is_recorded_at_creation_or_later_and_kept_with_raw_spectra(
+    tmp_path: Path,
+) -> None:
+    """A store opened with the line files' tip_id records it (the reader's tip_id); one
+    made without it gets it on a later open; raw spectra keep each line's tip."""
+    with open_store(tmp_path / "new", tip_id="tip-A7", raw_spectra=True) as store:
+        line, fit, field = make_records(0)
+        store.write_line(dataclasses.replace(line, tip_id="tip-A7"), fit, field)
+        raw = store.read_raw(0, "forward")
+    assert open_store_reader(tmp_path / "new" / "scan7.zarr").tip_id == "tip-A7"
+    assert raw is not None
+    assert raw.tip_id == "tip-A7"
+    assert raw.scan_line("scan7", N_LINES, tmp_path / "x").tip_id == "tip-A7"
+    open_store(tmp_path / "old").close()
+    assert open_store_reader(tmp_path / "old" / "scan7.zarr").tip_id is None
+    open_store(tmp_path / "old", tip_id="tip-B").close()
+    open_store(tmp_path / "old", tip_id="tip-C").close()  # the first one stays
+    assert open_store_reader(tmp_path / "old" / "scan7.zarr").tip_id == "tip-B"
+
+
 def merged_records(index: int) -> tuple[ScanLine, LineFit, LineField]:
     """make_records with pixels 1 and 4 merged (status MERGED, a bound on |B∥|, no B∥)."""
     line, fit, field = make_records(index)

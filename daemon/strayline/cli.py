@@ -1,5 +1,5 @@
-"""Command line: ``strayline run | process | status | alerts | why | summary | check-config |
-demo | products``.
+"""Command line: ``strayline run | process | refit | status | alerts | why | summary |
+check-config | demo | products | calibrate | cut``.
 
 Exit codes: 0 ok, 2 usage, 78 (EX_CONFIG) for a bad configuration, 1 for anything else
 that stopped a command.
@@ -75,6 +75,29 @@ def _degrees(text: str) -> float:
     if not abs(value) < float("inf"):
         raise argparse.ArgumentTypeError(f"must be a finite angle; found {text}")
     return value
+
+
+def _point_nm(text: str) -> tuple[float, float]:
+    """An argument X,Y in nanometres, returned in metres."""
+    try:
+        x_text, y_text = text.split(",")
+        x, y = float(x_text), float(y_text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"must be X,Y in nm; found {text!r}") from None
+    if not (abs(x) < float("inf") and abs(y) < float("inf")):
+        raise argparse.ArgumentTypeError(f"must be finite; found {text}")
+    return x * 1e-9, y * 1e-9
+
+
+def _state_dir_arg(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument(
+        "--state-dir",
+        type=Path,
+        default=None,
+        metavar="DIR",
+        help="the state folder holding calibrations/ (default: --config's paths.state_dir, "
+        "else the one the store recorded)",
+    )
 
 
 _FAULT_KINDS = "<fault kinds>"
@@ -301,7 +324,103 @@ def build_parser() -> argparse.ArgumentParser:
         metavar="DEG",
         help="NV axis azimuth, degrees (default: as recorded for the scan)",
     )
+    products.add_argument(
+        "--calibration",
+        metavar="NAME",
+        default=None,
+        help="take the standoff (and its 1-sigma) from a tip calibration: latest (of the "
+        "scan's tip_id), a name, NAME/RECORD or a record file (default: the scan's "
+        "products.calibration)",
+    )
+    _state_dir_arg(products)
     products.add_argument("--no-images", action="store_true", help="skip the PNG images")
+
+    calibrate = sub.add_parser(
+        "calibrate",
+        help="fit the tip's standoff on a scan of a known structure; keep it as a calibration",
+    )
+    calibrate.add_argument(
+        "store", type=Path, metavar="STORE", help="the calibration scan's <scan_id>.zarr"
+    )
+    calibrate.add_argument(
+        "--model",
+        choices=("film-edge", "stripe", "wire"),
+        required=True,
+        help="the structure: a film edge, a stripe (two edges) or a straight wire",
+    )
+    calibrate.add_argument(
+        "--name", metavar="NAME", help="keep it under this name (default: the scan's tip_id)"
+    )
+    calibrate.add_argument(
+        "--known-strength-ma",
+        type=_positive_number,
+        default=None,
+        metavar="MA",
+        help="the structure's known M_s t (film) or current (wire), mA: held, not fitted",
+    )
+    calibrate.add_argument(
+        "--thickness-nm",
+        type=_positive_number,
+        default=None,
+        metavar="NM",
+        help="film thickness, nm (default: a thin film, t << d)",
+    )
+    calibrate.add_argument("--fit-theta", action="store_true", help="also fit the NV polar angle")
+    calibrate.add_argument("--fit-phi", action="store_true", help="also fit the NV azimuth")
+    calibrate.add_argument(
+        "--direction", choices=("forward", "backward"), help="the trace to fit (default forward)"
+    )
+    _state_dir_arg(calibrate)
+    _config_arg(calibrate)
+    calibrate.add_argument("--no-figure", action="store_true", help="skip the check figure")
+    calibrate.add_argument("--json", action="store_true", help="print the record as written")
+
+    cut = sub.add_parser(
+        "cut",
+        help="fit a domain wall (or film edge) along a line cut through a scan",
+    )
+    cut.add_argument("store", type=Path, metavar="STORE", help="the scan's <scan_id>.zarr")
+    cut.add_argument(
+        "--from-nm", type=_point_nm, metavar="X,Y", help="start of the cut, nm (scan frame)"
+    )
+    cut.add_argument("--to-nm", type=_point_nm, metavar="X,Y", help="end of the cut, nm")
+    cut.add_argument(
+        "--kind", choices=("wall", "edge"), default="wall", help="the model (default wall)"
+    )
+    cut.add_argument(
+        "--width-px", type=_positive_int, default=1, help="band width, pixels (default 1)"
+    )
+    cut.add_argument(
+        "--half-length-nm",
+        type=_positive_number,
+        default=None,
+        metavar="NM",
+        help="half-length of the automatic cut (no --from-nm/--to-nm), nm (default 5 d)",
+    )
+    cut.add_argument(
+        "--standoff-nm",
+        type=_positive_number,
+        default=None,
+        metavar="NM",
+        help="NV-sample distance, nm (default: the scan's calibration or standoff)",
+    )
+    cut.add_argument(
+        "--calibration", metavar="NAME", help="a tip calibration, as for `strayline products`"
+    )
+    _state_dir_arg(cut)
+    _config_arg(cut)
+    cut.add_argument(
+        "--direction", choices=("forward", "backward"), help="the trace (default forward)"
+    )
+    cut.add_argument("--name", metavar="NAME", help="names the files cut_<NAME>.json/.png")
+    cut.add_argument(
+        "--out",
+        type=Path,
+        default=None,
+        metavar="DIR",
+        help="folder for the files (default: <scan_id>.products beside the store)",
+    )
+    cut.add_argument("--no-image", action="store_true", help="skip the PNG")
     return parser
 
 
@@ -595,6 +714,8 @@ def _cmd_products(args: argparse.Namespace) -> int:
             out_dir=args.out,
             nv_axis_rad=axis,
             images=False if args.no_images else None,
+            calibration=args.calibration,
+            state_dir=args.state_dir,
         )
     except (StoreError, ValueError) as error:
         print(f"strayline: {error}", file=sys.stderr)
@@ -604,6 +725,97 @@ def _cmd_products(args: argparse.Namespace) -> int:
         print(f"  {item.path.name}: {item.description}")
     for skipped in report.skipped:
         print(f"  skipped {skipped.product}: {skipped.reason}")
+    return EXIT_OK
+
+
+def _state_dir(args: argparse.Namespace) -> Path | None:
+    """--state-dir, else --config's paths.state_dir, else None (the store's own)."""
+    if args.state_dir is not None:
+        return Path(args.state_dir)
+    if args.config is not None:
+        return Path(_load(args).paths.state_dir)
+    return None
+
+
+def _cmd_calibrate(args: argparse.Namespace) -> int:
+    from strayline.products import calibrate_store, keep_calibration
+
+    try:
+        made = calibrate_store(
+            args.store,
+            model=args.model,
+            name=args.name,
+            direction=args.direction,
+            strength_a=None if args.known_strength_ma is None else args.known_strength_ma * 1e-3,
+            thickness_m=None if args.thickness_nm is None else args.thickness_nm * 1e-9,
+            fit_theta=args.fit_theta,
+            fit_phi=args.fit_phi,
+        )
+        record, figure = keep_calibration(made, _state_dir(args), figure=not args.no_figure)
+    except (StoreError, ValueError) as error:  # CalibrationError is a ValueError
+        print(f"strayline: {error}", file=sys.stderr)
+        return 1
+    if args.json:
+        print(json.dumps(record.to_json_dict(), indent=2))
+        return EXIT_OK
+    print(record.summary())
+    print(f"  record {record.path}")
+    if figure is not None:
+        print(f"  figure {figure}")
+    if record.fit.get("n_clipped"):
+        print(f"  {record.fit['n_clipped']} outlier pixels left out of {record.fit['n_pixels']}")
+    if not record.fit.get("converged", True):
+        print(f"  warning: the fit did not converge: {record.fit['message']}")
+    print(f"  use it: products.calibration: {record.name}   (or latest, for this tip)")
+    return EXIT_OK
+
+
+def _cmd_cut(args: argparse.Namespace) -> int:
+    from strayline.products import cut_store
+
+    if (args.from_nm is None) != (args.to_nm is None):
+        print("strayline: give both --from-nm and --to-nm, or neither", file=sys.stderr)
+        return EXIT_USAGE
+    if args.standoff_nm is not None and args.calibration is not None:
+        print("strayline: give --standoff-nm or --calibration, not both", file=sys.stderr)
+        return EXIT_USAGE
+    try:
+        made = cut_store(
+            args.store,
+            args.out,
+            start_m=args.from_nm,
+            end_m=args.to_nm,
+            kind=args.kind,
+            name=args.name,
+            direction=args.direction,
+            width_px=args.width_px,
+            half_length_m=None if args.half_length_nm is None else args.half_length_nm * 1e-9,
+            standoff_m=None if args.standoff_nm is None else args.standoff_nm * 1e-9,
+            calibration=args.calibration,
+            state_dir=_state_dir(args),
+            images=not args.no_image,
+        )
+    except (StoreError, ValueError) as error:
+        print(f"strayline: {error}", file=sys.stderr)
+        return 1
+    fit = made.fit
+    v, e = fit.values, fit.sigmas
+    if fit.width_resolved:
+        width = f"δ = {v['width_m'] * 1e9:.1f} ± {(fit.width_sigma_m or 0) * 1e9:.1f} nm"
+    elif fit.width_upper_m is not None:
+        width = f"δ < {fit.width_upper_m * 1e9:.0f} nm (95 %, not resolved)"
+    else:
+        width = "δ not bounded"
+    print(
+        f"{made.name}: {fit.kind} at s = {v['position_m'] * 1e9:.1f} ± "
+        f"{e['position_m'] * 1e9:.2g} nm along the cut, M_s t = {v['sheet_moment_a'] * 1e3:.4g} "
+        f"± {e['sheet_moment_a'] * 1e3:.2g} mA, {width}; d = {fit.standoff_m * 1e9:.1f} nm "
+        f"({made.report['standoff_source']}); χ²_red = {fit.chi2_red:.3g}, "
+        f"{made.samples.s_m.size} pixels"
+    )
+    print(f"  {made.json_path}")
+    if made.png_path is not None:
+        print(f"  {made.png_path}")
     return EXIT_OK
 
 
@@ -618,6 +830,8 @@ _COMMANDS = {
     "summary": _cmd_summary,
     "demo": _cmd_demo,
     "products": _cmd_products,
+    "calibrate": _cmd_calibrate,
+    "cut": _cmd_cut,
 }
 
 

@@ -1,11 +1,21 @@
 """``strayline demo``: the demo instrument and the real daemon, side by side, in a folder.
 
-The demo instrument (:mod:`demo_stream`, imported lazily: strayline never depends on it
-otherwise) writes a short labyrinth-domain scan with one injected fault into
-``<folder>/incoming``; the daemon — the same :class:`~strayline.service.Service` that runs
-under systemd — watches that folder, writes ``<folder>/output/<scan>.zarr`` and the alert
-log, and stops once every line is committed or quarantined (or a time limit passes). A
-summary compares the field map with the instrument's ground truth.
+The whole flow of a lab, with no hardware:
+
+1. calibrate the tip: the demo instrument (:mod:`demo_stream`, imported lazily: strayline
+   never depends on it otherwise) scans a film edge of known sheet moment with the demo
+   tip (``tip_id`` ``demo-tip``) into ``<folder>/calibration``; the daemon's pipeline
+   processes it once (``strayline process``) and ``strayline calibrate`` fits the tip's
+   stand-off, kept in the state folder;
+2. scan a sample: the instrument writes a short labyrinth-domain scan with one injected
+   fault into ``<folder>/incoming``; the daemon — the same
+   :class:`~strayline.service.Service` that runs under systemd — watches that folder,
+   writes ``<folder>/output/<scan>.zarr`` and the alert log, and stops once every line is
+   committed or quarantined (or a time limit passes);
+3. products in physical units: with ``products.calibration: latest``, the sheet moment
+   takes the calibrated stand-off and its 1σ.
+
+A summary compares the calibration and the field map with the instrument's ground truth.
 """
 
 from __future__ import annotations
@@ -29,6 +39,8 @@ if TYPE_CHECKING:
 __all__ = ["default_fault", "demo_config", "run_demo", "truth_agreement"]
 
 _SCAN_ID = "demo-labyrinth"
+_CALIBRATION_ID = "demo-calibration"
+_TIP_ID = "demo-tip"
 
 
 def demo_config(folder: Path, *, settle_s: float = 0.2) -> Config:
@@ -44,9 +56,10 @@ def demo_config(folder: Path, *, settle_s: float = 0.2) -> Config:
         },
         "logging": {"console": "plain", "json_file": "output/strayline.log.jsonl"},
         "service": {"status_interval_s": 5.0},
-        # The demo tip's NV stand-off (demo_stream.TipModel), so the sheet moment is made;
-        # the live picture redrawn often enough to watch a short scan fill in.
-        "products": {"standoff_nm": 60.0, "live_every_lines": 8},
+        # The demo tip's stand-off from its newest calibration (made before the scan), so
+        # the sheet moment is made; the live picture redrawn often enough to watch a short
+        # scan fill in.
+        "products": {"calibration": "latest", "live_every_lines": 8},
     }
     return config_from_mapping(data, base_dir=folder)
 
@@ -107,8 +120,10 @@ def run_demo(
     import demo_stream as ds
 
     spec = fault if fault is not None else default_fault(lines, pixels)
+    tip = ds.TipModel(tip_id=_TIP_ID)
     scan = ds.DemoConfig(
         scene=ds.labyrinth(),
+        tip=tip,
         n_lines=lines,
         n_pixels=pixels,
         faults=(ds.parse_fault(spec),),
@@ -134,6 +149,12 @@ def run_demo(
     truth_dir = folder / "truth"
     configure_logging(level="info", console="plain", json_file=config.logging.json_file)
     print(f"strayline demo: {lines} lines x {pixels} pixels, fault {spec}, in {folder}")
+    _calibrate_tip(
+        config,
+        folder,
+        truth_dir,
+        ds.calibration_scan(seed, tip=tip, scan_id=_CALIBRATION_ID, tip_id=_TIP_ID),
+    )
     from strayline.products import live_image_name, products_dir
 
     live = products_dir(config.paths.output_root, config.products.folder, _SCAN_ID)
@@ -185,6 +206,46 @@ def run_demo(
     return 0
 
 
+def _calibrate_tip(config: Config, folder: Path, truth_dir: Path, scan: Any) -> None:
+    """Step 1: scan the known film edge, process it once, calibrate the tip's stand-off."""
+    import demo_stream as ds
+    from strayline.pipeline import process_folder
+    from strayline.products import calibrate_store, keep_calibration
+    from strayline.store import store_path as scan_store_path
+
+    ds.run_scan(scan, folder / "calibration", truth_dir)
+    process_folder(config, folder / "calibration")
+    made = calibrate_store(
+        scan_store_path(config.paths.output_root, scan.scan_id), model="film-edge"
+    )
+    record, _ = keep_calibration(made, config.paths.state_dir)
+    params = scan.scene.params
+    print(
+        f"calibration  {record.summary()}\n"
+        f"             truth d = {scan.tip.standoff_m * 1e9:.2f} nm, M_s t = "
+        f"{params['sheet_moment_a'] * 1e3:.4g} mA; record {record.path}"
+    )
+
+
+def _print_sheet_moment(products: Path) -> None:
+    """The forward trace's sheet moment and its 1σ, from the products report."""
+    import json
+
+    from strayline.products import REPORT_JSON
+
+    try:
+        report = json.loads((products / REPORT_JSON).read_text(encoding="utf-8"))
+        vector = report["traces"]["forward"]["vector"]
+        m, sigma = vector["m_z_a"], vector["m_z_sigma_a"]
+    except (OSError, ValueError, KeyError, TypeError):
+        return
+    calibration = (report.get("calibration") or {}).get("used") or "none"
+    print(
+        f"sheet moment m_z 5-95 % {m['p5'] * 1e3:+.3f} to {m['p95'] * 1e3:+.3f} mA, "
+        f"1 sigma median {sigma['median'] * 1e6:.2f} uA (calibration {calibration})"
+    )
+
+
 def _accounted(pipeline: LinePipeline, lines: int) -> bool:
     """Every line of the demo scan committed or quarantined."""
     done = pipeline.scan_progress().get(_SCAN_ID, (0, lines))[0]
@@ -214,6 +275,7 @@ def _print_summary(config: Config, truth_dir: Path) -> None:
     products = products_dir(config.paths.output_root, config.products.folder, _SCAN_ID)
     if products.exists():
         print(f"products     {products} (quick-look images, vector field, report)")
+        _print_sheet_moment(products)
     if store_path.exists():
         group = zarr.open_group(store_path, mode="r")
         field_t = _read_map(group, "forward/field_nv_t")

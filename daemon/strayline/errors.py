@@ -5,6 +5,8 @@
 - :class:`ConfigError` — a bad configuration: refuse to start (exit code
   :data:`EXIT_CONFIG`).
 - :class:`StoreError` — the output store or its disk failed: retry, then stop cleanly.
+- :class:`CalibrationError` — a tip calibration asked for is missing or unreadable: the
+  products say so and go on without it; the command that asked stops.
 
 Anything else escaping a stage is our own bug.
 """
@@ -18,6 +20,7 @@ __all__ = [
     "EXIT_LOCKED",
     "EXIT_OK",
     "EXIT_USAGE",
+    "CalibrationError",
     "ConfigError",
     "LineFileError",
     "StoreError",
@@ -68,3 +71,8 @@ class ConfigError(StraylineError, ValueError):
 
 class StoreError(StraylineError, OSError):
     """Writing or reading a scan store failed (disk full, unwritable, vanished)."""
+
+
+class CalibrationError(StraylineError, ValueError):
+    """A tip calibration record is missing, unreadable or not one; the message names the
+    calibration (or file) and what was wrong."""

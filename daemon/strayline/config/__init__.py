@@ -5,6 +5,7 @@ once into typed specs, :attr:`Config.rule_set`); a bad file raises
 :class:`~strayline.errors.ConfigError` naming the file and the key path.
 """
 
+from strayline.config._sections import LATEST_CALIBRATION
 from strayline.config.schema import (
     PROFILE_SECTIONS,
     Config,
@@ -15,6 +16,7 @@ from strayline.config.schema import (
 )
 
 __all__ = [
+    "LATEST_CALIBRATION",
     "PROFILE_SECTIONS",
     "Config",
     "config_digest",

@@ -28,8 +28,10 @@ from pydantic.types import Strict
 from strayline._numbers import HZ_PER_MHZ, MIB
 from strayline.alerts import HOOK_PLACEHOLDERS
 from strayline.config._load import Problems
+from strayline.lines import NAME_PATTERN, NAME_RULE
 
 __all__ = [
+    "LATEST_CALIBRATION",
     "AlertsSection",
     "FieldSection",
     "FitSection",
@@ -285,12 +287,26 @@ class StoreSection(Section):
     chunk_lines: Annotated[int, Field(ge=1)] = 16
 
 
+#: The ``products.calibration`` value that means "the newest calibration of the scan's tip".
+LATEST_CALIBRATION = "latest"
+
+
+def _check_calibration(value: str) -> str:
+    parts = value.split("/")
+    if len(parts) > 2 or not all(NAME_PATTERN.fullmatch(part) for part in parts):
+        raise ValueError(
+            f"expected {LATEST_CALIBRATION!r}, a calibration name or NAME/RECORD, each {NAME_RULE}"
+        )
+    return value
+
+
 class ProductsSection(Section):
     """What is made once a scan is complete (see :mod:`strayline.products`), and the live
     picture of a running scan (:mod:`strayline.products.live`)."""
 
     enabled: bool = True
     standoff_nm: Annotated[float, Field(gt=0)] | None = None
+    calibration: Annotated[str, AfterValidator(_check_calibration)] | None = None
     images: bool = True
     folder: ResolvedPath | None = None
     live_image: bool = True
@@ -306,6 +322,21 @@ class ProductsSection(Section):
                         "live_every_lines",
                         "the live image needs live_every_lines or live_every_s (or both); "
                         "found both null (set live_image: false to turn it off)",
+                    )
+                ]
+            )
+        return self
+
+    @model_validator(mode="after")
+    def _one_standoff_source(self) -> ProductsSection:
+        if self.standoff_nm is not None and self.calibration is not None:
+            raise Problems(
+                [
+                    (
+                        "calibration",
+                        "takes the stand-off from a tip calibration: set standoff_nm to null, "
+                        f"or calibration to null; found standoff_nm = {self.standoff_nm:g} "
+                        f"and calibration = {self.calibration!r}",
                     )
                 ]
             )

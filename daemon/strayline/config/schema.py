@@ -81,7 +81,7 @@ PROFILE_SECTIONS: Mapping[str, frozenset[str] | None] = {
     "rules": None,
     "rule_overrides": None,
     "alerts": None,
-    "products": frozenset({"enabled", "standoff_nm", "images"}),
+    "products": frozenset({"enabled", "standoff_nm", "calibration", "images"}),
 }
 
 _PROFILE_NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]*")

@@ -107,6 +107,9 @@ class ScanLine:
         Unit of each auxiliary channel.
     sha256 : str or None
         Hex SHA-256 of the file's bytes as read (None for a line not read from disk).
+    tip_id : str or None
+        Identifier of the NV tip that took the line, if the acquisition side names it
+        (calibrations of the tip's stand-off are kept under it).
     """
 
     source: Path
@@ -129,6 +132,7 @@ class ScanLine:
     aux: Mapping[str, np.ndarray] = field(default_factory=dict)
     aux_units: Mapping[str, str] = field(default_factory=dict)
     sha256: str | None = None
+    tip_id: str | None = None
 
     @property
     def n_pixels(self) -> int:
@@ -399,6 +403,9 @@ def _parse(ff: FileFields, limits: LineLimits, digest: str) -> ScanLine:
     profile = None
     if ff.has_attr("profile"):
         profile = ff.attr_str("profile", NAME_RULE, NAME_PATTERN)
+    tip_id = None
+    if ff.has_attr("tip_id"):
+        tip_id = ff.attr_str("tip_id", NAME_RULE, NAME_PATTERN)
 
     # Shapes and units first (metadata only), so nothing oversized is ever read.
     freq_ds = _required(ff.dataset("freq_hz"))
@@ -474,6 +481,7 @@ def _parse(ff: FileFields, limits: LineLimits, digest: str) -> ScanLine:
         aux=aux,
         aux_units=aux_units,
         sha256=digest,
+        tip_id=tip_id,
     )
 
 
@@ -559,6 +567,8 @@ def _encode(line: ScanLine, path: Path) -> bytes:
             attrs["temperature_k"] = np.float64(line.temperature_k)
         if line.profile is not None:
             attrs["profile"] = line.profile
+        if line.tip_id is not None:
+            attrs["tip_id"] = line.tip_id
         for name, values in arrays.items():
             h5.create_dataset(name, data=values).attrs["units"] = units[name]
         h5.create_dataset("y_m", data=np.float64(line.y_m)).attrs["units"] = "m"

@@ -1,5 +1,6 @@
 """Pure physics of NV magnetometry: constants, spin Hamiltonian, field inversion,
-ODMR line shapes, sensitivity and stray-field propagation. No I/O."""
+ODMR line shapes, sensitivity, stray-field propagation, the fields of calibration
+structures and their fit, the sheet moment with its error bars, wall profiles. No I/O."""
 
 from strayline.physics.constants import (
     D_CRYO_HZ,
@@ -19,6 +20,12 @@ from strayline.physics.inversion import (
     field_from_resonances,
 )
 from strayline.physics.sensitivity import LINESHAPE_FACTOR, shot_noise_sensitivity_t_per_rthz
+from strayline.physics.sheet_moment import (
+    SheetMomentMap,
+    hann_lowpass_a,
+    reconstruct_sheet_moment,
+    sheet_moment_from_projection_a,
+)
 from strayline.physics.spectrum import hyperfine_pattern, lorentzian, lorentzian_dips
 from strayline.physics.strayfield import (
     bz_from_projection,
@@ -31,6 +38,13 @@ from strayline.physics.strayfield import (
     vector_from_projection,
     wavevectors,
 )
+from strayline.physics.structure_field import (
+    StraightStructure,
+    structure_field_nv_t,
+    structure_field_t,
+)
+from strayline.physics.structure_fit import StructureFit, fit_structure_map
+from strayline.physics.wall_profile import WallCutFit, fit_wall_cut, wall_profile_field_nv_t
 
 __all__ = [
     "DD_DT_HZ_PER_K",
@@ -43,23 +57,35 @@ __all__ = [
     "LINESHAPE_FACTOR",
     "MU0",
     "T_ROOM_K",
+    "SheetMomentMap",
+    "StraightStructure",
+    "StructureFit",
+    "WallCutFit",
     "bz_from_projection",
     "dipole_field_t",
     "field_along_axis_from_resonances",
     "field_from_resonances",
     "film_edge_field_t",
+    "fit_structure_map",
+    "fit_wall_cut",
+    "hann_lowpass_a",
     "hyperfine_pattern",
     "line_current_field_t",
     "lorentzian",
     "lorentzian_dips",
     "nv_axis",
     "project_on_axis",
+    "reconstruct_sheet_moment",
     "sheet_moment_from_bz_a",
+    "sheet_moment_from_projection_a",
     "shot_noise_sensitivity_t_per_rthz",
     "stray_field_t",
+    "structure_field_nv_t",
+    "structure_field_t",
     "to_nv_frame",
     "transition_frequencies_hz",
     "vector_from_projection",
+    "wall_profile_field_nv_t",
     "wavevectors",
     "zfs_hz",
 ]

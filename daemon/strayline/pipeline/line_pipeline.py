@@ -78,7 +78,7 @@ from strayline.pipeline._setup import (
     store_config,
     zfs_rule,
 )
-from strayline.products import make_products, products_dir
+from strayline.products import make_products, products_dir, use_calibration
 from strayline.rules import DecisionLog, MetricsTracker, RuleDecision, RuleEngine
 from strayline.store import (
     LedgerEntry,
@@ -925,7 +925,7 @@ class LinePipeline:
                 "products_remade", scan=scan.scan_id, line=line.line_index, reason="a late line"
             )
         scan.products_done = True
-        job = partial(self._make_products, scan, line.nv_theta_rad, line.nv_phi_rad)
+        job = partial(self._make_products, scan, line.nv_theta_rad, line.nv_phi_rad, line.tip_id)
         if self._products is None:
             job()
         else:
@@ -938,12 +938,20 @@ class LinePipeline:
             scan.scan_id, scan.store.path, out_dir, n_lines, complete=scan_complete(scan.store)
         )
 
-    def _make_products(self, scan: ScanContext, nv_theta_rad: float, nv_phi_rad: float) -> None:
-        """Make one finished scan's products (reads the store without its lock)."""
+    def _make_products(
+        self, scan: ScanContext, nv_theta_rad: float, nv_phi_rad: float, tip_id: str | None
+    ) -> None:
+        """Make one finished scan's products (reads the store without its lock); a tip
+        calibration named in the config is looked up now, so the newest one counts."""
         section = scan.config.products
         out_dir = products_dir(self._output_root, section.folder, scan.scan_id)
         started = time.perf_counter()
         try:
+            calibration = (
+                None
+                if section.calibration is None
+                else use_calibration(self.config.paths.state_dir, section.calibration, tip_id)
+            )
             report = make_products(
                 scan.store.path,
                 standoff_m=section.standoff_m,
@@ -952,6 +960,7 @@ class LinePipeline:
                 out_dir=out_dir,
                 alert_log=self.config.paths.alert_log,
                 images=section.images,
+                calibration=calibration,
             )
         except Exception as error:  # products are a by-product: never stop the daemon
             self._log.error(
@@ -1029,6 +1038,7 @@ class LinePipeline:
             config_json=store_config(config, profile),
             config_digest=config_digest(config),
             nv_axis_rad=(line.nv_theta_rad, line.nv_phi_rad),
+            tip_id=line.tip_id,
             compression_level=config.store.compression_level,
             chunk_lines=config.store.chunk_lines,
         )

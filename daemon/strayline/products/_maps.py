@@ -18,14 +18,14 @@ References
 
 from __future__ import annotations
 
-import math
 from collections.abc import Mapping
 from dataclasses import dataclass
 
 import numpy as np
 from scipy import ndimage
 
-from strayline.physics import sheet_moment_from_bz_a, vector_from_projection
+from strayline.physics import vector_from_projection
+from strayline.physics.sheet_moment import SheetMomentMap, reconstruct_sheet_moment
 
 __all__ = [
     "TraceMaps",
@@ -34,6 +34,7 @@ __all__ = [
     "contrast_map",
     "fill_nearest",
     "line_positions_m",
+    "moment_arrays",
     "reconstruct_vector",
 ]
 
@@ -246,12 +247,16 @@ class VectorField:
         Out-of-plane sheet moment density, A, without its mean; None without a standoff.
     k_cut_rad_per_m : float or None
         Cut-off of the Hann low-pass window used for ``m_z_a``, rad/m.
+    moment : SheetMomentMap or None
+        ``m_z_a`` with its uncertainty map and round-trip residual (None without a
+        standoff).
     """
 
     b_xyz_t: np.ndarray
     filled: np.ndarray
     m_z_a: np.ndarray | None
     k_cut_rad_per_m: float | None
+    moment: SheetMomentMap | None = None
 
 
 def reconstruct_vector(
@@ -262,8 +267,11 @@ def reconstruct_vector(
     nv_theta_rad: float,
     nv_phi_rad: float,
     standoff_m: float | None,
+    sigma_nv_t: np.ndarray | None = None,
+    standoff_sigma_m: float = 0.0,
 ) -> VectorField:
-    """Bx, By, Bz from a map of B_NV, then m_z when the standoff is known.
+    """Bx, By, Bz from a map of B_NV, then m_z with its error bars when the standoff is
+    known.
 
     Parameters
     ----------
@@ -277,6 +285,11 @@ def reconstruct_vector(
         NV axis in the scan frame, rad.
     standoff_m : float or None
         NV–sample distance d, m; None skips the sheet moment.
+    sigma_nv_t : ndarray, shape (ny, nx), optional
+        1σ of B_NV, T (filled like the field; a measured pixel without a finite σ takes
+        the median σ); None: the uncertainty map counts the standoff's σ only.
+    standoff_sigma_m : float
+        1σ of d, m.
 
     Returns
     -------
@@ -286,17 +299,71 @@ def reconstruct_vector(
     -----
     B_NV(k) = [u_z − i(u_x k_x + u_y k_y)/k] B_z(k), solved for B_z(k), then
     B_{x,y}(k) = −i (k_{x,y}/k) B_z(k) (Lima & Weiss [1]_). Out-of-plane assumption:
-    m_z(k) = 2 e^{kd} W(k) B_z(k)/(μ0 k) with a Hann window W cut at k_c = π/d
-    (Beardsley [3]_; B_z as the input of choice, Broadway et al. [2]_). Both are
-    :mod:`strayline.physics.strayfield`; each axis is zero-padded by its own length.
+    m_z(k) = 2 e^{kd} W(k) B_z(k)/(μ0 k) with a Hann window W cut at k_c = π/d, taken from
+    B_NV in one filter after the border's median is subtracted, with its uncertainty map
+    and round trip (:func:`strayline.physics.sheet_moment.reconstruct_sheet_moment`;
+    Beardsley [3]_, Broadway et al. [2]_). Each axis is zero-padded by its own length.
     """
     valid = np.asarray(valid, dtype=bool)
     filled_values = fill_nearest(b_nv_t, valid, pixel_m)
     b_xyz = vector_from_projection(filled_values, nv_theta_rad, nv_phi_rad, pixel_m)
     if standoff_m is None:
         return VectorField(b_xyz_t=b_xyz, filled=~valid, m_z_a=None, k_cut_rad_per_m=None)
-    k_cut = math.pi / standoff_m
-    m_z = sheet_moment_from_bz_a(
-        b_xyz[2], pixel_m=pixel_m, standoff_m=standoff_m, k_cut_rad_per_m=k_cut
+    if sigma_nv_t is None:
+        sigma = np.zeros_like(filled_values)
+    else:
+        raw = np.asarray(sigma_nv_t, dtype=np.float64)
+        known = valid & np.isfinite(raw) & (raw >= 0)
+        typical = float(np.median(raw[known])) if np.any(known) else 0.0
+        sigma = fill_nearest(np.where(known, raw, typical), valid, pixel_m)
+    moment = reconstruct_sheet_moment(
+        filled_values,
+        sigma,
+        nv_theta_rad=nv_theta_rad,
+        nv_phi_rad=nv_phi_rad,
+        pixel_m=pixel_m,
+        standoff_m=standoff_m,
+        standoff_sigma_m=standoff_sigma_m,
+        measured=valid,
     )
-    return VectorField(b_xyz_t=b_xyz, filled=~valid, m_z_a=m_z, k_cut_rad_per_m=k_cut)
+    return VectorField(
+        b_xyz_t=b_xyz,
+        filled=~valid,
+        m_z_a=moment.m_z_a,
+        k_cut_rad_per_m=moment.k_cut_rad_per_m,
+        moment=moment,
+    )
+
+
+def moment_arrays(vector: VectorField) -> list[tuple[str, np.ndarray, str, str]]:
+    """The sheet-moment arrays of a trace's vector zarr group: (name, values, units,
+    long name) each; none without a standoff."""
+    if vector.moment is None:
+        return []
+    moment = vector.moment
+    return [
+        (
+            "m_z_a",
+            moment.m_z_a,
+            "A",
+            "out-of-plane sheet moment density M_z t (mean removed; Hann low-pass)",
+        ),
+        (
+            "m_z_sigma_a",
+            moment.sigma_a,
+            "A",
+            "1 sigma of m_z_a: field sigma map, background and standoff sigma in quadrature",
+        ),
+        (
+            "m_z_sigma_standoff_a",
+            moment.sigma_standoff_a,
+            "A",
+            "part of m_z_sigma_a from the standoff's 1 sigma",
+        ),
+        (
+            "residual_nv_t",
+            moment.residual_nv_t,
+            "T",
+            "B_NV minus B_NV forward-modelled from m_z_a (measured pixels; means removed)",
+        ),
+    ]

@@ -18,11 +18,13 @@ from strayline.alerts import AlertEvent
 from strayline.field import FIELD_BOUND_LEVEL
 from strayline.fit import FitStatus
 from strayline.products._maps import TraceMaps, VectorField, contrast_map
+from strayline.products.calibration import CalibrationUse
 
 __all__ = [
     "REPORT_FORMAT",
     "REPORT_FORMAT_VERSION",
     "alert_summary",
+    "calibration_summary",
     "distribution",
     "percent_text",
     "report_markdown",
@@ -132,7 +134,45 @@ def vector_summary(vector: VectorField) -> dict[str, Any]:
         out["m_z_a"] = distribution(vector.m_z_a[measured], "A")
         out["k_cut_rad_per_m"] = vector.k_cut_rad_per_m
         out["resolution_m"] = 2.0 * math.pi / vector.k_cut_rad_per_m
+    moment = vector.moment
+    if moment is not None:
+        out["m_z_sigma_a"] = distribution(moment.sigma_a[measured], "A")
+        out["m_z_sigma_standoff_a_median"] = _median(moment.sigma_standoff_a[measured])
+        out["background_t"] = moment.background_t
+        out["background_sigma_t"] = moment.background_sigma_t
+        out["round_trip"] = {
+            "residual_rms_t": moment.residual_rms_t,
+            "residual_rms_z": moment.residual_rms_z,
+            "meaning": (
+                "B_NV minus the field of the reconstructed m_z, over measured pixels: the "
+                "noise and the detail above the cut-off, plus whatever an out-of-plane "
+                "sheet at this standoff cannot make; rms_z in units of the field sigma"
+            ),
+        }
     return out
+
+
+def calibration_summary(use: CalibrationUse | None) -> dict[str, Any] | None:
+    """What the report says of the tip calibration asked for (None: none asked for)."""
+    if use is None:
+        return None
+    record = use.record
+    if record is None:
+        return {"setting": use.setting, "used": None, "problem": use.problem}
+    return {
+        "setting": use.setting,
+        "used": record.label,
+        "path": None if record.path is None else str(record.path),
+        "summary": record.summary(),
+        "model": record.model,
+        "standoff_m": record.standoff_m,
+        "standoff_sigma_m": record.standoff_sigma_m,
+        "nv_axis_from_calibration": record.nv_axis_fitted,
+        "source_store": record.source_store,
+        "made_time": record.made_time,
+        "chi2_red": record.fit.get("chi2_red"),
+        "problem": None,
+    }
 
 
 def alert_summary(events: Sequence[AlertEvent]) -> dict[str, Any]:
@@ -166,6 +206,12 @@ def _field_line(stats: Mapping[str, Any] | None) -> str:
     )
 
 
+def _standoff_text(report: Mapping[str, Any]) -> str:
+    sigma = report.get("standoff_sigma_m") or 0.0
+    text = f"{report['standoff_m'] * 1e9:.1f} nm"
+    return text + (f" ± {sigma * 1e9:.2g} nm" if sigma > 0 else "")
+
+
 def report_markdown(report: Mapping[str, Any]) -> str:
     """A short human-readable rendering of a report dict (see :func:`strayline.products`)."""
     axis = report["nv_axis"]
@@ -178,9 +224,16 @@ def report_markdown(report: Mapping[str, Any]) -> str:
         f"store written by {report['store_software_version']}, config digest "
         f"`{str(report['config_digest'])[:12]}`",
         f"- NV axis θ = {axis['theta_deg']:.2f}°, φ = {axis['phi_deg']:.2f}°; standoff "
-        + ("unknown" if report["standoff_m"] is None else f"{report['standoff_m'] * 1e9:.1f} nm"),
-        "",
+        + ("unknown" if report["standoff_m"] is None else _standoff_text(report)),
     ]
+    calibration = report.get("calibration")
+    if calibration is not None and calibration.get("used"):
+        lines.append(f"- tip calibration {calibration['summary']}")
+    elif calibration is not None:
+        lines.append(
+            f"- tip calibration {calibration['setting']!r} not used: {calibration['problem']}"
+        )
+    lines.append("")
     for direction, trace in report["traces"].items():
         lines += [
             f"## {direction.capitalize()} trace",
@@ -224,6 +277,15 @@ def report_markdown(report: Mapping[str, Any]) -> str:
                 lines.append(
                     f"- sheet moment m_z: 5–95 % {m['p5'] * 1e3:.3g} … {m['p95'] * 1e3:.3g} mA "
                     f"(resolution ≈ {vector['resolution_m'] * 1e9:.0f} nm, mean lost)"
+                )
+            sigma = vector.get("m_z_sigma_a")
+            if sigma is not None:
+                trip = vector["round_trip"]
+                lines.append(
+                    f"- m_z 1σ: median {sigma['median'] * 1e6:.3g} µA (standoff part "
+                    f"{(vector['m_z_sigma_standoff_a_median'] or 0.0) * 1e6:.3g} µA); round "
+                    f"trip to B_NV: residual rms {_bound_value(trip['residual_rms_t'])}, "
+                    f"{trip['residual_rms_z']:.3g} σ"
                 )
         lines.append("")
     alerts = report["alerts"]

@@ -8,8 +8,9 @@
   the lines where an alert was raised marked at the maps' edge;
 - ``vector_<direction>.png`` — reconstructed Bx, By, Bz (and m_z), filled pixels grey;
 - ``vector_field.zarr`` — zarr 3: one group per direction with ``bx_t``, ``by_t``,
-  ``bz_t``, ``filled``, ``m_z_a`` (with a standoff) and coordinates ``x``, ``y`` (m), dims
-  ``("y", "x")``, a ``units`` attribute on every array;
+  ``bz_t``, ``filled``, with a standoff ``m_z_a`` and its error bars and round trip
+  (``m_z_sigma_a``, ``m_z_sigma_standoff_a``, ``residual_nv_t``), and coordinates ``x``,
+  ``y`` (m), dims ``("y", "x")``, a ``units`` attribute on every array;
 - ``report.json`` and ``report.md`` — written last, so a report means complete products.
 
 Why a separate zarr and not a ``products/`` group inside the scan store: the store has
@@ -24,6 +25,11 @@ Every file is replaced atomically (temporary name, rename); the vector zarr is b
 hidden sibling folder and swapped in. Files of this module's naming that a remake no longer
 produces (a trace now absent, images turned off) are removed; nothing else in the folder
 is touched.
+
+The standoff comes from ``products.standoff_nm`` (or ``--standoff-nm``), or from a tip
+calibration (``products.calibration``, :mod:`strayline.products.calibration`), which also
+gives its 1σ, carried into the sheet moment's uncertainty, and may give the NV axis; the
+report names the calibration used.
 """
 
 from __future__ import annotations
@@ -47,17 +53,19 @@ from strayline._atomic import write_text_atomic
 from strayline.alerts import AlertEvent, read_alert_log
 from strayline.errors import StoreError
 from strayline.lines import DIRECTIONS
-from strayline.products._maps import TraceMaps, VectorField, reconstruct_vector
+from strayline.products._maps import TraceMaps, VectorField, moment_arrays, reconstruct_vector
 from strayline.products._marks import alert_marks
 from strayline.products._read import StoreSnapshot, nv_axis_from_store, read_snapshot
 from strayline.products._report import (
     REPORT_FORMAT,
     REPORT_FORMAT_VERSION,
     alert_summary,
+    calibration_summary,
     report_markdown,
     trace_summary,
     vector_summary,
 )
+from strayline.products.calibration import CalibrationUse, standoff_choice
 
 __all__ = [
     "REPORT_JSON",
@@ -148,11 +156,16 @@ def remake_products(
     nv_axis_rad: tuple[float, float] | None = None,
     alert_log: Path | None = None,
     images: bool | None = None,
+    calibration: str | None = None,
+    state_dir: Path | None = None,
 ) -> ProductsReport:
     """:func:`make_products` with every setting not given taken from the store itself.
 
     Defaults, from the configuration recorded in the store's attributes (the one that
-    wrote the scan): ``standoff_m`` from ``products.standoff_nm``, ``images`` from
+    wrote the scan): ``standoff_m`` from ``products.standoff_nm`` or, with neither it nor
+    ``calibration`` given, the calibration ``products.calibration`` names (one that
+    cannot be found is reported, and the sheet moment skipped), looked up in
+    ``state_dir`` (default ``paths.state_dir``), ``images`` from
     ``products.images``, ``out_dir`` = ``<products.folder or the store's folder>/
     <scan_id>.products``, ``alert_log`` = ``paths.alert_log`` if that file exists, else
     ``alerts.jsonl`` beside the store if it exists. The NV axis comes from the store's
@@ -163,15 +176,23 @@ def remake_products(
     ------
     StoreError
         If the store cannot be read or the products cannot be written.
+    CalibrationError
+        If ``calibration`` is given and cannot be found or read.
     ValueError
-        If the NV axis is given nowhere, or a value is out of range.
+        If the NV axis is given nowhere, a value is out of range, or both ``standoff_m``
+        and ``calibration`` are given.
     """
     store_path = Path(store_path)
     snapshot = read_snapshot(store_path)
     config = _mapping(snapshot.attrs.get("config"))
     section = _mapping(config.get("products"))
-    if standoff_m is None and section.get("standoff_nm") is not None:
-        standoff_m = float(section["standoff_nm"]) * 1e-9
+    standoff_m, use = standoff_choice(
+        config,
+        snapshot.reader.tip_id,
+        standoff_m=standoff_m,
+        calibration=calibration,
+        state_dir=state_dir,
+    )
     if images is None:
         images = bool(section.get("images", True))
     if out_dir is None:
@@ -200,6 +221,7 @@ def remake_products(
         out_dir=out_dir,
         alert_log=alert_log,
         images=images,
+        calibration=use,
     )
 
 
@@ -222,6 +244,7 @@ def make_products(
     alert_log: Path | None = None,
     images: bool = True,
     clock: Callable[[], datetime] = _utc_now,
+    calibration: CalibrationUse | None = None,
 ) -> ProductsReport:
     """Make (or remake) the products of one scan store.
 
@@ -241,6 +264,10 @@ def make_products(
         Write the PNG quick-looks.
     clock : callable returning an aware datetime
         Source of the report's ``made_time``.
+    calibration : CalibrationUse, optional
+        The tip calibration asked for: its record gives the standoff and its 1σ (and
+        the NV axis, where it fitted it); without a record the sheet moment is skipped
+        and the report says why. Not together with ``standoff_m``.
 
     Returns
     -------
@@ -251,8 +278,17 @@ def make_products(
     StoreError
         If the store cannot be read or the products cannot be written.
     ValueError
-        If ``standoff_m`` is not finite and > 0, or an angle is not finite.
+        If ``standoff_m`` is not finite and > 0, or an angle is not finite, or both
+        ``standoff_m`` and ``calibration`` are given.
     """
+    if standoff_m is not None and calibration is not None:
+        raise ValueError("give standoff_m or calibration, not both")
+    standoff_sigma_m = 0.0
+    if calibration is not None and calibration.record is not None:
+        standoff_m = calibration.record.standoff_m
+        standoff_sigma_m = calibration.record.standoff_sigma_m
+        if calibration.record.nv_axis_fitted:
+            nv_theta_rad, nv_phi_rad = calibration.record.nv_axis_rad
     if standoff_m is not None and not (math.isfinite(standoff_m) and standoff_m > 0):
         raise ValueError(f"standoff_m must be finite and > 0 or None; found {standoff_m!r}")
     for name, angle in (("nv_theta_rad", nv_theta_rad), ("nv_phi_rad", nv_phi_rad)):
@@ -271,6 +307,8 @@ def make_products(
             alert_log=alert_log,
             images=images,
             made=clock(),
+            standoff_sigma_m=standoff_sigma_m,
+            calibration=calibration,
         )
     except OSError as error:
         if isinstance(error, StoreError):
@@ -287,6 +325,8 @@ def _make(
     alert_log: Path | None,
     images: bool,
     made: datetime,
+    standoff_sigma_m: float = 0.0,
+    calibration: CalibrationUse | None = None,
 ) -> ProductsReport:
     if images:  # matplotlib only when drawing: it adds ~0.5 s to the daemon's start-up
         from strayline.products._figures import (
@@ -321,7 +361,15 @@ def _make(
                     f"{direction} trace: field along the NV axis, PL rate, contrast, fit status",
                 )
             )
-        vector = _vector(trace, axis, axis_ok, standoff_m, skipped)
+        vector = _vector(
+            trace,
+            axis,
+            axis_ok,
+            standoff_m,
+            skipped,
+            standoff_sigma_m=standoff_sigma_m,
+            calibration=calibration,
+        )
         summary["vector"] = None if vector is None else vector_summary(vector)
         if vector is None:
             continue
@@ -336,13 +384,21 @@ def _make(
     _remove_stale(out_dir, {f.path.name for f in files})
     if vectors:
         path = out_dir / VECTOR_ZARR
-        _write_vector_zarr(path, snapshot, vectors, axis, standoff_m)
+        _write_vector_zarr(
+            path,
+            snapshot,
+            vectors,
+            axis,
+            standoff_m,
+            standoff_sigma_m=standoff_sigma_m,
+            calibration=calibration,
+        )
         files.append(
             ProductFile(
                 "vector_field",
                 path,
-                "zarr 3: bx_t, by_t, bz_t, filled (and m_z_a) per trace, dims (y, x), "
-                "coordinates in m",
+                "zarr 3: bx_t, by_t, bz_t, filled (and m_z_a with its 1 sigma and round-trip "
+                "residual) per trace, dims (y, x), coordinates in m",
             )
         )
     else:
@@ -357,7 +413,7 @@ def _make(
         out_dir=out_dir,
         files=files,
         skipped=skipped,
-    )
+    ) | {"standoff_sigma_m": standoff_sigma_m, "calibration": calibration_summary(calibration)}
     json_path, md_path = out_dir / REPORT_JSON, out_dir / REPORT_MD
     report["products"] += [
         {"kind": "report_json", "path": REPORT_JSON, "description": "this report (JSON)"},
@@ -385,6 +441,9 @@ def _vector(
     axis_ok: bool,
     standoff_m: float | None,
     skipped: list[SkippedProduct],
+    *,
+    standoff_sigma_m: float = 0.0,
+    calibration: CalibrationUse | None = None,
 ) -> VectorField | None:
     """The trace's vector field, or None with the reason appended to ``skipped``."""
     where = f"{trace.direction} trace"
@@ -401,15 +460,17 @@ def _vector(
             nv_theta_rad=axis[0],
             nv_phi_rad=axis[1],
             standoff_m=standoff_m,
+            sigma_nv_t=trace.maps["field_nv_sigma_t"],
+            standoff_sigma_m=standoff_sigma_m,
         )
         if standoff_m is None:
-            skipped.append(
-                SkippedProduct(
-                    f"sheet moment ({where})",
-                    "the NV-sample standoff is unknown (set products.standoff_nm or "
-                    "pass --standoff-nm)",
-                )
+            unknown = (
+                "the NV-sample standoff is unknown (set products.standoff_nm or "
+                "products.calibration, or pass --standoff-nm or --calibration)"
             )
+            if calibration is not None and calibration.problem:
+                unknown = f"no tip calibration: {calibration.problem}"
+            skipped.append(SkippedProduct(f"sheet moment ({where})", unknown))
         return vector
     skipped.append(SkippedProduct(f"vector field ({where})", reason))
     skipped.append(SkippedProduct(f"sheet moment ({where})", reason))
@@ -541,6 +602,9 @@ def _write_vector_zarr(
     vectors: dict[str, VectorField],
     axis: tuple[float, float],
     standoff_m: float | None,
+    *,
+    standoff_sigma_m: float = 0.0,
+    calibration: CalibrationUse | None = None,
 ) -> None:
     """Build the vector-field zarr in a hidden sibling, then swap it into place."""
     tmp = path.with_name(f".{path.name}.making-{uuid.uuid4().hex}")
@@ -558,10 +622,19 @@ def _write_vector_zarr(
                 "nv_theta_rad": axis[0],
                 "nv_phi_rad": axis[1],
                 "standoff_m": standoff_m,
+                "standoff_sigma_m": standoff_sigma_m,
+                "calibration": (
+                    None
+                    if calibration is None or calibration.record is None
+                    else calibration.record.label
+                ),
                 "method": (
                     "Bz(k) = B_NV(k) / [u_z - i (u_x kx + u_y ky)/k], B_xy(k) = -i (k_xy/k) "
                     "Bz(k) (Lima & Weiss, J. Geophys. Res. 114, B06102 (2009)); m_z(k) = "
-                    "2 exp(kd) W(k) Bz(k) / (mu0 k), Hann window W cut at pi/d"
+                    "2 exp(kd) W(k) Bz(k) / (mu0 k), Hann window W cut at pi/d, from B_NV "
+                    "less the median of its border pixels; m_z_sigma_a from the field "
+                    "sigma map through the same filter, the background's and the "
+                    "standoff's sigma (strayline.physics.sheet_moment)"
                 ),
             },
         )
@@ -602,15 +675,7 @@ def _write_trace_group(root: zarr.Group, trace: TraceMaps, vector: VectorField) 
         (name, values, units, long_name)
         for (name, units, long_name), values in zip(_VECTOR_ARRAYS, vector.b_xyz_t, strict=True)
     ]
-    if vector.m_z_a is not None:
-        arrays.append(
-            (
-                "m_z_a",
-                vector.m_z_a,
-                "A",
-                "out-of-plane sheet moment density M_z t (mean removed; Hann low-pass)",
-            )
-        )
+    arrays += moment_arrays(vector)
     for name, values, units, long_name in arrays:
         array = group.create_array(
             name,

@@ -54,6 +54,8 @@ class RawSpectra:
     aux, aux_units : Mapping
         The line's auxiliary per-pixel channels and their units (empty: none, or a store
         that predates this record).
+    tip_id : str or None
+        The tip the line file named (None: none, or an older store).
     """
 
     line_index: int
@@ -74,6 +76,7 @@ class RawSpectra:
     profile: str | None = None
     aux: Mapping[str, np.ndarray] = field(default_factory=lambda: MappingProxyType({}))
     aux_units: Mapping[str, str] = field(default_factory=lambda: MappingProxyType({}))
+    tip_id: str | None = None
 
     def scan_line(self, scan_id: str, n_lines_planned: int, source: Path) -> ScanLine:
         """The line as the line file gave it, named ``source`` (where it is read from now)
@@ -99,6 +102,7 @@ class RawSpectra:
             aux=dict(self.aux),
             aux_units=dict(self.aux_units),
             sha256=self.sha256,
+            tip_id=self.tip_id,
         )
 
 
@@ -119,6 +123,7 @@ def write_raw_group(parent: zarr.Group, line: ScanLine, compressors: Any) -> Non
             # and the profile chooses the fit model
             "temperature_k": None if line.temperature_k is None else float(line.temperature_k),
             "profile": line.profile,
+            "tip_id": line.tip_id,
         },
     )
     arrays: dict[str, tuple[np.ndarray, tuple[str, ...], str]] = {
@@ -176,6 +181,7 @@ def read_raw_group(group: zarr.Group, line_index: int, direction: str) -> RawSpe
     temperature = attrs.get("temperature_k")
     profile = attrs.get("profile")
     sha256 = attrs.get("sha256")
+    tip_id = attrs.get("tip_id")
     return RawSpectra(
         line_index=line_index,
         direction=direction,
@@ -195,6 +201,7 @@ def read_raw_group(group: zarr.Group, line_index: int, direction: str) -> RawSpe
         profile=None if profile is None else str(profile),
         aux=MappingProxyType(aux),
         aux_units=MappingProxyType(aux_units),
+        tip_id=None if tip_id is None else str(tip_id),
     )
 
 

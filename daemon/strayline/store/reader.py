@@ -94,6 +94,12 @@ class StoreReader:
     def n_lines_planned(self) -> int:
         return int(self.attrs["n_lines_planned"])
 
+    @property
+    def tip_id(self) -> str | None:
+        """The NV tip recorded for the scan (its line files' ``tip_id``), or None."""
+        tip = self.attrs.get("tip_id")
+        return None if tip is None else str(tip)
+
     def committed_lines(self, direction: str) -> list[int]:
         """Committed line indices of one direction, increasing."""
         return sorted(i for (i, d) in self.ledger.committed if d == direction)

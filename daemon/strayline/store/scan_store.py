@@ -216,6 +216,7 @@ class ScanStore:
         config_json: dict[str, Any],
         config_digest: str,
         nv_axis_rad: tuple[float, float] | None = None,
+        tip_id: str | None = None,
         raw_spectra: bool = False,
         compression_level: int = 5,
         chunk_lines: int = 1,
@@ -242,6 +243,9 @@ class ScanStore:
         nv_axis_rad : (float, float), optional
             The scan's NV axis (θ, φ) in rad, recorded in the attributes (``nv_theta_rad``,
             ``nv_phi_rad``) so that readers need not go back to the line files.
+        tip_id : str, optional
+            The NV tip that took the scan (the line file's ``tip_id``), recorded in the
+            attributes (``tip_id``) at creation, or later if the store has none yet.
         raw_spectra : bool
             Also store each line's raw spectra.
         compression_level : int
@@ -301,6 +305,7 @@ class ScanStore:
                     "config_digest": config_digest,
                     "other_configs": {},
                     **_axis_attributes(nv_axis_rad),
+                    **({} if tip_id is None else {"tip_id": tip_id}),
                     "software_version": strayline.__version__,
                     "created_time": format_time(clock()),
                 }
@@ -339,6 +344,7 @@ class ScanStore:
             store._plan_y()
             store._note_config(config_json, config_digest)
             store._note_nv_axis(nv_axis_rad)
+            store._note_tip(tip_id)
         except KeyError as exc:
             ledger.close()
             raise StoreError(f"{path}: store layout incomplete: missing {exc}") from exc
@@ -379,6 +385,13 @@ class ScanStore:
         self._guard(
             "recording the NV axis", self._root.update_attributes, _axis_attributes(nv_axis_rad)
         )
+
+    def _note_tip(self, tip_id: str | None) -> None:
+        """Record the tip in a store that has none recorded (created before, or by lines
+        that named none)."""
+        if tip_id is None or self._root.attrs.get("tip_id") is not None:
+            return
+        self._guard("recording the tip", self._root.update_attributes, {"tip_id": tip_id})
 
     def _recover(self) -> None:
         """Reset rows of uncommitted lines, remove temporary files, count failures."""
