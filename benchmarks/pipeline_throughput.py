@@ -46,7 +46,13 @@ from strayline.config import load_config
 from strayline.field import field_from_fit
 from strayline.fit import fit_line
 from strayline.lines import read_line_file
-from strayline.pipeline import LinePipeline, fit_model_from_config, process_folder, zfs_rule
+from strayline.pipeline import (
+    LinePipeline,
+    default_workers,
+    fit_model_from_config,
+    process_folder,
+    zfs_rule,
+)
 from strayline.pipeline.folder import acquisition_order
 
 STAGES = ("read_s", "fit_s", "write_s", "rules_s")
@@ -133,7 +139,7 @@ def grouped(config_path: Path, folder: Path, work: Path, capture: LogCapture) ->
     config = load_config(config_path)
     capture.records.clear()
     started = time.perf_counter()
-    summary = process_folder(config, folder)
+    summary = process_folder(config, folder, workers=default_workers())  # the command's default
     wall = time.perf_counter() - started
     return Run(wall, summary.written, stages_from_log(capture.records))
 

@@ -8,6 +8,7 @@ import dataclasses
 import struct
 import threading
 import time
+from itertools import pairwise
 from pathlib import Path
 from typing import Any
 
@@ -18,7 +19,7 @@ import demo_stream as ds
 from strayline.alerts import AlertEvent
 from strayline.config import config_from_mapping
 from strayline.errors import ConfigError
-from strayline.pipeline import LinePipeline
+from strayline.pipeline import LinePipeline, _live
 from strayline.products import LivePicture, live_image_name, products_dir
 from strayline.products._marks import AlertLogCursor, AlertMark, alert_marks
 
@@ -38,6 +39,13 @@ def scan_files(tmp_path_factory: pytest.TempPathFactory) -> list[Path]:
     files = sorted((root / "incoming" / SCAN).glob("line_*.h5"))
     assert len(files) == LINES
     return files
+
+
+@pytest.fixture(autouse=True)
+def _draw_here(monkeypatch: pytest.MonkeyPatch) -> None:
+    """Pictures drawn on the worker thread, where a test can stand in for the drawing (the
+    drawing process is tested on its own)."""
+    monkeypatch.setattr(_live, "DRAW_IN_CHILD", False)
 
 
 def _pipeline(
@@ -83,11 +91,13 @@ def _png_size(path: Path) -> tuple[int, int]:
 
 
 def test_live_picture_appears_after_n_lines_and_is_replaced_as_lines_arrive(
-    scan_files: list[Path], tmp_path: Path, titles: list[str]
+    scan_files: list[Path], tmp_path: Path, titles: list[str], monkeypatch: pytest.MonkeyPatch
 ) -> None:
     """With live_every_lines 3 the picture appears once 3 lines are committed, stays
     until 3 more are, and is then replaced by a newer one through a rename (a new file at
-    the path, no temporary file left beside it)."""
+    the path, no temporary file left beside it). (The lines come faster than pictures are
+    drawn here: the duty-cycle floor is off, tested on its own below.)"""
+    monkeypatch.setattr(_live, "DUTY_GAP", 0.0)
     pipeline = _pipeline(tmp_path)
     live = _live_path(tmp_path)
     try:
@@ -151,6 +161,55 @@ def test_live_picture_by_time_and_at_the_last_line(
         pipeline.close()
     # lines at 0, 4, 8, 12 (12 s after the first), 16, 20, 24 (12 s after), 28 (the last)
     assert counts == [0, 0, 0, 1, 1, 1, 2, 3]
+
+
+def test_pictures_take_at_most_a_tenth_of_the_time_in_a_burst(
+    scan_files: list[Path], tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """Lines every 0.1 s, a picture due after every line, each taking 0.05 s to draw: a
+    picture waits ten times the last one's drawing time, so there are far fewer pictures
+    than lines and at least 0.5 s between them; the last line still gets one."""
+    now = [1.9e9]
+    drawn_at: list[float] = []
+
+    def slow_draw(self: LivePicture) -> tuple[Path, ...]:
+        drawn_at.append(now[0])
+        time.sleep(0.05)
+        return ()
+
+    monkeypatch.setattr(LivePicture, "draw", slow_draw)
+    pipeline = _pipeline(tmp_path, clock=lambda: now[0], live_every_lines=1)
+    try:
+        for path in scan_files:
+            pipeline.process(path)
+            assert pipeline.wait_background(30.0)
+            now[0] += 0.1
+    finally:
+        pipeline.close()
+    assert 2 <= len(drawn_at) < len(scan_files) / 2
+    gaps = [b - a for a, b in pairwise(drawn_at[:-1])]
+    assert all(gap >= 10 * 0.05 - 1e-9 for gap in gaps)
+    assert drawn_at[-1] == pytest.approx(1.9e9 + 0.1 * (len(scan_files) - 1))  # the last line
+
+
+def test_the_daemon_draws_its_pictures_in_a_child_process(
+    scan_files: list[Path], tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """With the drawing process on (the default), the picture appears, and a stand-in for
+    the drawing patched into this process is never called: a line never waits for
+    matplotlib's hold on this interpreter."""
+    monkeypatch.setattr(_live, "DRAW_IN_CHILD", True)
+    here: list[str] = []
+    monkeypatch.setattr(LivePicture, "draw", lambda self: here.append("drawn here") or ())
+    pipeline = _pipeline(tmp_path)
+    try:
+        for path in scan_files[:3]:
+            pipeline.process(path)
+        assert pipeline.wait_background(120.0)
+    finally:
+        pipeline.close()
+    assert _png_size(_live_path(tmp_path))[0] >= 800
+    assert here == []
 
 
 def test_live_refresh_runs_off_the_pipeline_thread_and_coalesces(

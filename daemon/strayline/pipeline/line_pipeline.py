@@ -279,17 +279,16 @@ class LinePipeline:
         )
         section = config.products
         self._live: Callable[[ScanContext, int], None] = _no_live
+        self._live_refresh: LiveRefresh | None = None
         if self._products is not None and section.live_image:
-            self._live = partial(
-                self._live_after_commit,
-                LiveRefresh(
-                    self._products,
-                    every_lines=section.live_every_lines,
-                    every_s=section.live_every_s,
-                    alert_log=config.paths.alert_log,
-                    clock=clock,
-                ),
+            self._live_refresh = LiveRefresh(
+                self._products,
+                every_lines=section.live_every_lines,
+                every_s=section.live_every_s,
+                alert_log=config.paths.alert_log,
+                clock=clock,
             )
+            self._live = partial(self._live_after_commit, self._live_refresh)
 
     # -- one file -----------------------------------------------------------------------
 
@@ -843,6 +842,8 @@ class LinePipeline:
         self._engine.save(self._state_path)
         if self._products is not None:  # products under way: a bounded wait, then go
             self._products.close(timeout_s=_PRODUCTS_WAIT_S)
+        if self._live_refresh is not None:
+            self._live_refresh.close()
         if self._owns_sink:
             self._sink.close()
 

@@ -18,7 +18,7 @@ from strayline.products.calibration import (
     write_calibration,
 )
 from strayline.products.cut import CutProduct, cut_store
-from strayline.products.live import LIVE_PREFIX, LivePicture, live_image_name
+from strayline.products.live import LIVE_PREFIX, LivePicture, draw_live_picture, live_image_name
 from strayline.products.make import (
     REPORT_JSON,
     REPORT_MD,
@@ -47,6 +47,7 @@ __all__ = [
     "calibrate_store",
     "calibrations_dir",
     "cut_store",
+    "draw_live_picture",
     "find_calibration",
     "keep_calibration",
     "live_image_name",

@@ -25,7 +25,7 @@ from strayline.lines import DIRECTIONS
 from strayline.products._marks import AlertLogCursor
 from strayline.products._read import read_snapshot
 
-__all__ = ["LIVE_PREFIX", "LivePicture", "live_image_name"]
+__all__ = ["LIVE_PREFIX", "LivePicture", "draw_live_picture", "live_image_name"]
 
 #: Start of a live picture's file name: ``live_<direction>.png``.
 LIVE_PREFIX = "live_"
@@ -119,3 +119,19 @@ class LivePicture:
             save_png(quicklook_figure(trace, heading, marks), path)
             written.append(path)
         return tuple(written)
+
+
+#: Pictures kept by :func:`draw_live_picture` (each keeps its place in the alert log).
+_KEPT = 64
+_PICTURES: dict[tuple[Path, Path], LivePicture] = {}
+
+
+def draw_live_picture(store_path: Path, out_dir: Path, alert_log: Path | None) -> tuple[Path, ...]:
+    """:meth:`LivePicture.draw` for the scan at ``store_path``, keeping the picture (its
+    place in the alert log) for the next call: what a drawing process runs."""
+    key = (Path(store_path), Path(out_dir))
+    picture = _PICTURES.pop(key, None) or LivePicture(store_path, out_dir, alert_log=alert_log)
+    _PICTURES[key] = picture  # most recently used last
+    while len(_PICTURES) > _KEPT:
+        del _PICTURES[next(iter(_PICTURES))]
+    return picture.draw()
