@@ -275,6 +275,7 @@ def _failed(tmp_path: Path) -> int:
     return int(np.count_nonzero((status != 255) & failed_fits(status)))
 
 
+@pytest.mark.slow
 def test_process_of_a_missing_folder_exits_1(tmp_path: Path) -> None:
     """`strayline process` on a folder that does not exist exits 1 naming it."""
     config = _write_config(tmp_path)
@@ -358,6 +359,7 @@ def test_alerts_with_a_bad_since_is_a_usage_error(
     assert "--since must be an ISO 8601 time" in capsys.readouterr().err
 
 
+@pytest.mark.slow
 def test_output_cut_short_by_a_closed_pipe_ends_quietly(tmp_path: Path) -> None:
     """`strayline alerts | head -1` on a long log: the reader closes the pipe early, and
     strayline ends with 141 (128 + SIGPIPE, as a shell reports it) and no traceback."""

@@ -82,6 +82,7 @@ def test_a_small_demo_prints_where_everything_is_and_alerts_on_its_fault(
     assert _value(out, "alerts") == f"{len(raised)} raised"
 
 
+@pytest.mark.slow
 def test_a_folder_holding_a_demo_run_is_refused(tmp_path: Path) -> None:
     """A second demo in a folder that already holds a demo store exits 2 and changes
     nothing."""
@@ -140,6 +141,7 @@ def test_truth_agreement_counts_pixels_within_k_sigma() -> None:
     assert np.isnan(truth_agreement(field_t * np.nan, sigma_t, truth_t))
 
 
+@pytest.mark.slow
 def test_a_quarantined_line_counts_as_accounted_for(tmp_path: Path) -> None:
     """The demo stops once every line is committed or quarantined, so a corrupt-file fault
     does not hold it until the time limit."""

@@ -136,6 +136,7 @@ def two_scans(tmp_path_factory: pytest.TempPathFactory) -> Path:
     return root / "incoming" / "stage"
 
 
+@pytest.mark.slow
 def test_the_service_writes_the_file_on_its_heartbeat_and_once_more_when_it_stops(
     two_scans: Path, tmp_path: Path
 ) -> None:
@@ -149,7 +150,7 @@ def test_the_service_writes_the_file_on_its_heartbeat_and_once_more_when_it_stop
     config = load_config(
         write_config(
             tmp_path,
-            products={"enabled": False},
+            products={"enabled": False, "live_image": False},
             logging={"console": "off"},
             service={"metrics_file": str(path)},
         )

@@ -192,6 +192,7 @@ def test_pictures_take_at_most_a_tenth_of_the_time_in_a_burst(
     assert drawn_at[-1] == pytest.approx(1.9e9 + 0.1 * (len(scan_files) - 1))  # the last line
 
 
+@pytest.mark.slow
 def test_the_daemon_draws_its_pictures_in_a_child_process(
     scan_files: list[Path], tmp_path: Path, monkeypatch: pytest.MonkeyPatch
 ) -> None:

@@ -75,6 +75,7 @@ def _digest_tree(folder: Path) -> dict[str, str]:
     }
 
 
+@pytest.mark.slow
 def test_a_refit_with_the_same_config_gives_the_same_maps_and_alerts(tmp_path: Path) -> None:
     """Refitting with the config the stores were written with reproduces every map bit for
     bit and the same alert events (the fit depends on the spectra and the config alone);
@@ -108,6 +109,7 @@ def test_a_refit_with_the_same_config_gives_the_same_maps_and_alerts(tmp_path: P
         assert record["software_version"]
 
 
+@pytest.mark.slow
 def test_a_rerun_resumes_and_another_config_is_refused(tmp_path: Path) -> None:
     """A second refit into the same folder skips what is done; a refit with another config
     into that folder is refused (never mixed); into a new folder it applies: with the field
@@ -156,6 +158,7 @@ def test_source_stores_finds_stores_below_a_folder(tmp_path: Path) -> None:
         source_stores(tmp_path / "nowhere")
 
 
+@pytest.mark.slow
 def test_refit_command_names_the_new_stores(
     tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:

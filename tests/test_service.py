@@ -44,7 +44,7 @@ from tests._daemon import (
 def _config(folder: Path, **sections: Any) -> Path:
     """The test daemon config without scan products (they are not under test here and
     cost seconds per finished scan)."""
-    return write_config(folder, products={"enabled": False}, **sections)
+    return write_config(folder, products={"enabled": False, "live_image": False}, **sections)
 
 
 MIB = 1024 * 1024
@@ -221,6 +221,7 @@ def test_a_reload_keeps_the_services_counts(tmp_path: Path) -> None:
     assert (stopped.state, stopped.lines_written) == ("stopped", 5)
 
 
+@pytest.mark.slow
 def test_chunks_left_in_a_deleted_store_are_set_aside_and_the_scan_rebuilt(
     tmp_path: Path,
 ) -> None:
