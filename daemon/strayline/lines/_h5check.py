@@ -158,6 +158,31 @@ class FileFields:
     def has_attr(self, name: str) -> bool:
         return name in self._attrs
 
+    def expect_format(self, name: str, version: int) -> None:
+        """The attributes ``format`` (equal to ``name``) and ``format_version`` (the
+        integer ``version``, the only one the reader knows)."""
+        fmt = self.attr("format", repr(name))
+        if fmt != name:
+            self.fail("attribute 'format'", repr(name), show(fmt))
+        found = self.attr("format_version", f"the integer {version}")
+        if not (is_int(found) and int(found) == version):
+            self.fail(
+                "attribute 'format_version'",
+                f"{version} (the only version this reader knows)",
+                show(found),
+            )
+
+    def lines_planned(self, most: int) -> int:
+        """The attribute ``n_lines_planned``: an integer from 1 to ``most``."""
+        n_lines = self.attr_int("n_lines_planned", "an integer >= 1", 1)
+        if n_lines > most:
+            self.fail(
+                "attribute 'n_lines_planned'",
+                f"at most {most} (limits.max_lines_planned)",
+                str(n_lines),
+            )
+        return n_lines
+
     def attr_str(self, name: str, expected: str, pattern: re.Pattern[str] | None = None) -> str:
         """A string attribute, optionally matching ``pattern`` in full."""
         value = self.attr(name, expected)

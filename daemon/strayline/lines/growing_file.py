@@ -247,24 +247,9 @@ def _fail(path: Path, field_name: str, expected: str, found: str) -> NoReturn:
 
 
 def _header(ff: FileFields, limits: LineLimits) -> ScanHeader:
-    fmt = ff.attr("format", repr(GROWING_FORMAT))
-    if fmt != GROWING_FORMAT:
-        ff.fail("attribute 'format'", repr(GROWING_FORMAT), show(fmt))
-    version = ff.attr("format_version", f"the integer {GROWING_FORMAT_VERSION}")
-    if not (is_int(version) and int(version) == GROWING_FORMAT_VERSION):
-        ff.fail(
-            "attribute 'format_version'",
-            f"{GROWING_FORMAT_VERSION} (the only version this reader knows)",
-            show(version),
-        )
+    ff.expect_format(GROWING_FORMAT, GROWING_FORMAT_VERSION)
     scan_id = ff.attr_str("scan_id", NAME_RULE, NAME_PATTERN)
-    n_lines = ff.attr_int("n_lines_planned", "an integer >= 1", 1)
-    if n_lines > limits.max_lines_planned:
-        ff.fail(
-            "attribute 'n_lines_planned'",
-            f"at most {limits.max_lines_planned} (limits.max_lines_planned)",
-            str(n_lines),
-        )
+    n_lines = ff.lines_planned(limits.max_lines_planned)
     dwell_s = ff.attr_float("dwell_s", "a finite number of seconds > 0", low=0.0, low_open=True)
     theta = ff.attr_float("nv_theta_rad", "a finite angle in [0, π] rad", low=0.0, high=np.pi)
     phi = ff.attr_float("nv_phi_rad", "a finite angle in rad")

@@ -27,7 +27,7 @@ import numpy as np
 
 from strayline._atomic import write_bytes_atomic
 from strayline.errors import LineFileError
-from strayline.lines._h5check import NAME_PATTERN, NAME_RULE, FileFields, is_int, show
+from strayline.lines._h5check import NAME_PATTERN, NAME_RULE, FileFields, show
 
 __all__ = [
     "DIRECTIONS",
@@ -358,26 +358,10 @@ def parse_line_bytes(
 
 def _parse(ff: FileFields, limits: LineLimits, digest: str) -> ScanLine:
     """Check every field in contract order: format, metadata, shapes, then values."""
-    fmt = ff.attr("format", repr(FORMAT_NAME))
-    if fmt != FORMAT_NAME:
-        ff.fail("attribute 'format'", repr(FORMAT_NAME), show(fmt))
-    version = ff.attr("format_version", f"the integer {FORMAT_VERSION}")
-    if not _is_exact_int(version, FORMAT_VERSION):
-        ff.fail(
-            "attribute 'format_version'",
-            f"{FORMAT_VERSION} (the only version this reader knows)",
-            show(version),
-        )
-
+    ff.expect_format(FORMAT_NAME, FORMAT_VERSION)
     scan_id = ff.attr_str("scan_id", NAME_RULE, NAME_PATTERN)
     line_index = ff.attr_int("line_index", "an integer >= 0", 0)
-    n_lines = ff.attr_int("n_lines_planned", "an integer >= 1", 1)
-    if n_lines > limits.max_lines_planned:
-        ff.fail(
-            "attribute 'n_lines_planned'",
-            f"at most {limits.max_lines_planned} (limits.max_lines_planned)",
-            str(n_lines),
-        )
+    n_lines = ff.lines_planned(limits.max_lines_planned)
     if line_index >= n_lines:
         ff.fail("attribute 'line_index'", f"less than n_lines_planned = {n_lines}", str(line_index))
     direction_text = ff.attr_str("direction", "'forward' or 'backward'")
@@ -516,10 +500,6 @@ def _aux_datasets(
 def _required(ds: h5py.Dataset | None) -> h5py.Dataset:
     assert ds is not None  # FileFields.dataset raises for a missing required dataset
     return ds
-
-
-def _is_exact_int(value: object, wanted: int) -> bool:
-    return is_int(value) and int(value) == wanted
 
 
 def _iso(moment: datetime) -> str:
