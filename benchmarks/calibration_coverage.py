@@ -31,6 +31,7 @@ import time
 from pathlib import Path
 
 import numpy as np
+import structlog
 
 import demo_stream as ds
 from strayline.config import config_from_mapping
@@ -132,6 +133,7 @@ def main() -> None:
     parser.add_argument("--lines", type=int, default=32)
     parser.add_argument("--pixels", type=int, default=64)
     parser.add_argument("--model", choices=("film-edge",), default="film-edge")
+    structlog.configure(logger_factory=structlog.ReturnLoggerFactory())  # no per-line output
     args = parser.parse_args()
     rows: list[dict[str, float]] = []
     started = time.perf_counter()
