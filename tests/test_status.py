@@ -19,7 +19,7 @@ from strayline.cli import main
 from strayline.config import Config, config_from_mapping
 from strayline.field import field_from_fit
 from strayline.fit import FitModel, FitStatus, fit_line
-from strayline.lines import read_line_file
+from strayline.lines import quarantine_file, read_line_file
 from strayline.pipeline import LinePipeline
 from strayline.status import format_scan_status, scan_status, scan_statuses
 from strayline.store import ScanStore
@@ -154,6 +154,12 @@ def test_status_shows_the_scans_latest_alerts(scan_files: Path, tmp_path: Path) 
     # Lines 3, 4, 6 and 7 were never processed here; line 5 went to the quarantine.
     assert status.held == tuple(f"line_0000{i}_fwd.h5" for i in (3, 4, 6, 7))
     assert status.quarantined == 1
+    # a file of another layout set aside beside it counts too (one note per file)
+    stray = tmp_path / "incoming" / SCAN / "line_00009_fwd.npz"
+    stray.write_bytes(b"not an archive")
+    quarantine_file(stray, field="file", expected="an .npz archive", found="garbage", message="")
+    (again,) = scan_statuses(config.paths.output_root, config.paths.alert_log)
+    assert again.quarantined == 2
     assert shown[1] == (
         "  4 line file(s) not in the store yet: line_00003_fwd.h5, line_00004_fwd.h5, "
         "line_00006_fwd.h5 …"

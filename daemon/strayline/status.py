@@ -18,7 +18,7 @@ from typing import Any
 from strayline._numbers import duration_text, median
 from strayline.alerts import AlertEvent, format_alert, read_alert_log
 from strayline.fit import failed_fits
-from strayline.lines import DIRECTIONS, QUARANTINE_DIR, line_key_from_name
+from strayline.lines import DIRECTIONS, NOTE_SUFFIX, QUARANTINE_DIR, line_key_from_name
 from strayline.store import STATUS_FILL, LedgerState, NotAScanStore, open_store_reader
 
 __all__ = ["ScanStatus", "format_scan_status", "scan_status", "scan_statuses"]
@@ -173,9 +173,9 @@ def _scan_folder(state: LedgerState) -> tuple[tuple[str, ...], int]:
     try:
         names = sorted(e.name for e in folder.iterdir() if e.is_file())
         quarantine = folder / QUARANTINE_DIR
-        quarantined = (
-            sum(1 for e in quarantine.iterdir() if e.suffix == ".h5")
-            if (quarantine.is_dir())
+        quarantined = (  # one note per file set aside, whatever its layout
+            sum(1 for e in quarantine.iterdir() if e.name.endswith(NOTE_SUFFIX))
+            if quarantine.is_dir()
             else 0
         )
     except OSError:

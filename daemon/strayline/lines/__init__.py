@@ -28,6 +28,7 @@ from strayline.lines.plain_arrays import (
 from strayline.lines.quarantine import (
     BAD_FILE_RULE,
     HELD_SCAN_RULE,
+    NOTE_SUFFIX,
     QUARANTINE_DIR,
     QuarantineRecord,
     bad_file_event,
@@ -73,6 +74,7 @@ __all__ = [
     "MIN_FREQ",
     "NAME_PATTERN",
     "NAME_RULE",
+    "NOTE_SUFFIX",
     "PLAIN_ARRAYS_READER",
     "QUARANTINE_DIR",
     "READER_GROUP",

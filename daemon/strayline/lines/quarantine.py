@@ -26,6 +26,7 @@ from strayline.lines.scan_line import line_key_from_name
 __all__ = [
     "BAD_FILE_RULE",
     "HELD_SCAN_RULE",
+    "NOTE_SUFFIX",
     "QUARANTINE_DIR",
     "QuarantineRecord",
     "bad_file_event",
@@ -35,6 +36,9 @@ __all__ = [
 ]
 
 QUARANTINE_DIR = "_quarantine"
+#: End of the name of a quarantined file's sidecar (``<file name>.error.json``): one per
+#: file set aside, whatever its layout, also when the file itself vanished meanwhile.
+NOTE_SUFFIX = ".error.json"
 
 #: Rule name of the alert raised for a quarantined file.
 BAD_FILE_RULE = "bad_file"
@@ -130,7 +134,7 @@ class QuarantineRecord:
 def _free_name(folder: Path, name: str) -> Path:
     target = folder / name
     n = 1
-    while target.exists() or target.with_name(target.name + ".error.json").exists():
+    while target.exists() or target.with_name(target.name + NOTE_SUFFIX).exists():
         target = folder / f"{name}.{n}"
         n += 1
     return target
@@ -171,6 +175,6 @@ def quarantine_file(
         message=message,
         time=datetime.now(UTC).isoformat(timespec="seconds"),
     )
-    sidecar = target.with_name(target.name + ".error.json")
+    sidecar = target.with_name(target.name + NOTE_SUFFIX)
     write_text_atomic(sidecar, json.dumps(asdict(record), indent=2) + "\n")
     return record
