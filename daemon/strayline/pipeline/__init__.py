@@ -5,7 +5,8 @@ alerts, and the products once a scan is complete), for the daemon and for one
 
 from strayline.pipeline._setup import PROFILE_RULE, fit_model_from_config, profile_event, zfs_rule
 from strayline.pipeline.folder import ProcessSummary, default_workers, process_folder
-from strayline.pipeline.line_pipeline import LineOutcome, LinePipeline, PipelineStatistics
+from strayline.pipeline.line_pipeline import LinePipeline
+from strayline.pipeline.outcome import LineOutcome, PipelineStatistics
 from strayline.pipeline.refit import refit_stores
 
 __all__ = [

@@ -29,7 +29,8 @@ from strayline.pipeline._cluster import (
     fit_threads,
     run_tasks,
 )
-from strayline.pipeline.line_pipeline import LineOutcome, LinePipeline
+from strayline.pipeline.line_pipeline import LinePipeline
+from strayline.pipeline.outcome import LineOutcome
 from strayline.watch import LineNames, list_tree
 
 T = TypeVar("T")

@@ -6,14 +6,12 @@ then committed as one group (:meth:`~strayline.store.ScanStore.write_lines`: one
 fsyncs, each chunk written once), judged by the rules in order, and the rule state is saved
 once for the group. A single file is a group of one.
 
-When a scan's last planned line is committed, the pipeline also makes the scan's products
-once (images, vector field, sheet moment, report; :mod:`strayline.products`). With a
-background worker (the daemon), it also keeps a live picture of each running scan,
-redrawn on that worker every few lines or seconds (:mod:`strayline.pipeline._live`).
+Beside the store it makes a finished scan's products and a running scan's live picture
+(:mod:`strayline.pipeline._byproducts`).
 
 :class:`LinePipeline` wires the stages together for one daemon (or one ``process`` pass).
 Everything it needs per scan — the profile-resolved config, the fit model, the store, the
-metrics memory — is settled once when the scan's first line arrives (:class:`_Scan`), so
+metrics memory — is settled once when the scan's first line arrives (:class:`ScanContext`), so
 the per-line path never branches on configuration. Bad instrument files are quarantined
 with a sidecar and an alert; nothing is deleted and the pipeline carries on. A scan whose
 profile cannot be used runs with the base config and says so in a warning alert.
@@ -38,7 +36,6 @@ from dataclasses import dataclass
 from datetime import UTC, datetime
 from functools import partial
 from pathlib import Path
-from typing import Literal
 
 import numpy as np
 import structlog
@@ -64,8 +61,7 @@ from strayline.lines import (
     held_scan_event,
     quarantine_file,
 )
-from strayline.pipeline._background import BackgroundWorker
-from strayline.pipeline._live import LiveRefresh
+from strayline.pipeline._byproducts import ScanByproducts
 from strayline.pipeline._reseed import seed_tracker
 from strayline.pipeline._setup import (
     MAX_OPEN_SCANS,
@@ -74,11 +70,10 @@ from strayline.pipeline._setup import (
     no_products,
     profile_event,
     progress_of,
-    scan_complete,
     store_config,
     zfs_rule,
 )
-from strayline.products import make_products, products_dir, use_calibration
+from strayline.pipeline.outcome import LineOutcome, PipelineStatistics
 from strayline.rules import DecisionLog, MetricsTracker, RuleDecision, RuleEngine
 from strayline.store import (
     LedgerEntry,
@@ -88,70 +83,14 @@ from strayline.store import (
     store_path,
 )
 
-__all__ = ["LineOutcome", "LinePipeline", "PipelineStatistics"]
+__all__ = ["LinePipeline"]
 
-
-def _no_live(scan: ScanContext, n_lines: int) -> None:
-    """No live picture (``products.live_image: false``, or no background worker)."""
-
-
-#: How long closing waits for products under way, s (within systemd's TimeoutStopSec;
-#: products left unfinished are remade with ``strayline products``).
-_PRODUCTS_WAIT_S = 30.0
-
-
-OutcomeKind = Literal[
-    "written", "duplicate", "quarantined", "vanished", "unreadable", "held", "no_new_lines"
-]
 
 #: Lines of a growing file taken through the stages at once (its catch-up is read, fitted
 #: and committed in such groups, the file closed in between).
 GROWING_BATCH = 32
 
 Key = tuple[int, str]
-
-
-@dataclass(frozen=True)
-class LineOutcome:
-    """What happened to one file.
-
-    Attributes
-    ----------
-    path : Path
-    kind : {"written", "duplicate", "quarantined", "vanished", "unreadable", "held", \
-"no_new_lines"}
-        ``unreadable``: the file could not be read (an OSError other than its absence,
-        ``problem`` says which); it is left where it is, to be tried again
-        (:meth:`LinePipeline.process_many` only; :meth:`LinePipeline.process` raises).
-        ``held``: a growing file broke its layout; it stays where it is and its scan is
-        held with an alert. ``no_new_lines``: a growing file had no completed line the
-        store lacks.
-    scan_id, direction : str or None
-    line_index : int or None
-    read_s, fit_s, write_s, rules_s : float
-        Wall time of reading and checking the file, of the fit and field, of the store
-        write and of the metrics and rules, s (0 when not done). A group commit's write
-        time and the group's rule-state save are shared equally among its lines.
-    failures : int
-        Pixels whose fit status is not OK.
-    events : tuple of AlertEvent
-        Alert events raised or cleared by this line.
-    problem : str
-        Why an ``unreadable`` file could not be read ("" otherwise).
-    """
-
-    path: Path
-    kind: OutcomeKind
-    scan_id: str | None = None
-    line_index: int | None = None
-    direction: str | None = None
-    fit_s: float = 0.0
-    write_s: float = 0.0
-    failures: int = 0
-    events: tuple[AlertEvent, ...] = ()
-    read_s: float = 0.0
-    rules_s: float = 0.0
-    problem: str = ""
 
 
 @dataclass(frozen=True, eq=False)
@@ -173,21 +112,6 @@ class _Fitted:
     @property
     def key(self) -> tuple[str, int, str]:
         return (self.line.scan_id, self.line.line_index, self.line.direction)
-
-
-@dataclass(frozen=True)
-class PipelineStatistics:
-    """Snapshot of the pipeline's work since it was built."""
-
-    lines_written: int
-    duplicates: int
-    quarantined: int
-    pixels_failed: int
-    scans_open: int
-    last_scan_id: str | None
-    last_line_index: int | None
-    last_line_s: float | None
-    active_alerts: int
 
 
 @dataclass
@@ -274,21 +198,7 @@ class LinePipeline:
         self._scans: dict[str, ScanContext] = {}  # open scans, least recently used first
         self._closed_progress: dict[str, tuple[int, int]] = {}
         self._counters = _Counters()
-        self._products: BackgroundWorker | None = (
-            BackgroundWorker("strayline-products") if background_products else None
-        )
-        section = config.products
-        self._live: Callable[[ScanContext, int], None] = _no_live
-        self._live_refresh: LiveRefresh | None = None
-        if self._products is not None and section.live_image:
-            self._live_refresh = LiveRefresh(
-                self._products,
-                every_lines=section.live_every_lines,
-                every_s=section.live_every_s,
-                alert_log=config.paths.alert_log,
-                clock=clock,
-            )
-            self._live = partial(self._live_after_commit, self._live_refresh)
+        self._byproducts = ScanByproducts(config, background=background_products, clock=clock)
 
     # -- one file -----------------------------------------------------------------------
 
@@ -601,7 +511,7 @@ class LinePipeline:
                 rules_s=rules_s + settle_s,
             )
         if to_write:
-            self._live(scan, len(to_write))
+            self._byproducts.lines_committed(scan, len(to_write))
             scan.after_commit(scan, to_write[-1].line)
 
     def _duplicate(
@@ -831,7 +741,7 @@ class LinePipeline:
     def wait_background(self, timeout_s: float) -> bool:
         """Block until the background jobs queued so far (products, live pictures) have
         run, at most ``timeout_s``; True if they have (and without a worker)."""
-        return self._products is None or self._products.wait_idle(timeout_s)
+        return self._byproducts.wait_idle(timeout_s)
 
     def close(self) -> None:
         """Close every store, and the alert sink if this pipeline built it (waits for
@@ -840,10 +750,7 @@ class LinePipeline:
             scan.store.close()
         self._scans.clear()
         self._engine.save(self._state_path)
-        if self._products is not None:  # products under way: a bounded wait, then go
-            self._products.close(timeout_s=_PRODUCTS_WAIT_S)
-        if self._live_refresh is not None:
-            self._live_refresh.close()
+        self._byproducts.close()  # products under way: a bounded wait, then go
         if self._owns_sink:
             self._sink.close()
 
@@ -907,78 +814,6 @@ class LinePipeline:
             line_index=event.line_index,
             direction=event.direction,
             events=(event,),
-        )
-
-    def _products_when_complete(self, scan: ScanContext, line: ScanLine) -> None:
-        """Make the scan's products once, when its last planned line is committed.
-
-        Complete means: the last planned forward line is committed and, if the scan has a
-        backward trace at all, its last planned line too (an instrument writing trace and
-        retrace finishes with the retrace of the last line). A line committed after that
-        (one that came late, or a changed file) makes them again, so they never leave out
-        a line the store has. A failure is logged as an error and never retried
-        automatically (``strayline products`` remakes them).
-        """
-        if not scan_complete(scan.store):
-            return
-        if scan.products_done:
-            self._log.info(
-                "products_remade", scan=scan.scan_id, line=line.line_index, reason="a late line"
-            )
-        scan.products_done = True
-        job = partial(self._make_products, scan, line.nv_theta_rad, line.nv_phi_rad, line.tip_id)
-        if self._products is None:
-            job()
-        else:
-            self._products.submit(job)
-
-    def _live_after_commit(self, live: LiveRefresh, scan: ScanContext, n_lines: int) -> None:
-        """Count a commit's lines towards the scan's next live picture."""
-        out_dir = products_dir(self._output_root, self.config.products.folder, scan.scan_id)
-        live.lines_committed(
-            scan.scan_id, scan.store.path, out_dir, n_lines, complete=scan_complete(scan.store)
-        )
-
-    def _make_products(
-        self, scan: ScanContext, nv_theta_rad: float, nv_phi_rad: float, tip_id: str | None
-    ) -> None:
-        """Make one finished scan's products (reads the store without its lock); a tip
-        calibration named in the config is looked up now, so the newest one counts."""
-        section = scan.config.products
-        out_dir = products_dir(self._output_root, section.folder, scan.scan_id)
-        started = time.perf_counter()
-        try:
-            calibration = (
-                None
-                if section.calibration is None
-                else use_calibration(self.config.paths.state_dir, section.calibration, tip_id)
-            )
-            report = make_products(
-                scan.store.path,
-                standoff_m=section.standoff_m,
-                nv_theta_rad=nv_theta_rad,
-                nv_phi_rad=nv_phi_rad,
-                out_dir=out_dir,
-                alert_log=self.config.paths.alert_log,
-                images=section.images,
-                calibration=calibration,
-            )
-        except Exception as error:  # products are a by-product: never stop the daemon
-            self._log.error(
-                "products_failed",
-                scan=scan.scan_id,
-                out_dir=str(out_dir),
-                error=f"{type(error).__name__}: {error}",
-                products_s=round(time.perf_counter() - started, 3),
-            )
-            return
-        self._log.info(
-            "products_written",
-            scan=scan.scan_id,
-            out_dir=str(out_dir),
-            paths=[str(item.path) for item in report.files],
-            skipped=[f"{item.product}: {item.reason}" for item in report.skipped],
-            products_s=round(time.perf_counter() - started, 3),
         )
 
     def _now(self) -> datetime:
@@ -1063,7 +898,7 @@ class LinePipeline:
                 tracker=tracker,
                 reopen=reopen,
                 after_commit=(
-                    self._products_when_complete if config.products.enabled else no_products
+                    self._byproducts.when_complete if config.products.enabled else no_products
                 ),
             )
         except BaseException:

@@ -31,7 +31,8 @@ from strayline.config import Config, config_digest, config_from_mapping
 from strayline.errors import StoreError
 from strayline.lines import ScanLine
 from strayline.pipeline.folder import ProcessProgress, ProcessSummary, in_batches, run_scan_tasks
-from strayline.pipeline.line_pipeline import LineOutcome, LinePipeline
+from strayline.pipeline.line_pipeline import LinePipeline
+from strayline.pipeline.outcome import LineOutcome
 from strayline.store import StoreReader, open_store_reader, store_metadata_present, store_path
 
 __all__ = ["refit_config", "refit_store", "refit_stores", "source_stores"]
